@@ -1,0 +1,3 @@
+from assim.cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,101 @@
+"""The ``assim`` command line: a thin layer over :mod:`assim.pipeline`.
+
+Exit status 0 on success; 2 on bad input or config, with one line on stderr naming file,
+variable and place (never a traceback for a user error).
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from collections.abc import Sequence
+
+from assim.caution import CAUTION
+from assim.errors import AssimError
+
+DEFAULT_CONFIG = "config/config.yaml"
+
+
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="assim",
+        description="Ensemble Kalman filter assimilation of river gauge readings and ensemble "
+        "streamflow forecasts. " + CAUTION,
+    )
+    p.add_argument("--version", action="store_true", help="print the version and exit")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+
+    def add(name: str, help_: str) -> argparse.ArgumentParser:
+        s = sub.add_parser(name, help=help_, description=help_)
+        s.add_argument("--config", default=DEFAULT_CONFIG, help=f"config file (default {DEFAULT_CONFIG})")
+        return s
+
+    add("prep", "prepare raw records (basins.yaml, weather.csv, gauge.csv) into CF NetCDF")
+    add("check", "validate the config and inputs and summarise them")
+    s = add("run", "ensemble run: open loop or assimilation of gauge readings")
+    s.add_argument("--mode", choices=["openloop", "assimilate"], default="assimilate")
+    s.add_argument("--restart-from", metavar="FILE", help="continue from this restart file")
+    s.add_argument("--until", metavar="YYYY-MM-DD", help="last day to run (default: period end)")
+    add("hindcast", "hindcast experiments: forecasts from open-loop and assimilation states")
+    s = add("forecast", "operational forecast for one issue date, from the latest restart")
+    s.add_argument("--issue-date", required=True, metavar="YYYY-MM-DD")
+    add("verify", "skill of runs and hindcasts against observations (skill.nc, skill.csv)")
+    s = add("plot", "figures (PNG) of runs, hindcasts, skill and forecasts")
+    s.add_argument("--issue-date", metavar="YYYY-MM-DD", help="also draw the plume of this forecast")
+    add("report", "self-contained HTML report of a hindcast study")
+    return p
+
+
+def _dispatch(args: argparse.Namespace) -> str:
+    from assim import pipeline
+    from assim.config import load_config
+
+    cfg = load_config(args.config)
+    cmd = args.command
+    if cmd == "prep":
+        pipeline.prep(cfg)
+        return f"prepared layer written to {cfg['data']['prepared']}"
+    if cmd == "check":
+        return pipeline.check(cfg)
+    if cmd == "run":
+        ds = pipeline.run(cfg, mode=args.mode, restart_from=args.restart_from, until=args.until)
+        return f"{args.mode} run written: {ds.attrs.get('product_path', cfg['results'])}"
+    if cmd == "hindcast":
+        ds = pipeline.hindcast(cfg)
+        return f"hindcast written: {ds.attrs.get('product_path', cfg['results'])}"
+    if cmd == "forecast":
+        ds = pipeline.forecast(cfg, args.issue_date)
+        return f"forecast written: {ds.attrs.get('product_path', cfg['results'])}"
+    if cmd == "verify":
+        ds = pipeline.verify(cfg)
+        return f"skill written: {ds.attrs.get('product_path', cfg['results'])}"
+    if cmd == "plot":
+        paths = pipeline.plot(cfg, issue_date=args.issue_date)
+        return "figures written:\n" + "\n".join(f"  {p}" for p in paths)
+    if cmd == "report":
+        return f"report written: {pipeline.report(cfg)}"
+    raise AssertionError(cmd)
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = _parser().parse_args(argv)
+    if args.version:
+        from assim import __version__
+
+        print(f"assim {__version__}")
+        return 0
+    if not args.command:
+        _parser().print_help()
+        return 2
+    try:
+        message = _dispatch(args)
+    except AssimError as exc:
+        print(f"assim {args.command}: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print(f"assim {args.command}: interrupted; no partial output was kept", file=sys.stderr)
+        return 130
+    print(message)
+    if args.command not in ("check", "prep"):
+        print(f"CAUTION: {CAUTION}")
+    return 0
