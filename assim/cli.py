@@ -28,6 +28,13 @@ def _parser() -> argparse.ArgumentParser:
     def add(name: str, help_: str) -> argparse.ArgumentParser:
         s = sub.add_parser(name, help=help_, description=help_)
         s.add_argument("--config", default=DEFAULT_CONFIG, help=f"config file (default {DEFAULT_CONFIG})")
+        s.add_argument(
+            "--set",
+            action="append",
+            default=[],
+            metavar="KEY=VALUE",
+            help="override one config key, e.g. --set ensemble.members=32 (VALUE is YAML)",
+        )
         return s
 
     add("prep", "prepare raw records (basins.yaml, weather.csv, gauge.csv) into CF NetCDF")
@@ -46,11 +53,36 @@ def _parser() -> argparse.ArgumentParser:
     return p
 
 
+def _overrides(items: Sequence[str]) -> dict:
+    """``["a.b=1", "c=[x]"]`` -> ``{"a": {"b": 1}, "c": ["x"]}`` (values parsed as YAML)."""
+    import yaml
+
+    from assim.errors import ConfigError
+
+    out: dict = {}
+    for item in items:
+        key, sep, text = item.partition("=")
+        if not sep or not key.strip():
+            raise ConfigError("expected KEY=VALUE", file="--set", variable=item)
+        try:
+            value = yaml.safe_load(text)
+        except yaml.YAMLError:
+            raise ConfigError("VALUE is not valid YAML", file="--set", variable=key) from None
+        *parents, leaf = key.strip().split(".")
+        node = out
+        for p in parents:
+            node = node.setdefault(p, {})
+            if not isinstance(node, dict):
+                raise ConfigError("conflicting overrides", file="--set", variable=key)
+        node[leaf] = value
+    return out
+
+
 def _dispatch(args: argparse.Namespace) -> str:
     from assim import pipeline
     from assim.config import load_config
 
-    cfg = load_config(args.config)
+    cfg = load_config(args.config, **_overrides(args.set))
     cmd = args.command
     if cmd == "prep":
         pipeline.prep(cfg)

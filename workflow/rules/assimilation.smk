@@ -1,0 +1,18 @@
+rule assimilation:
+    """Ensemble run correcting the storage states with each gauge reading (EnKF family)."""
+    input:
+        PREPARED,
+    output:
+        f"{RESULTS}/analysis.nc",
+        f"{RESULTS}/restart.nc",
+    params:
+        settings=settings("period", "model", "ensemble", "perturbation", "filter", "outputs"),
+    threads: workflow.cores
+    resources:
+        mem_mb=2000,
+    log:
+        f"{LOGS}/assimilation.log",
+    benchmark:
+        f"{BENCH}/assimilation.tsv"
+    shell:
+        "{ASSIM} run --mode assimilate {CLI_CONFIG} --set ensemble.workers={threads} > {log} 2>&1"

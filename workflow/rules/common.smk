@@ -1,0 +1,102 @@
+# Validate the config against config/schemas/config.schema.yaml with the same function the
+# CLI uses (assim.config.validate), so the workflow and a user at the shell can never
+# disagree, and define the helpers the rules share.
+
+import datetime as _dt
+import json
+import shlex
+import sys
+
+import yaml
+
+from assim import paths
+from assim.config import validate
+from assim.errors import ConfigError
+
+
+def _config_file():
+    # The last --configfile wins; without one, the Snakefile's configfile.
+    files = [str(f) for f in workflow.configfiles]
+    return files[-1] if files else "config/config.yaml"
+
+
+CONFIG_FILE = _config_file()
+
+try:
+    CFG = validate(config, source=CONFIG_FILE)
+except ConfigError as _exc:
+    sys.stderr.write(f"assim workflow: config error: {_exc}\n")
+    raise SystemExit(2)
+
+
+def _flat_differences(effective, written, prefix=""):
+    """Dotted keys whose value in the effective config differs from the config file."""
+    out = {}
+    for key, value in effective.items():
+        name = f"{prefix}{key}"
+        if isinstance(value, dict) and isinstance(written.get(key), dict):
+            out.update(_flat_differences(value, written[key], name + "."))
+        elif key not in written or written[key] != value:
+            out[name] = value
+    return out
+
+
+def _cli_overrides():
+    # Values given with `snakemake --config key=value` (or merged from several config
+    # files) reach the CLI as --set options, so the CLI computes with the same settings.
+    with open(CONFIG_FILE, encoding="utf-8") as f:
+        written = validate(yaml.safe_load(f) or {}, source=CONFIG_FILE)
+    diff = _flat_differences(CFG, written)
+    diff.pop("issue_date", None)  # passed as --issue-date
+    return " ".join(f"--set {shlex.quote(k + '=' + json.dumps(v))}" for k, v in sorted(diff.items()))
+
+
+ASSIM = f"{shlex.quote(sys.executable)} -m assim"
+CLI_CONFIG = f"--config {shlex.quote(CONFIG_FILE)} {_cli_overrides()}".strip()
+
+RESULTS = str(paths.results(CFG))
+LOGS = str(paths.logs(CFG))
+BENCH = f"{RESULTS}/benchmarks"
+PREPARED = [str(paths.prepared(CFG, n)) for n in ("forcing.nc", "observations.nc", "basins.nc")]
+RAW = [f"{CFG['data']['raw']}/{n}" for n in ("basins.yaml", "weather.csv", "gauge.csv")]
+
+
+def settings(*sections):
+    """The config sections a stage depends on, as one JSON string for `params:`.
+
+    Snakemake reruns a job whose params changed, so changing e.g. `hindcast.leads` reruns
+    the hindcast and what depends on it, and nothing else. Settings that do not change
+    results (scheduler, workers, chunk sizes, progress) are left out on purpose.
+    """
+    chosen = {}
+    for s in sections:
+        if s == "ensemble":
+            chosen[s] = {k: CFG[s][k] for k in ("members", "seed")}
+        else:
+            chosen[s] = CFG[s]
+    return json.dumps(chosen, sort_keys=True)
+
+
+def issue_date():
+    """The workflow's forecast date: config issue_date, else the day after period.end."""
+    if CFG["issue_date"]:
+        return str(CFG["issue_date"])
+    if CFG["period"]["end"]:
+        end = _dt.date.fromisoformat(str(CFG["period"]["end"]))
+        return (end + _dt.timedelta(days=1)).isoformat()
+    return None
+
+
+def all_products():
+    out = [
+        f"{RESULTS}/openloop.nc",
+        f"{RESULTS}/analysis.nc",
+        f"{RESULTS}/hindcast.nc",
+        f"{RESULTS}/skill.nc",
+        f"{RESULTS}/skill.csv",
+        f"{RESULTS}/figures",
+        f"{RESULTS}/report.html",
+    ]
+    if issue_date():
+        out.append(str(paths.forecast(CFG, issue_date())))
+    return out

@@ -1,0 +1,33 @@
+# The operational forecast of one issue date. It starts from the latest restart before that
+# date (the assimilation run's restart.nc, or an earlier day's forecast restart), takes in
+# the readings since then and writes the new restart beside the forecast. The restart is
+# marked ancient: a day's new gauge records (which refresh the prepared layer) must not
+# rerun the whole assimilation period, only the forecast.
+
+
+rule forecast:
+    """Ensemble forecast and flood-threshold exceedance probabilities for one issue date."""
+    input:
+        PREPARED,
+        ancient(f"{RESULTS}/restart.nc"),
+    output:
+        f"{RESULTS}/forecasts/forecast-{{date}}.nc",
+        f"{RESULTS}/forecasts/restart-{{date}}.nc",
+    wildcard_constraints:
+        date=r"\d{4}-\d{2}-\d{2}",
+    params:
+        settings=settings("model", "ensemble", "perturbation", "filter", "forecast"),
+    threads: workflow.cores
+    log:
+        f"{LOGS}/forecast-{{date}}.log",
+    benchmark:
+        f"{BENCH}/forecast-{{date}}.tsv"
+    shell:
+        "{ASSIM} forecast --issue-date {wildcards.date} {CLI_CONFIG}"
+        " --set ensemble.workers={threads} > {log} 2>&1"
+
+
+rule issue:
+    """Target for the scheduled daily run: only the forecast of `issue_date`."""
+    input:
+        [str(paths.forecast(CFG, issue_date()))] if issue_date() else [],
