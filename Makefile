@@ -21,10 +21,18 @@ test-fast: $(STAMP)
 	$(PY) -m pytest -m "not slow"
 
 demo: $(STAMP)
-	$(PY) sample_basin/generate.py --check
 	$(VENV)/bin/snakemake --snakefile workflow/Snakefile --configfile config/config.yaml \
 		--cores $(CORES) --printshellcmds
-	@$(PY) -m assim.demo_summary config/config.yaml
+	@echo
+	@echo "assim demo finished. What it produced (sample basins are invented):"
+	@echo "  forecasts : $$(ls results/forecasts/forecast-*.nc | tr '\n' ' ')"
+	@echo "  runs      : results/openloop.nc results/analysis.nc results/hindcast.nc"
+	@echo "  skill     : results/skill.csv results/skill.nc"
+	@echo "  figures   : results/figures/ ($$(ls results/figures | wc -l) PNG files)"
+	@echo "  report    : results/report.html"
+	@echo "  logs      : results/logs/"
+	@echo
+	@echo "CAUTION: research guidance only, subordinate to official flood warnings and local authorities."
 
 bench: $(STAMP)
 	$(PY) benchmarks/run.py
