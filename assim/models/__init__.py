@@ -1,10 +1,15 @@
 """Vectorised rainfall-runoff models over a flat (basin x member) batch.
 
 >>> m = get("gr4j")
+>>> params = m.prepare(params)                      # optional: precompute once per run
 >>> state = m.initial_state(params)                 # (batch, n_state)
 >>> state, fluxes = m.step(state, {"precipitation": p, "pet": e}, params)
+
+Built in: ``gr4j`` (:mod:`assim.models.gr4j`) and ``linear_reservoir``
+(:mod:`assim.models.linear_reservoir`). A user model joins with :func:`register`.
 """
 
+from assim.models import gr4j, linear_reservoir
 from assim.models.base import (
     Model,
     Parameter,
@@ -14,7 +19,15 @@ from assim.models.base import (
     get,
     register,
 )
-from assim.models import gr4j as _gr4j  # noqa: F401  (registers "gr4j")
-from assim.models import linear_reservoir as _linear_reservoir  # noqa: F401
 
-__all__ = ["Model", "Parameter", "StateVariable", "WaterBalance", "available", "get", "register"]
+__all__ = [
+    "Model",
+    "Parameter",
+    "StateVariable",
+    "WaterBalance",
+    "available",
+    "get",
+    "gr4j",
+    "linear_reservoir",
+    "register",
+]

@@ -24,6 +24,11 @@ import numpy as np
 Bound = float | Callable[[Mapping[str, np.ndarray]], np.ndarray]
 
 
+def _as_dict(params: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """The default ``prepare``: nothing to precompute."""
+    return dict(params)
+
+
 @dataclass(frozen=True)
 class StateVariable:
     """One state variable of a model.
@@ -79,6 +84,7 @@ class Model:
     balance: WaterBalance
     forcings: tuple[str, ...] = ("precipitation", "pet")
     fluxes: tuple[str, ...] = field(default=("runoff",))
+    prepare: Callable[[Mapping[str, np.ndarray]], dict[str, np.ndarray]] = _as_dict
 
     @property
     def state_names(self) -> tuple[str, ...]:
@@ -117,7 +123,10 @@ class Model:
         -------
         lower, upper : (batch, n_state) float64, mm
         """
-        batch = np.broadcast_shapes(*(np.shape(v) for v in params.values())) if params else ()
+        # Only the declared parameters set the batch shape: prepared parameter dicts may
+        # also carry precomputed arrays of other shapes.
+        shapes = [np.shape(params[p.name]) for p in self.parameters if p.name in params]
+        batch = np.broadcast_shapes(*shapes) if shapes else ()
         lower = np.empty(batch + (self.n_state,))
         upper = np.empty(batch + (self.n_state,))
         for j, s in enumerate(self.states):

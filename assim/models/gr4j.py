@@ -1,0 +1,404 @@
+"""GR4J, the four-parameter daily rainfall-runoff model of Perrin, Michel & Andréassian (2003).
+
+Perrin, C., Michel, C. and Andréassian, V. (2003). Improvement of a parsimonious model for
+streamflow simulation. Journal of Hydrology 279, 275-289. The model equations are given in
+the paper's appendix; every formula below cites it where it is written.
+
+State layout, one row per batch element, ``n_state = 2 + N_SLOT1 + N_SLOT2`` columns:
+
+====================  =====================================================================
+column                content (mm, at the end of a step)
+====================  =====================================================================
+``production_store``  S, in [0, X1]
+``routing_store``     R, in [0, X3] (see :func:`routing_upper_bound`)
+``uh1_1..uh1_9``      water in unit hydrograph 1 (90 % branch) leaving 1..9 days later
+``uh2_1..uh2_19``     water in unit hydrograph 2 (10 % branch) leaving 1..19 days later
+====================  =====================================================================
+
+X4 is valid in [0.5, 10] d, so UH1 has at most ``N_UH1 = ceil(10) = 10`` ordinates and UH2
+at most ``N_UH2 = ceil(20) = 20``. The first ordinate leaves on the day the water enters, so
+at the end of a step a unit hydrograph holds water for the next ``N_UH - 1`` days only:
+that is why there are 9 and 19 unit-hydrograph states. Slots beyond an element's own time
+base (``ceil(X4) - 1`` and ``ceil(2 X4) - 1``) are always zero, and their upper bound is 0.
+
+Performance notes. :func:`step` writes the new state into a Fortran-ordered array (each
+column contiguous) and works through the batch in blocks of ``BLOCK`` elements so that the
+temporaries of one block stay in cache; the block loop is a loop over cache-sized slices of
+the flat batch, not over members. Only the unit-hydrograph columns that the largest X4 of
+the batch needs are touched. :func:`prepare` precomputes the ordinates and reciprocals once
+per parameter set; :func:`step` accepts raw or prepared parameters.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+
+import numpy as np
+
+from assim.models.base import Model, Parameter, StateVariable, WaterBalance, register
+
+X4_MIN = 0.5
+X4_MAX = 10.0
+N_UH1 = math.ceil(X4_MAX)  # ordinates of UH1 for the largest valid X4
+N_UH2 = math.ceil(2 * X4_MAX)  # ordinates of UH2
+N_SLOT1 = N_UH1 - 1  # UH1 water still in transit at the end of a step
+N_SLOT2 = N_UH2 - 1
+UH1_SHARE = 0.9  # Perrin et al. (2003), appendix: 90 % of Pr goes through UH1
+BLOCK = 4096  # batch elements per block inside step (cache-sized)
+
+_C1 = 2  # first UH1 column
+_C2 = 2 + N_SLOT1  # first UH2 column
+N_STATE = 2 + N_SLOT1 + N_SLOT2
+
+PARAMETERS = (
+    Parameter("x1", "mm", "capacity of the production store", 1.0, 3000.0, 350.0),
+    Parameter("x2", "mm d-1", "groundwater exchange coefficient (negative: loss)", -10.0, 10.0, 0.0),
+    Parameter("x3", "mm", "one-day-ahead capacity of the routing store", 1.0, 1000.0, 90.0),
+    Parameter("x4", "d", "time base of unit hydrograph 1", X4_MIN, X4_MAX, 1.7),
+)
+
+
+def _x1(params):
+    return np.asarray(params["x1"], dtype=np.float64)
+
+
+def routing_upper_bound(params: Mapping[str, np.ndarray]) -> np.ndarray:
+    """Upper bound of the routing store at the end of a step: X3.
+
+    After the inflow the store may hold any R' >= 0, but the outflow leaves
+    ``R'(1 + (R'/X3)^4)^(-1/4)``, which increases with R' and tends to X3 from below
+    (Perrin et al. (2003), appendix); :func:`step` also clips the last rounding error.
+
+    Parameters
+    ----------
+    params : dict of (batch,) float64
+
+    Returns
+    -------
+    (batch,) float64, mm
+    """
+    return np.asarray(params["x3"], dtype=np.float64)
+
+
+def _slot_upper(branch: int, slot: int):
+    """Upper bound of unit-hydrograph slot ``slot`` (1-based): inf inside the time base, else 0."""
+
+    def upper(params):
+        x4 = np.asarray(params["x4"], dtype=np.float64)
+        n = np.ceil(branch * x4)  # ordinates of this element's unit hydrograph
+        return np.where(slot <= n - 1, np.inf, 0.0)
+
+    return upper
+
+
+STATES = (
+    StateVariable("production_store", "mm", "production store level S", 0.0, _x1, True),
+    StateVariable("routing_store", "mm", "routing store level R", 0.0, routing_upper_bound, True),
+    *(
+        StateVariable(f"uh1_{i}", "mm", f"UH1 water leaving {i} d after the step", 0.0,
+                      _slot_upper(1, i), False)
+        for i in range(1, N_SLOT1 + 1)
+    ),
+    *(
+        StateVariable(f"uh2_{i}", "mm", f"UH2 water leaving {i} d after the step", 0.0,
+                      _slot_upper(2, i), False)
+        for i in range(1, N_SLOT2 + 1)
+    ),
+)
+
+FLUXES = (
+    "precipitation",
+    "pet",
+    "net_rainfall",
+    "actual_evaporation",
+    "percolation",
+    "exchange",
+    "routed_runoff",
+    "direct_runoff",
+    "runoff",
+)
+
+
+def _power_5_2(t: np.ndarray) -> np.ndarray:
+    # t**2.5 from correctly rounded operations only, so that the result of an element does
+    # not depend on the length of the array it sits in.
+    return t * t * np.sqrt(t)
+
+
+def s_curve_1(t: np.ndarray, x4: np.ndarray) -> np.ndarray:
+    """S-curve of UH1: fraction of a unit input released by time ``t``.
+
+    Parameters
+    ----------
+    t : array, d (broadcast with ``x4``)
+    x4 : array, d
+
+    Returns
+    -------
+    array in [0, 1]
+    """
+    u = np.clip(np.asarray(t, dtype=np.float64) / x4, 0.0, 1.0)
+    return _power_5_2(u)  # Perrin et al. (2003), appendix: SH1(t) = (t/X4)^(5/2), t < X4
+
+
+def s_curve_2(t: np.ndarray, x4: np.ndarray) -> np.ndarray:
+    """S-curve of UH2 (time base 2·X4): fraction of a unit input released by time ``t``.
+
+    Parameters
+    ----------
+    t : array, d (broadcast with ``x4``)
+    x4 : array, d
+
+    Returns
+    -------
+    array in [0, 1]
+    """
+    u = np.clip(np.asarray(t, dtype=np.float64) / x4, 0.0, 2.0)
+    rising = 0.5 * _power_5_2(np.minimum(u, 1.0))  # Perrin et al. (2003), appendix: SH2, t <= X4
+    falling = 1.0 - 0.5 * _power_5_2(2.0 - np.maximum(u, 1.0))  # same, X4 < t < 2 X4
+    return np.where(u <= 1.0, rising, falling)
+
+
+def uh_ordinates(x4: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Ordinates of the two unit hydrographs.
+
+    ``uh1[..., j] = SH1(j + 1) - SH1(j)`` is the share of an input released ``j`` days after
+    the day it enters (``j = 0``: the same day); ordinates beyond an element's time base are
+    exactly zero. Each row sums to 1 (up to rounding).
+
+    Parameters
+    ----------
+    x4 : (batch,) float64, d, in [0.5, 10]
+
+    Returns
+    -------
+    uh1 : (batch, N_UH1) float64
+    uh2 : (batch, N_UH2) float64
+    """
+    x4 = np.asarray(x4, dtype=np.float64)[..., None]
+    sh1 = s_curve_1(np.arange(N_UH1 + 1, dtype=np.float64), x4)
+    sh2 = s_curve_2(np.arange(N_UH2 + 1, dtype=np.float64), x4)
+    return np.diff(sh1, axis=-1), np.diff(sh2, axis=-1)  # Perrin et al. (2003), appendix: UH(j) = SH(j) - SH(j-1)
+
+
+def prepare(params: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """Parameters with everything :func:`step` precomputes once per parameter set.
+
+    Call it once per run (or whenever the parameters change) and pass the result to
+    :func:`step` in place of the raw parameters. Keys starting with ``_`` hold the
+    precomputed arrays; the raw ``x1..x4`` are kept unchanged.
+
+    Parameters
+    ----------
+    params : dict with ``x1`` (mm), ``x2`` (mm d-1), ``x3`` (mm), ``x4`` (d), each (batch,)
+        float64 (scalars broadcast)
+
+    Returns
+    -------
+    dict
+        ``x1..x4`` as (batch,) float64, plus ``_uh1`` (batch, k1) and ``_uh2`` (batch, k2)
+        Fortran-ordered ordinates already multiplied by the 0.9 and 0.1 shares, where
+        k1 = ceil(max X4) and k2 = ceil(2 max X4), and reciprocals ``_inv_x1``, ``_inv_x3``
+        and ``_perc_x1`` = 4 / (9 X1).
+    """
+    if "_uh1" in params:
+        return dict(params)
+    x = np.broadcast_arrays(*(np.asarray(params[p.name], dtype=np.float64) for p in PARAMETERS))
+    x1, x2, x3, x4 = (np.ascontiguousarray(v, dtype=np.float64).reshape(-1) for v in x)
+    uh1, uh2 = uh_ordinates(x4)
+    x4max = float(x4.max()) if x4.size else X4_MIN
+    k1 = min(max(math.ceil(x4max), 1), N_UH1)
+    k2 = min(max(math.ceil(2 * x4max), 1), N_UH2)
+    return {
+        "x1": x1,
+        "x2": x2,
+        "x3": x3,
+        "x4": x4,
+        "_uh1": np.asfortranarray(UH1_SHARE * uh1[:, :k1]),
+        "_uh2": np.asfortranarray((1.0 - UH1_SHARE) * uh2[:, :k2]),
+        "_inv_x1": 1.0 / x1,
+        "_perc_x1": (4.0 / 9.0) / x1,
+        "_inv_x3": 1.0 / x3,
+    }
+
+
+def initial_state(params: Mapping[str, np.ndarray]) -> np.ndarray:
+    """A starting state for spin-up: S = 0.3 X1, R = 0.5 X3, empty unit hydrographs.
+
+    Common practice, no published source; a run should spin up (``period.spinup_days``).
+
+    Parameters
+    ----------
+    params : dict of (batch,) float64
+
+    Returns
+    -------
+    (batch, n_state) float64, mm, Fortran-ordered
+    """
+    x1, x3 = np.broadcast_arrays(np.asarray(params["x1"], dtype=np.float64),
+                                 np.asarray(params["x3"], dtype=np.float64))
+    state = np.zeros((x1.size, N_STATE), order="F")
+    state[:, 0] = 0.3 * x1.reshape(-1)
+    state[:, 1] = 0.5 * x3.reshape(-1)
+    return state
+
+
+def _block(st, p, e, q, out, fl, w):
+    """Advance one block: ``st`` and ``out`` (b, n_state), ``q`` prepared params, ``fl`` fluxes.
+
+    ``w`` is a (10, b) scratch buffer. Every array here is a view into the caller's arrays.
+    """
+    x1, x2, x3 = q["x1"], q["x2"], q["x3"]
+    o1, o2 = q["_uh1"], q["_uh2"]
+    k1, k2 = o1.shape[1], o2.shape[1]
+    S, R = st[:, 0], st[:, 1]
+    d, en, s, ta, tb, ps, a, c, pr, t = w
+
+    # Interception: Pn = max(P - E, 0), En = max(E - P, 0); E is met first by P.
+    np.subtract(p, e, out=d)
+    pn = np.maximum(d, 0.0, out=fl["net_rainfall"])  # Perrin et al. (2003), appendix: Pn
+    np.subtract(pn, d, out=en)  # Perrin et al. (2003), appendix: En
+    ae = np.minimum(p, e, out=fl["actual_evaporation"])  # interception part of evaporation
+
+    # Production store: Ps and Es, the tanh formulas.
+    np.multiply(S, q["_inv_x1"], out=s)
+    np.multiply(pn, q["_inv_x1"], out=ta)
+    np.tanh(ta, out=ta)
+    np.multiply(en, q["_inv_x1"], out=tb)
+    np.tanh(tb, out=tb)
+    np.multiply(S, s, out=ps)
+    np.subtract(x1, ps, out=ps)
+    ps *= ta
+    np.multiply(s, ta, out=a)
+    a += 1.0
+    ps /= a  # Perrin et al. (2003), appendix: Ps = X1 (1 - (S/X1)^2) tanh(Pn/X1) / (1 + S/X1 tanh(Pn/X1))
+    np.minimum(ps, pn, out=ps)  # Ps <= Pn holds exactly; keep it so under rounding
+    np.subtract(1.0, s, out=c)
+    np.add(c, 1.0, out=a)
+    a *= S
+    a *= tb
+    c *= tb
+    c += 1.0
+    a /= c  # Perrin et al. (2003), appendix: Es = S (2 - S/X1) tanh(En/X1) / (1 + (1 - S/X1) tanh(En/X1))
+    es = np.minimum(a, S, out=a)  # Es <= S holds exactly; keep it so under rounding
+    ae += es
+    s1 = np.subtract(S, es, out=c)
+    s1 += ps  # Perrin et al. (2003), appendix: S = S - Es + Ps
+
+    # Percolation: S_end = S (1 + (4/9 S/X1)^4)^(-1/4), Perc = S - S_end.
+    np.multiply(s1, q["_perc_x1"], out=t)
+    t *= t
+    t *= t
+    t += 1.0
+    np.sqrt(t, out=t)
+    np.sqrt(t, out=t)
+    s_end = np.divide(s1, t, out=out[:, 0])
+    perc = np.subtract(s1, s_end, out=fl["percolation"])  # Perrin et al. (2003), appendix: Perc
+    np.subtract(pn, ps, out=pr)
+    pr += perc  # Perrin et al. (2003), appendix: Pr = Perc + (Pn - Ps)
+
+    # Unit hydrographs: today's share leaves now, the rest moves one day closer.
+    q9 = np.multiply(o1[:, 0], pr, out=s)
+    q1 = np.multiply(o2[:, 0], pr, out=ta)
+    if k1 > 1:
+        q9 += st[:, _C1]
+        u1 = out[:, _C1:_C1 + k1 - 1]
+        np.multiply(o1[:, 1:k1], pr[:, None], out=u1)
+        u1[:, :k1 - 2] += st[:, _C1 + 1:_C1 + k1 - 1]
+    if k2 > 1:
+        q1 += st[:, _C2]
+        u2 = out[:, _C2:_C2 + k2 - 1]
+        np.multiply(o2[:, 1:k2], pr[:, None], out=u2)
+        u2[:, :k2 - 2] += st[:, _C2 + 1:_C2 + k2 - 1]
+
+    # Groundwater exchange from the routing store level at the start of the step.
+    r = np.multiply(R, q["_inv_x3"], out=tb)
+    f = np.sqrt(r, out=d)
+    np.multiply(r, r, out=en)
+    f *= en
+    f *= r
+    f *= x2  # Perrin et al. (2003), appendix: F = X2 (R/X3)^(7/2)
+
+    # Routing store: R' = max(0, R + Q9 + F), Qr = R' (1 - (1 + (R'/X3)^4)^(-1/4)).
+    rq = np.add(R, q9, out=q9)
+    r1 = np.add(rq, f, out=c)
+    np.maximum(r1, 0.0, out=r1)  # Perrin et al. (2003), appendix: R = max(0, R + Q9 + F)
+    fr = np.subtract(r1, rq, out=rq)  # exchange actually applied to the routing store
+    np.multiply(r1, q["_inv_x3"], out=t)
+    t *= t
+    t *= t
+    t += 1.0
+    np.sqrt(t, out=t)
+    np.sqrt(t, out=t)
+    r_end = np.divide(r1, t, out=out[:, 1])
+    np.minimum(r_end, x3, out=r_end)  # R_end < X3 holds exactly; keep it so under rounding
+    qr = np.subtract(r1, r_end, out=fl["routed_runoff"])  # Perrin et al. (2003), appendix: Qr
+
+    # Direct branch: Qd = max(0, Q1 + F).
+    qd = np.add(q1, f, out=fl["direct_runoff"])
+    np.maximum(qd, 0.0, out=qd)  # Perrin et al. (2003), appendix: Qd = max(0, Q1 + F)
+    fd = np.subtract(qd, q1, out=q1)  # exchange actually applied to the direct branch
+    np.add(fr, fd, out=fl["exchange"])
+    np.add(qr, qd, out=fl["runoff"])  # Perrin et al. (2003), appendix: Q = Qr + Qd
+
+
+def step(
+    state: np.ndarray, forcing: Mapping[str, np.ndarray], params: Mapping[str, np.ndarray]
+) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """Advance GR4J by one day for every element of the batch.
+
+    Parameters
+    ----------
+    state : (batch, n_state) float64, mm
+        State at the start of the day (not modified). Any memory order; Fortran order is
+        fastest. Unit-hydrograph slots beyond an element's time base must be zero (they are
+        whenever the state came from :func:`initial_state` or :func:`step`).
+    forcing : dict with ``precipitation`` and ``pet``, each (batch,) float64, mm d-1, >= 0
+    params : dict of (batch,) float64, raw (``x1..x4``) or from :func:`prepare` (faster)
+
+    Returns
+    -------
+    state : (batch, n_state) float64, mm, Fortran-ordered, a new array
+    fluxes : dict of (batch,) float64, mm d-1
+        ``precipitation``, ``pet`` (the forcing, as given), ``net_rainfall`` (Pn),
+        ``actual_evaporation`` (interception + Es), ``percolation``, ``exchange`` (the water
+        actually gained (+) or lost (-) by both branches), ``routed_runoff`` (Qr),
+        ``direct_runoff`` (Qd) and ``runoff`` (Q = Qr + Qd). The balance
+        ``sum(new state) - sum(state) = precipitation + exchange - actual_evaporation -
+        runoff`` holds to rounding.
+    """
+    q = prepare(params)
+    n = q["x1"].shape[0]
+    p = np.broadcast_to(np.asarray(forcing["precipitation"], dtype=np.float64), (n,))
+    e = np.broadcast_to(np.asarray(forcing["pet"], dtype=np.float64), (n,))
+    state = np.asarray(state, dtype=np.float64)
+    out = np.zeros((n, N_STATE), order="F")
+    fluxes = {name: np.empty(n) for name in FLUXES[2:]}
+    w = np.empty((10, min(n, BLOCK)))
+    for i0 in range(0, n, BLOCK):
+        i1 = min(i0 + BLOCK, n)
+        b = slice(i0, i1)
+        qb = {k: v[b] for k, v in q.items()}
+        _block(state[b], p[b], e[b], qb, out[b], {k: v[b] for k, v in fluxes.items()},
+               w[:, : i1 - i0])
+    return out, {"precipitation": p, "pet": e, **fluxes}
+
+
+MODEL = register(
+    Model(
+        name="gr4j",
+        description="GR4J daily rainfall-runoff model (4 parameters, 2 stores, 2 unit hydrographs)",
+        reference="Perrin, C., Michel, C., Andréassian, V. (2003). Improvement of a "
+        "parsimonious model for streamflow simulation. J. Hydrol. 279, 275-289.",
+        states=STATES,
+        parameters=PARAMETERS,
+        step=step,
+        initial_state=initial_state,
+        balance=WaterBalance(
+            inputs=("precipitation", "exchange"), outputs=("actual_evaporation", "runoff")
+        ),
+        fluxes=FLUXES,
+        prepare=prepare,
+    )
+)
