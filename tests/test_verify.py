@@ -4,12 +4,16 @@ computations; verify_results on small synthetic product files."""
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 import properscoring
 import pytest
 import scoringrules
+import xarray as xr
 from scipy import stats
 
 import assim.verify as v
+from assim.config import load_config
+from assim.errors import InputError
 
 # --------------------------------------------------------------------------- CRPS
 
@@ -252,3 +256,202 @@ def test_metrics_vectorise_over_leading_dimensions():
 
 
 # --------------------------------------------------------------------------- verify_results
+
+BASINS = ("alder", "birch")
+THRESHOLDS = ("minor", "major")
+
+
+def _encode_time(ds: xr.Dataset, *names: str) -> dict:
+    enc = {"units": "days since 1970-01-01", "calendar": "standard", "dtype": "int32"}
+    return {n: dict(enc) for n in names if n in ds.variables}
+
+
+def make_study(tmp_path, *, days=150, members=8, leads=3, every=7, hindcast=True, forecast=True):
+    """Write a small synthetic study following the product contract: prepared observations
+    and basins (through assim.io.prepared), openloop.nc, analysis.nc, hindcast.nc and one
+    forecast file (with xarray). Returns (cfg, truth) where truth holds the arrays written."""
+    from assim.io.common import global_attributes
+    from assim.io.prepared import (
+        basins_dataset,
+        observations_dataset,
+        write_basins,
+        write_observations,
+    )
+
+    rng = np.random.default_rng(20)
+    nb = len(BASINS)
+    start = np.datetime64("2020-01-01")
+    all_days = start + np.arange(days + 40).astype("timedelta64[D]")
+    t = np.arange(all_days.size)
+    true = 6 + 3 * np.sin(2 * np.pi * t / 60)[None] + np.array([[0.0], [4.0]])
+    true = true + 8 * (rng.random((nb, t.size)) < 0.05) * rng.random((nb, t.size))  # floods
+    q_obs = true * rng.lognormal(0, 0.05, size=true.shape)
+    flag = np.zeros(true.shape, dtype=np.int16)
+    q_obs[0, 30:35] = np.nan  # missing days
+    flag[0, 30:35] = 64
+    flag[1, 50] = 64  # flagged day with a (wrong) value left in place
+    q_obs[1, 50] = 1e4
+    cover = np.where(flag == 0, 1.0, 0.2)
+    prepared = tmp_path / "prepared"
+    obs_ds = observations_dataset(BASINS, all_days, q_obs, flag, cover, np.full(flag.shape, 24),
+                                  np.zeros(flag.shape, int), [45.0, 46.0], [7.0, 8.0])
+    write_observations(obs_ds, prepared / "observations.nc")
+    thr = np.array([[9.0, 12.0], [13.0, np.nan]])
+    b_ds = basins_dataset(BASINS, ["Alder Creek", "Birch River"], [120.0, 340.0], [45.0, 46.0],
+                          [7.0, 8.0], "linear_reservoir", {"k": [0.1, 0.2], "c": [0.02, 0.02]},
+                          thr, THRESHOLDS, ["discharge", "discharge"])
+    write_basins(b_ds, prepared / "basins.nc")
+
+    results = tmp_path / "results"
+    results.mkdir()
+    run_days = all_days[10 : 10 + days]  # the run's output days (after spin-up)
+    tr = true[:, 10 : 10 + days]
+    q_attrs = {"standard_name": "water_volume_transport_in_river_channel", "units": "m3 s-1"}
+    coords = {
+        "basin": ("basin", np.array(BASINS, dtype=object), {"cf_role": "timeseries_id"}),
+        "time": ("time", run_days.astype("datetime64[ns]")),
+        "member": ("member", np.arange(members)),
+    }
+    ens_open = tr[..., None] * rng.lognormal(0.15, 0.25, size=(nb, days, members))
+    ens_assim = tr[..., None] * rng.lognormal(0.0, 0.08, size=(nb, days, members))
+    out = {"openloop": ens_open, "assimilation": ens_assim}
+    for name, ens in (("openloop.nc", ens_open), ("analysis.nc", ens_assim)):
+        ds = xr.Dataset({"discharge": (("basin", "time", "member"), ens, q_attrs)}, coords=coords,
+                        attrs=global_attributes("synthetic run"))
+        if name == "analysis.nc":
+            ds["discharge_analysis"] = (("basin", "time", "member"), ens * 0.98, q_attrs)
+            ds["observed_discharge"] = (("basin", "time"), q_obs[:, 10 : 10 + days], q_attrs)
+            ds["spread_before"] = (("basin", "time"), ens.std(axis=-1), q_attrs)
+            ds["spread_after"] = (("basin", "time"), 0.8 * ens.std(axis=-1), q_attrs)
+        ds.to_netcdf(results / name, encoding=_encode_time(ds, "time"))
+    issue = run_days[::every][:-1]
+    out.update(run_days=run_days, issue=issue, q_obs=q_obs, flag=flag, all_days=all_days, thr=thr)
+    if hindcast:
+        lead = np.arange(1, leads + 1)
+        idx = (issue - all_days[0]).astype(int)[:, None] + lead[None]  # (issue, lead) valid day
+        tv = true[:, idx]  # (basin, issue, lead)
+        hc = np.stack([tv[..., None] * rng.lognormal(0.15, 0.3, size=tv.shape + (members,)),
+                       tv[..., None] * rng.lognormal(0.0, 0.1 * lead[:, None], size=tv.shape + (members,))])
+        ds = xr.Dataset(
+            {"discharge": (("experiment", "basin", "issue_time", "lead", "member"), hc, q_attrs)},
+            coords={"experiment": np.array(["openloop", "assimilation"], dtype=object),
+                    "basin": coords["basin"], "issue_time": issue.astype("datetime64[ns]"),
+                    "lead": ("lead", lead, {"units": "days"}), "member": np.arange(members)},
+            attrs=global_attributes("synthetic hindcast"))
+        ds.to_netcdf(results / "hindcast.nc", encoding=_encode_time(ds, "issue_time"))
+        out["hindcast"] = hc
+    if forecast:
+        day = run_days[-1]
+        lead = np.arange(1, 11)
+        base = true[:, (day - all_days[0]).astype(int) + lead]
+        ens = base[..., None] * rng.lognormal(0, 0.05 * np.sqrt(lead)[None, :, None], size=(nb, 10, members))
+        qs = np.array([0.05, 0.25, 0.5, 0.75, 0.95])
+        p = v.exceedance_probability(ens[:, :, None, :], thr[:, None, :])  # (basin, lead, threshold)
+        ds = xr.Dataset(
+            {"discharge": (("basin", "lead", "member"), ens, q_attrs),
+             "discharge_quantile": (("basin", "lead", "quantile"),
+                                    np.quantile(ens, qs, axis=-1).transpose(1, 2, 0), q_attrs),
+             "exceedance_probability": (("basin", "lead", "threshold"), p, {"units": "1"}),
+             "thresholds": (("basin", "threshold"), thr, q_attrs)},
+            coords={"basin": coords["basin"], "lead": ("lead", lead, {"units": "days"}),
+                    "member": np.arange(members), "quantile": qs,
+                    "threshold": np.array(THRESHOLDS, dtype=object),
+                    "valid_time": ("lead", (day + lead.astype("timedelta64[D]")).astype("datetime64[ns]")),
+                    "issue_time": day.astype("datetime64[ns]")},
+            attrs=global_attributes("synthetic forecast", issue_date=str(day), analysis="performed"))
+        path = results / "forecasts" / f"forecast-{day}.nc"
+        path.parent.mkdir()
+        ds.to_netcdf(path, encoding=_encode_time(ds, "valid_time", "issue_time"))
+        out["issue_date"] = str(day)
+    cfg = load_config(None, data={"prepared": str(prepared)}, results=str(results),
+                      forecast={"history_days": 20}, ensemble={"members": members, "basin_chunk": 1})
+    return cfg, out
+
+
+def _usable(truth):
+    q = truth["q_obs"].copy()
+    q[(truth["flag"] & 64) != 0] = np.nan
+    return q
+
+
+def test_verify_results_writes_tidy_csv_and_counts_usable_readings(tmp_path):
+    """Common practice, no published source: skill.csv has exactly the columns basin,
+    experiment, lead, metric, value, n; n counts only usable readings (missing and flagged
+    days skipped), and lead-0 CRPS equals the reference CRPS (properscoring.crps_ensemble)
+    averaged over the usable days alone."""
+    cfg, truth = make_study(tmp_path)
+    ds = v.verify_results(cfg)
+    table = pd.read_csv(cfg["results"] + "/skill.csv")
+    assert list(table.columns) == ["basin", "experiment", "lead", "metric", "value", "n"]
+    assert ds.attrs["product_path"].endswith("skill.nc")
+    assert set(ds["metric"].values) >= {"nse", "kge", "kge_modified", "nse_log", "pbias", "rmse", "crps",
+                                         "crps_fair", "crpss", "spread_skill", "brier_minor", "brier_major"}
+    assert ds["lead"].values.tolist() == [0, 1, 2, 3]
+
+    usable = _usable(truth)
+    day0 = (truth["run_days"] - truth["all_days"][0]).astype(int)
+    obs0 = usable[:, day0]
+    n_usable = np.isfinite(obs0).sum(axis=-1)
+    assert n_usable.tolist() == [len(day0) - 5, len(day0) - 1]
+    got_n = ds["n"].sel(experiment="openloop", lead=0, metric="crps").values
+    np.testing.assert_array_equal(got_n, n_usable)
+    row = table[(table.basin == "birch") & (table.experiment == "openloop") & (table.lead == 0)
+                & (table.metric == "nse")]
+    assert int(row["n"].iloc[0]) == n_usable[1]
+    ref = properscoring.crps_ensemble(obs0, truth["openloop"])
+    expected = np.nanmean(np.where(np.isfinite(obs0), ref, np.nan), axis=-1)
+    np.testing.assert_allclose(ds["skill"].sel(experiment="openloop", lead=0, metric="crps").values,
+                               expected, rtol=1e-5)
+
+    # leads: n counts the issue times whose valid day has a usable reading
+    idx = (truth["issue"] - truth["all_days"][0]).astype(int)
+    for lead in (1, 3):
+        expected_n = np.isfinite(usable[:, idx + lead]).sum(axis=-1)
+        np.testing.assert_array_equal(ds["n"].sel(experiment="assimilation", lead=lead, metric="rmse").values,
+                                      expected_n)
+    # CRPSS of the open loop against itself is 0; the sharper assimilation has positive skill
+    np.testing.assert_allclose(ds["skill"].sel(experiment="openloop", metric="crpss").values, 0.0, atol=1e-12)
+    assert np.all(ds["skill"].sel(experiment="assimilation", metric="crpss", lead=0).values > 0.3)
+    # birch has no "major" level: no Brier score for it
+    assert ds["n"].sel(basin="birch", metric="brier_major").values.sum() == 0
+    assert np.isfinite(ds["skill"].sel(basin="alder", metric="brier_major").values).all()
+    assert not ((table.basin == "birch") & (table.metric == "brier_major")).any()
+
+
+def test_verify_results_matches_metric_functions_on_hindcast(tmp_path):
+    """Common practice, no published source: a hindcast lead is scored on valid day
+    issue_time + lead; NSE of the median equals assim.verify.nse on those pairs."""
+    cfg, truth = make_study(tmp_path)
+    ds = v.verify_results(cfg)
+    usable = _usable(truth)
+    idx = (truth["issue"] - truth["all_days"][0]).astype(int)
+    lead = 2
+    obs = usable[:, idx + lead]
+    med = np.median(truth["hindcast"][0][:, :, lead - 1], axis=-1)
+    np.testing.assert_allclose(ds["skill"].sel(experiment="openloop", lead=lead, metric="nse").values,
+                               v.nse(med, obs), rtol=1e-5)
+    hist = ds["rank_histogram"].sel(experiment="openloop", lead=lead).values
+    np.testing.assert_allclose(hist.sum(axis=-1), np.isfinite(obs).sum(axis=-1))
+
+
+def test_verify_results_skips_absent_hindcast_and_needs_a_product(tmp_path):
+    """Common practice, no published source: an absent hindcast is noted, not an error;
+    with no product at all verify_results raises InputError naming the results folder."""
+    cfg, _ = make_study(tmp_path, hindcast=False, forecast=False)
+    ds = v.verify_results(cfg)
+    assert ds["lead"].values.tolist() == [0]
+    assert "hindcast.nc absent" in ds.attrs["notes"]
+    for name in ("openloop.nc", "analysis.nc"):
+        (tmp_path / "results" / name).unlink()
+    with pytest.raises(InputError, match="no product to verify"):
+        v.verify_results(cfg)
+
+
+def test_package_is_callable_like_the_entry_point(tmp_path):
+    """Common practice, no published source: `assim.verify(cfg)` keeps working after the
+    assim.verify package has been imported (it shadows the entry point on `assim`)."""
+    import assim
+
+    cfg, _ = make_study(tmp_path, hindcast=False, forecast=False)
+    ds = assim.verify(cfg)
+    assert ds.attrs["product_path"].endswith("skill.nc")

@@ -1,0 +1,127 @@
+"""skill.nc and skill.csv: the verification products; and a checked opener for products.
+
+``skill.nc`` holds ``skill`` and ``n`` on ``(basin, experiment, lead, metric)`` plus the
+rank histograms and reliability tables the figures draw. ``skill.csv`` is the tidy table of
+``skill`` and ``n`` with exactly the columns :data:`CSV_COLUMNS`.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterable
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from assim.errors import InputError
+from assim.io.common import atomic_path
+
+CSV_COLUMNS = ("basin", "experiment", "lead", "metric", "value", "n")
+SKILL_VARIABLES = ("skill", "n")
+
+
+def open_product(
+    path: str | os.PathLike, variables: Iterable[str] = (), *, any_of: Iterable[str] = ()
+) -> xr.Dataset:
+    """Open a NetCDF product lazily and check that it holds the expected variables.
+
+    Parameters
+    ----------
+    path : path of the file
+    variables : names that must all be present (data variables or coordinates)
+    any_of : names of which at least one must be present (e.g. ``discharge`` or
+        ``discharge_quantile``)
+
+    Returns
+    -------
+    xarray.Dataset, opened lazily (values are read when used).
+
+    Raises
+    ------
+    InputError
+        naming the file (and the variable) when it is missing, unreadable or incomplete.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputError("file not found", file=path)
+    try:
+        ds = xr.open_dataset(path, engine="netcdf4")
+    except (OSError, ValueError) as exc:
+        raise InputError(f"cannot read as NetCDF ({exc})", file=path) from None
+    for name in variables:
+        if name not in ds.variables:
+            ds.close()
+            raise InputError("expected variable is missing", file=path, variable=name)
+    any_of = tuple(any_of)
+    if any_of and not any(name in ds.variables for name in any_of):
+        ds.close()
+        raise InputError(
+            "expected one of these variables, found none", file=path, variable=" or ".join(any_of)
+        )
+    return ds
+
+
+def write_skill(ds: xr.Dataset, nc_path: str | os.PathLike, csv_path: str | os.PathLike) -> None:
+    """Write ``skill.nc`` (the whole Dataset) and ``skill.csv`` (tidy ``skill`` and ``n``).
+
+    Parameters
+    ----------
+    ds : Dataset with ``skill`` and ``n`` on (basin, experiment, lead, metric)
+    nc_path, csv_path : destinations; each file is written whole or not at all.
+    """
+    encoding = {name: {"zlib": True, "complevel": 4} for name in ds.data_vars}
+    with atomic_path(nc_path) as tmp:
+        ds.to_netcdf(tmp, engine="netcdf4", encoding=encoding)
+    table = skill_table(ds)
+    with atomic_path(csv_path) as tmp:
+        table.to_csv(tmp, index=False, float_format="%.6g")
+
+
+def skill_table(ds: xr.Dataset) -> pd.DataFrame:
+    """The tidy table of a skill Dataset: one row per (basin, experiment, lead, metric)
+    with at least one scored pair; columns :data:`CSV_COLUMNS`."""
+    skill = ds["skill"].transpose("basin", "experiment", "lead", "metric")
+    n = ds["n"].transpose("basin", "experiment", "lead", "metric")
+    index = pd.MultiIndex.from_product(
+        [skill[d].values for d in skill.dims], names=list(skill.dims)
+    ).to_frame(index=False)
+    index["value"] = skill.values.ravel()
+    index["n"] = n.values.ravel().astype(np.int64)
+    index["lead"] = index["lead"].astype(np.int64)
+    table = index.loc[index["n"] > 0, list(CSV_COLUMNS)]
+    return table.reset_index(drop=True)
+
+
+def read_skill(path: str | os.PathLike) -> xr.Dataset:
+    """Read ``skill.nc`` into memory.
+
+    Raises
+    ------
+    InputError
+        when the file is missing or lacks ``skill`` or ``n``.
+    """
+    with open_product(path, SKILL_VARIABLES) as ds:
+        return ds.load()
+
+
+def read_skill_csv(path: str | os.PathLike) -> pd.DataFrame:
+    """Read ``skill.csv``; checks that its columns are exactly :data:`CSV_COLUMNS`.
+
+    Raises
+    ------
+    InputError
+        when the file is missing or its header differs.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputError("file not found", file=path)
+    table = pd.read_csv(path, dtype={"basin": str, "experiment": str, "metric": str})
+    if tuple(table.columns) != CSV_COLUMNS:
+        raise InputError(
+            f"columns are {', '.join(table.columns)}; expected {', '.join(CSV_COLUMNS)}",
+            file=path,
+            place="line 1",
+        )
+    return table
