@@ -1,0 +1,41 @@
+"""The assimilation step: exact and ensemble Kalman filters on plain numpy arrays.
+
+Importable into any model (numpy and scipy only, no files)::
+
+    from assim.filters import ensemble_update, Inflation, Transform, obs_variance
+
+    var = obs_variance(q_obs, "relative", relative=0.1, floor=0.05)   # (basin, n_obs)
+    a = ensemble_update(states, q_pred, q_obs, var, method="eakf",    # (basin, member, ...)
+                        inflation=Inflation(rtps=0.5), gate_sigma=5.0, lower=0.0)
+    states = a.states                                                 # same shape as input
+
+- :func:`kalman_predict`, :func:`kalman_update`: exact linear Kalman filter (the reference).
+- :func:`ensemble_update`: one analysis (``enkf``, ``etkf``, ``eakf``) returning an
+  :class:`Analysis` with the updated states and the diagnostics.
+- :class:`Inflation`: multiplicative, RTPS, RTPP.
+- :func:`obs_variance`, :class:`Transform`: observation errors and the assimilation space.
+"""
+
+from assim.filters.ensemble import METHODS, Analysis, ensemble_update
+from assim.filters.inflation import (
+    Inflation,
+    inflate,
+    relax_to_prior_perturbations,
+    relax_to_prior_spread,
+)
+from assim.filters.kalman import kalman_predict, kalman_update
+from assim.filters.obs import Transform, obs_variance
+
+__all__ = [
+    "METHODS",
+    "Analysis",
+    "Inflation",
+    "Transform",
+    "ensemble_update",
+    "inflate",
+    "kalman_predict",
+    "kalman_update",
+    "obs_variance",
+    "relax_to_prior_perturbations",
+    "relax_to_prior_spread",
+]

@@ -1,0 +1,419 @@
+"""One ensemble Kalman analysis for many basins at once.
+
+:func:`ensemble_update` corrects an ensemble of model states with the observations of one
+time step. The caller supplies the predicted observations of each member (any nonlinear
+observation operator: the model's discharge); the cross-covariance between the states and
+those predictions carries the correction into the states. Leading dimensions are basins
+(any batch shape); nothing is model-specific, so joint state-parameter estimation is done by
+appending parameter columns to the state array.
+
+How the numbers are computed (all methods, per basin)
+-----------------------------------------------------
+Observation errors are uncorrelated, so each observation is divided by its error standard
+deviation ("whitened", R = I). With ``N`` members, prior state perturbations ``X'``,
+whitened predicted perturbations ``Y'`` (member x n_obs), inflation factor ``g`` on the
+perturbations, whitened innovation ``d``:
+
+- ``C = X'^T Y' / (N - 1)`` (state-prediction cross-covariance, n_state x n_obs),
+  ``A = g^2 Y'^T Y' / (N - 1)`` (predicted covariance, n_obs x n_obs);
+- every method adds to the states an increment of rank <= n_obs, ``W C^T``, with member
+  weights ``W`` (member x n_obs):
+
+  - ``enkf``: ``W_i = g^2 (A + I)^-1 (d + z_i - g Y'_i)``, ``z_i`` standard normal
+    observation perturbations (Burgers et al. 1998);
+  - ``etkf``: ``W_i = g^2 (A + I)^-1 d + g^3 f(A) Y'_i`` with
+    ``f(a) = ((1 + a)^-1/2 - 1) / a``, which is the symmetric square root transform of
+    Hunt et al. (2007) written in observation space;
+  - ``eakf``: observations one at a time (Anderson 2001), each moving the predicted
+    observation and regressing its increment onto the states and the remaining predicted
+    observations (Anderson 2003). For one observation it is the ``etkf`` formula.
+
+Costs are O(N n_state n_obs) per basin plus O(n_obs^3) for the ``etkf`` eigenproblem.
+
+Perturbed observations of ``enkf`` are centred per basin and observation (their member
+mean is removed). Centring makes the analysis mean exactly the Kalman update of the
+ensemble mean, with no sampling noise, while the centred sample covariance (divisor N - 1)
+keeps the expected perturbation variance equal to R. Centring uses only the members of one
+basin on one day, which one call always holds, so the numbers still depend only on the
+draws of that basin and day. ``centre_noise=False`` gives the uncentred scheme.
+
+This module imports numpy only.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from assim.errors import InputError
+from assim.filters.inflation import Inflation, relax_to_prior_perturbations, relax_to_prior_spread
+from assim.filters.obs import Transform
+
+__all__ = ["METHODS", "Analysis", "ensemble_update"]
+
+METHODS = ("enkf", "etkf", "eakf")
+
+
+@dataclass(frozen=True)
+class Analysis:
+    """Result of one :func:`ensemble_update`.
+
+    Shapes: ``...`` are the leading (basin) dimensions of the input.
+
+    Attributes
+    ----------
+    states : (..., member, n_state) float64, mm
+        Updated ensemble (same shape as the input states).
+    innovation : (..., n_obs) float64
+        Observed minus ensemble mean of predicted, in the assimilation space; NaN where the
+        reading is missing or the prediction is not finite.
+    innovation_variance : (..., n_obs) float64
+        ``HPH^T + R``: ensemble variance of predicted (after multiplicative inflation) plus
+        the observation error variance, assimilation space.
+    predicted_spread : (..., n_obs) float64
+        Ensemble standard deviation of predicted before inflation, assimilation space.
+    spread_before, spread_after : (..., n_state) float64, mm
+        Ensemble standard deviation (ddof = 1) of each state before and after the analysis.
+    used : (..., n_obs) bool
+        Observations that entered the analysis.
+    gated : (..., n_obs) bool
+        Observations rejected by the innovation gate.
+    missing : (..., n_obs) bool
+        Observations absent (NaN reading or NaN error variance).
+    invalid : (..., n_obs) bool
+        Readings present but unusable: the transform is undefined at the reading or at a
+        prediction, a prediction is not finite, or an updated state is not finite.
+    clipped : (..., n_state) float64, mm
+        Water added to the state by clipping to the bounds, summed over members: positive
+        where members were raised to a lower bound, negative where lowered to an upper bound.
+    updated : (...) bool
+        Basins whose states were changed (at least one observation used).
+    """
+
+    states: np.ndarray
+    innovation: np.ndarray
+    innovation_variance: np.ndarray
+    predicted_spread: np.ndarray
+    spread_before: np.ndarray
+    spread_after: np.ndarray
+    used: np.ndarray
+    gated: np.ndarray
+    missing: np.ndarray
+    invalid: np.ndarray
+    clipped: np.ndarray
+    updated: np.ndarray
+
+    @property
+    def clipped_total(self) -> np.ndarray:
+        """(...) float64, mm: clipped water summed over members and states (signed)."""
+        return self.clipped.sum(axis=-1)
+
+
+def _fail(message, variable, place=None):
+    raise InputError(message, variable=variable, place=place)
+
+
+def _check(states, predicted, observed, obs_variance, method, update_mask, obs_noise):
+    X = np.asarray(states, dtype=np.float64)
+    Y = np.asarray(predicted, dtype=np.float64)
+    y = np.asarray(observed, dtype=np.float64)
+    if method not in METHODS:
+        _fail(f"method must be one of {METHODS}, got {method!r}", "method")
+    if X.ndim < 2:
+        _fail(f"states must be (..., member, n_state), got shape {X.shape}", "states")
+    batch, N, n = X.shape[:-2], X.shape[-2], X.shape[-1]
+    if N < 2:
+        _fail(f"an ensemble needs at least 2 members, got {N}", "states")
+    if Y.ndim != X.ndim or Y.shape[:-1] != X.shape[:-1]:
+        _fail(
+            f"predicted must be (..., member, n_obs) matching states {X.shape}, got {Y.shape}",
+            "predicted",
+        )
+    m = Y.shape[-1]
+    if y.shape != batch + (m,):
+        _fail(f"observed must have shape {batch + (m,)}, got {y.shape}", "observed")
+    try:
+        r = np.broadcast_to(np.asarray(obs_variance, dtype=np.float64), y.shape)
+    except ValueError:
+        _fail(
+            f"obs_variance must broadcast to {y.shape}, got {np.shape(obs_variance)}",
+            "obs_variance",
+        )
+    if update_mask is None:
+        mask = np.ones(n, dtype=bool)
+    else:
+        mask = np.asarray(update_mask)
+        if mask.dtype != bool or mask.shape != (n,):
+            _fail(f"update_mask must be a ({n},) bool array, got {mask.dtype} {mask.shape}", "update_mask")
+    noise = None
+    if obs_noise is not None:
+        noise = np.asarray(obs_noise, dtype=np.float64)
+        if noise.shape != Y.shape:
+            _fail(f"obs_noise must have the shape of predicted {Y.shape}, got {noise.shape}", "obs_noise")
+    return X, Y, y, r, mask, noise
+
+
+def _mean(a: np.ndarray) -> np.ndarray:
+    """Member mean of a (B, N, k) array, (B, k)."""
+    return np.full(a.shape[1], 1.0 / a.shape[1]) @ a
+
+
+def _spread(a: np.ndarray, mean: np.ndarray) -> np.ndarray:
+    """Ensemble standard deviation (ddof = 1) of a (B, N, k) array given its mean, (B, k)."""
+    dev = a - mean[:, None, :]
+    return np.sqrt(np.einsum("bik,bik->bk", dev, dev) / (a.shape[1] - 1))
+
+
+def _sqrt_weight(a: np.ndarray) -> np.ndarray:
+    """``((1 + a)^-1/2 - 1) / a``, written so that it holds at ``a = 0`` (value -1/2)."""
+    root = np.sqrt(1.0 + np.maximum(a, 0.0))
+    return -1.0 / (root * (1.0 + root))
+
+
+def _weights_one(method, dw, Ypw, A, z, gamma):
+    """Member weights for one observation, (B, N); the general formulas with n_obs = 1."""
+    a = A[:, 0, 0]
+    d = dw[:, 0]
+    yp = Ypw[:, :, 0]
+    if method == "enkf":
+        return (gamma**2 / (1.0 + a))[:, None] * (d[:, None] + z[:, :, 0] - gamma * yp)
+    mean_w = gamma**2 * d / (1.0 + a)  # Hunt et al. (2007), eq. 20
+    return mean_w[:, None] + (gamma**3 * _sqrt_weight(a))[:, None] * yp  # Hunt et al. (2007), eq. 24
+
+
+def _weights(method, dw, Ypw, A, z, gamma):
+    """Member weights (B, N, m) of the increment ``W C^T`` for enkf and etkf."""
+    m = A.shape[-1]
+    if method == "enkf":
+        rhs = dw[:, None, :] + z - gamma * Ypw
+        sol = np.linalg.solve(A + np.eye(m), np.swapaxes(rhs, 1, 2))
+        return gamma**2 * np.swapaxes(sol, 1, 2)  # Burgers et al. (1998), sect. 3
+    lam, V = np.linalg.eigh(A)
+    mean_w = gamma**2 * np.einsum("bjk,bk,blk,bl->bj", V, 1.0 / (1.0 + lam), V, dw)  # Hunt et al. (2007), eq. 20
+    G = np.einsum("bjk,bk,blk->bjl", V, _sqrt_weight(lam), V)
+    return mean_w[:, None, :] + gamma**3 * np.einsum("bik,bkl->bil", Ypw, G)  # Hunt et al. (2007), eq. 24
+
+
+def _eakf_serial(Xu, xbar_u, Ypw, ybar_w, y_w, used, gamma):
+    """Serial ensemble adjustment, one observation at a time; returns the updated states."""
+    N = Xu.shape[1]
+    X = Xu + (gamma - 1.0) * (Xu - xbar_u[:, None, :]) if gamma != 1.0 else Xu.copy()
+    Y = ybar_w[:, None, :] + gamma * Ypw
+    for j in range(Y.shape[-1]):
+        yj = Y[:, :, j]
+        ym = yj.mean(axis=1)
+        yp = yj - ym[:, None]
+        var = np.einsum("bi,bi->b", yp, yp) / (N - 1)
+        post_var = var / (1.0 + var)  # Anderson (2001), eq. 4.1 with R = 1
+        shift = post_var * (y_w[:, j] - ym)  # Anderson (2001), eq. 4.2 with R = 1
+        dy = shift[:, None] + (1.0 / np.sqrt(1.0 + var) - 1.0)[:, None] * yp  # Anderson (2001), eq. 4.3
+        dy = np.where(used[:, j, None], dy, 0.0)
+        inv_var = np.where(var > 0.0, 1.0 / np.where(var > 0.0, var, 1.0), 0.0)
+        bx = (np.einsum("bin,bi->bn", X, yp) / (N - 1)) * inv_var[:, None]  # Anderson (2003), eq. 9
+        X += dy[:, :, None] * bx[:, None, :]
+        if j + 1 < Y.shape[-1]:
+            rest = Y[:, :, j + 1 :]
+            by = (np.einsum("bik,bi->bk", rest, yp) / (N - 1)) * inv_var[:, None]
+            rest += dy[:, :, None] * by[:, None, :]
+    return X
+
+
+def ensemble_update(
+    states,
+    predicted,
+    observed,
+    obs_variance,
+    *,
+    method: str = "enkf",
+    rng: np.random.Generator | None = None,
+    inflation: Inflation | None = None,
+    gate_sigma: float | None = None,
+    lower=None,
+    upper=None,
+    update_mask=None,
+    transform: Transform | None = None,
+    obs_noise=None,
+    centre_noise: bool = True,
+) -> Analysis:
+    """One ensemble Kalman analysis for every basin of a batch.
+
+    Parameters
+    ----------
+    states : (..., member, n_state) float64, mm
+        Prior ensemble of model states (and any parameter columns appended by the caller).
+    predicted : (..., member, n_obs) float64, observation units
+        Each member's prediction of each observation (any observation operator).
+    observed : (..., n_obs) float64, observation units
+        The readings; NaN = missing (per basin and per element).
+    obs_variance : (..., n_obs) float64, squared assimilation units
+        Observation error variance, already in the assimilation space (see
+        :meth:`Transform.variance`); NaN = missing. Must be > 0 where a reading is present.
+    method : {"enkf", "etkf", "eakf"}
+        Stochastic EnKF with perturbed observations (Burgers et al. 1998), symmetric
+        ensemble transform (Bishop et al. 2001; Hunt et al. 2007), serial ensemble
+        adjustment (Anderson 2001).
+    rng : numpy.random.Generator, optional
+        Source of the ``enkf`` observation perturbations when ``obs_noise`` is not given.
+    inflation : Inflation, optional
+        Multiplicative prior inflation, RTPP and RTPS (RTPP applied before RTPS).
+    gate_sigma : float, optional
+        Reject an observation when ``|innovation| > gate_sigma * sqrt(HPH^T + R)``, from the
+        prior statistics (None or 0 = no gate).
+    lower, upper : array broadcastable to ``states``, optional
+        Physical bounds (mm); updated states outside are clipped and the clipped water
+        reported in :attr:`Analysis.clipped`.
+    update_mask : (n_state,) bool, optional
+        Columns the analysis may change (default all); the others are returned bit for bit.
+    transform : Transform, optional
+        Assimilate ``T(observed)`` against ``T(predicted)`` (log, Box-Cox).
+    obs_noise : (..., member, n_obs) float64, optional
+        Pre-drawn standard normal perturbations for ``enkf`` (scaled by the error sd here),
+        so that a caller can make them depend only on (seed, basin, member, day).
+    centre_noise : bool
+        Remove the member mean of the ``enkf`` perturbations per basin and observation.
+
+    Returns
+    -------
+    Analysis
+        Updated states and diagnostics. A basin with no usable observation is returned
+        bit for bit, as are the columns outside ``update_mask``.
+
+    Raises
+    ------
+    InputError
+        Shapes that do not fit, an unknown method, ``enkf`` without ``rng`` or
+        ``obs_noise``, or a non-positive ``obs_variance`` at a present reading.
+    """
+    X, Y, y, r, mask, noise = _check(
+        states, predicted, observed, obs_variance, method, update_mask, obs_noise
+    )
+    if method == "enkf" and noise is None and rng is None:
+        _fail("method 'enkf' needs rng or obs_noise for the perturbed observations", "rng")
+    infl = Inflation() if inflation is None else inflation
+    gamma = float(infl.multiplicative)
+    batch, N, n, m = X.shape[:-2], X.shape[-2], X.shape[-1], Y.shape[-1]
+    B = math.prod(batch)
+    X2 = X.reshape(B, N, n)
+    Y2 = Y.reshape(B, N, m)
+    y2 = y.reshape(B, m)
+    r2 = np.ascontiguousarray(r).reshape(B, m)
+
+    missing = ~(np.isfinite(y2) & np.isfinite(r2))
+    bad = ~missing & ~(r2 > 0.0)
+    if bad.any():
+        b, j = np.argwhere(bad)[0]
+        _fail(
+            f"must be > 0 where a reading is present, got {r2[b, j]!r}",
+            "obs_variance",
+            f"batch index {np.unravel_index(b, batch) if batch else ()}, observation {j}",
+        )
+    if transform is not None and transform.kind != "none":
+        y2 = transform.forward(y2)
+        Y2 = transform.forward(Y2)
+
+    cols = np.flatnonzero(mask)
+    full = cols.size == n
+    Xu = X2 if full else X2[:, :, cols]
+
+    xbar = _mean(X2)
+    xbar_u = xbar if full else xbar[:, cols]
+    ybar = Y2.mean(axis=1)
+    Yp = Y2 - ybar[:, None, :]
+    var_y = np.einsum("bim,bim->bm", Yp, Yp) / (N - 1)
+    innovation = y2 - ybar
+    innovation_variance = gamma**2 * var_y + r2
+
+    states_ok = np.isfinite(xbar_u).all(axis=-1) if cols.size else np.zeros(B, dtype=bool)
+    usable = ~missing & np.isfinite(innovation) & np.isfinite(var_y) & states_ok[:, None]
+    invalid = ~missing & ~usable
+    if gate_sigma:
+        with np.errstate(invalid="ignore"):
+            gated = usable & (np.abs(innovation) > gate_sigma * np.sqrt(innovation_variance))
+    else:
+        gated = np.zeros_like(usable)
+    used = usable & ~gated
+    active = used.any(axis=-1)
+
+    # Whitening: unused observations get weight 0, so they contribute exactly nothing.
+    s = np.where(used, 1.0 / np.sqrt(np.where(used, r2, 1.0)), 0.0)
+    Ypw = np.where(used[:, None, :], Yp, 0.0) * s[:, None, :]
+    dw = np.where(used, innovation, 0.0) * s
+    A = gamma**2 * np.einsum("bim,bik->bmk", Ypw, Ypw) / (N - 1)
+
+    if method == "eakf" and m > 1:
+        ybar_w = np.where(used, ybar, 0.0) * s
+        y_w = np.where(used, y2, 0.0) * s
+        Xa = _eakf_serial(Xu, xbar_u, Ypw, ybar_w, y_w, used, gamma)
+    else:
+        # Cross-covariance from the raw states: Y' sums to zero over members, so X^T Y'
+        # equals X'^T Y'; the second term removes what rounding leaves of that sum.
+        C = (
+            np.einsum("bin,bim->bnm", Xu, Ypw) - xbar_u[:, :, None] * Ypw.sum(axis=1)[:, None, :]
+        ) / (N - 1)
+        z = None
+        if method == "enkf":
+            z = noise.reshape(B, N, m) if noise is not None else rng.standard_normal((B, N, m))
+            if centre_noise:
+                z = z - z.mean(axis=1, keepdims=True)
+            z = np.where(used[:, None, :], z, 0.0)
+        if m == 1:
+            W = _weights_one(method, dw, Ypw, A, z, gamma)
+            Xa = np.einsum("bi,bn->bin", W, C[:, :, 0])
+        else:
+            W = _weights(method, dw, Ypw, A, z, gamma)
+            Xa = np.einsum("bim,bnm->bin", W, C)
+        Xa += Xu
+        if gamma != 1.0:
+            Xa += (gamma - 1.0) * (Xu - xbar_u[:, None, :])  # Anderson & Anderson (1999)
+
+    if infl.rtpp > 0.0 or infl.rtps > 0.0:
+        xa_bar = _mean(Xa)
+        Xap = Xa - xa_bar[:, None, :]
+        Xbp = gamma * (Xu - xbar_u[:, None, :])
+        if infl.rtpp > 0.0:
+            Xap = relax_to_prior_perturbations(Xap, Xbp, infl.rtpp)
+        if infl.rtps > 0.0:
+            sd_b = gamma * _spread(Xu, xbar_u)
+            sd_a = np.sqrt(np.einsum("bin,bin->bn", Xap, Xap) / (N - 1))
+            Xap = relax_to_prior_spread(Xap, sd_b, sd_a, infl.rtps)
+        Xa = xa_bar[:, None, :] + Xap
+
+    clipped = np.zeros((B, n))
+    if lower is not None or upper is not None:
+        raw = Xa
+        if lower is not None:
+            lo = np.broadcast_to(np.asarray(lower, dtype=np.float64), X.shape).reshape(B, N, n)
+            Xa = np.maximum(Xa, lo if full else lo[:, :, cols])
+        if upper is not None:
+            hi = np.broadcast_to(np.asarray(upper, dtype=np.float64), X.shape).reshape(B, N, n)
+            Xa = np.minimum(Xa, hi if full else hi[:, :, cols])
+        clipped[:, cols] = (Xa - raw).sum(axis=1)
+        clipped[~active] = 0.0
+
+    if full:
+        out = Xa
+    else:
+        out = X2.copy()
+        out[:, :, cols] = Xa
+    if not active.all():
+        out[~active] = X2[~active]
+
+    spread_before = _spread(X2, xbar)
+    spread_after = _spread(out, _mean(out))
+    invalid_innov = missing | ~np.isfinite(innovation)
+    return Analysis(
+        states=out.reshape(X.shape),
+        innovation=np.where(invalid_innov, np.nan, innovation).reshape(y.shape),
+        innovation_variance=np.where(invalid_innov, np.nan, innovation_variance).reshape(y.shape),
+        predicted_spread=np.sqrt(var_y).reshape(y.shape),
+        spread_before=spread_before.reshape(batch + (n,)),
+        spread_after=spread_after.reshape(batch + (n,)),
+        used=used.reshape(y.shape),
+        gated=gated.reshape(y.shape),
+        missing=missing.reshape(y.shape),
+        invalid=invalid.reshape(y.shape),
+        clipped=clipped.reshape(batch + (n,)),
+        updated=active.reshape(batch),
+    )
