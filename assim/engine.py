@@ -1,0 +1,1055 @@
+"""Time cycling of the ensemble: open loop, assimilation, hindcasts and forecasts.
+
+The engine works on arrays only (numpy; dask through :mod:`assim.parallel`). It receives the
+inputs of a run as an :class:`Inputs` record, its settings as a :class:`Settings` record and
+a *sink* for its results; it never opens a file. :mod:`assim.pipeline` builds the inputs from
+the prepared layer and passes an :mod:`assim.io.products` writer as the sink.
+
+One day of a run, for the whole flat (basin x member) batch at once:
+
+1. perturb the day's forcing (multiplicative lognormal AR(1) errors, :mod:`assim.perturb`);
+2. advance every member with one ``model.step`` call; add the optional state noise;
+3. predict discharge: runoff (mm d-1) -> m3 s-1 with the basin area;
+4. (assimilation, after the spin-up) update the chosen states, the predicted discharge (an
+   augmented column, giving ``discharge_analysis``) and the estimated parameters from the
+   day's usable gauge readings, with one :func:`assim.filters.ensemble_update` call over all
+   basins; basins without a reading are left unchanged;
+5. check that every state is finite (else :class:`assim.errors.RunError` naming basin and day).
+
+Time is cut into blocks (``ensemble.time_block_days``); within a block, each basin chunk
+(and, where members are independent, each member chunk) is one task that advances its part
+of the ensemble over the block and returns the block's outputs and its end state. The main
+thread hands each block to the sink and carries the states into the next block, so memory
+stays flat and the results do not depend on the chunking or the scheduler.
+"""
+
+from __future__ import annotations
+
+import warnings as _warnings
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from assim import parallel
+from assim import perturb as pt
+from assim.errors import ConfigError, RunError
+from assim.models.base import Model
+
+SECONDS_PER_DAY_OVER_1000 = 86.4  # Q[m3 s-1] = q[mm d-1] * area[km2] / 86.4
+OBS_USED, OBS_MISSING, OBS_GATED, OBS_REJECTED = 0, 1, 2, 3
+FORCINGS = ("precipitation", "pet")
+
+
+# ---------------------------------------------------------------- records
+
+
+@dataclass(frozen=True)
+class Inputs:
+    """Inputs of a run, on the run's days (spin-up included).
+
+    Attributes
+    ----------
+    basin_ids : (basin,) str
+    keys : (basin,) uint64, :func:`assim.perturb.basin_keys` of the ids
+    area_km2 : (basin,) float64, km2
+    days : (time,) int64, days since 1970-01-01, consecutive
+    precipitation, pet : (basin, time) float64, mm d-1
+    observed : (basin, time) float64, m3 s-1, usable daily discharge, NaN where missing
+    rejected : (basin, time) bool, readings rejected by quality control
+    parameters : dict name -> (basin,) float64, the basins' model parameters
+    climatology : optional :class:`Climatology` (the whole forcing record), for
+        climatological forecasts
+    forecast_forcing : optional forcing forecasts of hindcast issues: ``days`` (issue,)
+        int64 and ``precipitation``, ``pet`` (basin, issue, lead, file_member) mm d-1
+    """
+
+    basin_ids: tuple[str, ...]
+    keys: np.ndarray
+    area_km2: np.ndarray
+    days: np.ndarray
+    precipitation: np.ndarray
+    pet: np.ndarray
+    observed: np.ndarray
+    rejected: np.ndarray
+    parameters: dict[str, np.ndarray]
+    climatology: Climatology | None = None
+    forecast_forcing: Mapping[str, np.ndarray] | None = None
+
+    @property
+    def n_basin(self) -> int:
+        return len(self.basin_ids)
+
+    def subset(self, b: slice) -> Inputs:
+        """The inputs of the basins ``b`` (a slice)."""
+        return replace(
+            self,
+            basin_ids=self.basin_ids[b],
+            keys=self.keys[b],
+            area_km2=self.area_km2[b],
+            precipitation=self.precipitation[b],
+            pet=self.pet[b],
+            observed=self.observed[b],
+            rejected=self.rejected[b],
+            parameters={k: v[b] for k, v in self.parameters.items()},
+            climatology=None if self.climatology is None else self.climatology.subset(b),
+            forecast_forcing=None if self.forecast_forcing is None else {
+                k: (v if k == "days" else v[b]) for k, v in self.forecast_forcing.items()},
+        )
+
+
+@dataclass(frozen=True)
+class Climatology:
+    """The forcing record used for climatological (ensemble streamflow prediction) forecasts.
+
+    days : (n,) int64 consecutive days; precipitation, pet : (basin, n) float64, mm d-1
+    """
+
+    days: np.ndarray
+    precipitation: np.ndarray
+    pet: np.ndarray
+
+    def subset(self, b: slice) -> Climatology:
+        return replace(self, precipitation=self.precipitation[b], pet=self.pet[b])
+
+
+@dataclass(frozen=True)
+class EnsembleState:
+    """The ensemble at the end of day ``day`` (everything a restart holds).
+
+    states : (basin, member, n_state) float64, mm
+    parameters : dict name -> (basin, member) float64
+    ar1 : dict forcing name -> (basin, member) float64, the AR(1) log errors on ``day``
+    collapse_days : (basin,) int64, consecutive days of collapsed spread so far
+    """
+
+    day: int
+    states: np.ndarray
+    parameters: dict[str, np.ndarray]
+    ar1: dict[str, np.ndarray]
+    collapse_days: np.ndarray
+
+    def subset(self, b: slice, m: slice = slice(None)) -> EnsembleState:
+        return EnsembleState(
+            day=self.day,
+            states=self.states[b, m],
+            parameters={k: v[b, m] for k, v in self.parameters.items()},
+            ar1={k: v[b, m] for k, v in self.ar1.items()},
+            collapse_days=self.collapse_days[b],
+        )
+
+
+@dataclass(frozen=True)
+class ObsError:
+    """Observation error of discharge: ``absolute`` sd, or ``relative`` x Q with a floor (m3 s-1)."""
+
+    kind: str = "relative"
+    absolute: float = 1.0
+    relative: float = 0.1
+    floor: float = 0.05
+
+    def variance(self, observed: np.ndarray) -> np.ndarray:
+        """(...) m3 s-1 -> (...) (m3 s-1)^2, by :func:`assim.filters.obs_variance` (NaN stays NaN)."""
+        from assim.filters import obs_variance
+
+        return obs_variance(observed, self.kind, sd=self.absolute, relative=self.relative, floor=self.floor)
+
+
+@dataclass(frozen=True)
+class Settings:
+    """Settings of one engine run (built from the config by :func:`settings_from_config`)."""
+
+    mode: str = "assimilate"
+    members: int = 64
+    seed: int = 0
+    spinup_days: int = 0
+    precipitation: pt.LognormalAR1 = pt.LognormalAR1(0.3, 0.5)
+    pet: pt.LognormalAR1 = pt.LognormalAR1(0.1, 0.8)
+    parameter_sd: Mapping[str, float] = field(default_factory=dict)
+    state_noise: Mapping[str, float] = field(default_factory=dict)
+    method: str = "enkf"
+    update_states: tuple[str, ...] = ()
+    obs_error: ObsError = ObsError()
+    transform: str = "none"
+    transform_offset: float = 0.01
+    transform_lambda: float = 0.3
+    gate_sigma: float = 5.0
+    inflation: float = 1.0
+    rtps: float = 0.0
+    rtpp: float = 0.0
+    estimate: tuple[str, ...] = ()
+    shrinkage: float = 0.98
+    collapse_ratio: float = 0.1
+    collapse_days: int = 30
+    gating_warn_fraction: float = 0.2
+    quantiles: tuple[float, ...] | None = None
+    write_states: tuple[str, ...] = ()
+    float32: bool = True
+    basin_chunk: int = 64
+    member_chunk: int = 0
+    time_block_days: int = 365
+    scheduler: str = "threads"
+    workers: int = 0
+
+    @property
+    def assimilate(self) -> bool:
+        return self.mode == "assimilate"
+
+
+def settings_from_config(cfg: Mapping, model: Model, mode: str) -> Settings:
+    """Engine settings from a validated config (a mapping of sections).
+
+    Raises
+    ------
+    ConfigError
+        naming the key when a state or parameter name is not one of the model's.
+    """
+    ens, per, fil, out = cfg["ensemble"], cfg["perturbation"], cfg["filter"], cfg["outputs"]
+    names = model.state_names
+    for key, chosen in (("filter.update_states", fil["update_states"]),
+                        ("perturbation.state_noise", list(per["state_noise"]))):
+        for n in chosen:
+            if n not in names:
+                raise ConfigError(f"model {model.name!r} has no state {n!r}; states: {', '.join(names)}",
+                                  file=getattr(cfg, "source", None), variable=key)
+    pnames = model.parameter_names
+    for key, chosen in (("perturbation.parameters", list(per["parameters"])),
+                        ("filter.parameters.estimate", fil["parameters"]["estimate"])):
+        for n in chosen:
+            if n not in pnames:
+                raise ConfigError(f"model {model.name!r} has no parameter {n!r}; parameters: {', '.join(pnames)}",
+                                  file=getattr(cfg, "source", None), variable=key)
+    update = tuple(fil["update_states"]) or model.default_updated_states()
+    update = tuple(n for n in names if n in update)  # model order
+    if out["all_states"]:
+        write = names
+    elif out["states"]:
+        write = update
+    else:
+        write = ()
+    oe, tr, inf = fil["obs_error"], fil["transform"], fil["inflation"]
+    return Settings(
+        mode=mode,
+        members=int(ens["members"]),
+        seed=int(ens["seed"]),
+        spinup_days=int(cfg["period"]["spinup_days"]),
+        precipitation=pt.LognormalAR1(float(per["precipitation_cv"]), float(per["precipitation_ar1"])),
+        pet=pt.LognormalAR1(float(per["pet_cv"]), float(per["pet_ar1"])),
+        parameter_sd=dict(per["parameters"]),
+        state_noise=dict(per["state_noise"]),
+        method=fil["method"],
+        update_states=update,
+        obs_error=ObsError(oe["kind"], float(oe["absolute_m3s"]), float(oe["relative"]), float(oe["floor_m3s"])),
+        transform=tr["kind"],
+        transform_offset=float(tr["offset_m3s"]),
+        transform_lambda=float(tr["lambda"]),
+        gate_sigma=float(fil["gate_sigma"]),
+        inflation=float(inf["multiplicative"]),
+        rtps=float(inf["rtps"]),
+        rtpp=float(inf["rtpp"]),
+        estimate=tuple(p for p in pnames if p in fil["parameters"]["estimate"]),
+        shrinkage=float(fil["parameters"]["shrinkage"]),
+        collapse_ratio=float(fil["collapse_ratio"]),
+        collapse_days=int(fil["collapse_days"]),
+        gating_warn_fraction=float(fil["gating_warn_fraction"]),
+        quantiles=tuple(out["quantiles"]) if out["ensemble"] == "quantiles" else None,
+        write_states=write,
+        float32=bool(out["float32"]),
+        basin_chunk=int(ens["basin_chunk"]),
+        member_chunk=int(ens["member_chunk"]),
+        time_block_days=int(ens["time_block_days"]),
+        scheduler=str(ens["scheduler"]),
+        workers=int(ens["workers"]),
+    )
+
+
+# ---------------------------------------------------------------- initial ensemble
+
+
+def parameter_ranges(model: Model) -> dict[str, pt.ParameterRange]:
+    return {p.name: pt.ParameterRange(p.low, p.high) for p in model.parameters}
+
+
+def initial_ensemble(model: Model, inputs: Inputs, settings: Settings) -> EnsembleState:
+    """The ensemble before the first day of ``inputs``.
+
+    Members get their parameters (:func:`assim.perturb.perturb_parameters`), the model's
+    initial state, and AR(1) log errors drawn from the stationary distribution on the day
+    before the first (so the first day's errors are already stationary).
+
+    Returns
+    -------
+    EnsembleState valid at the end of ``inputs.days[0] - 1``
+    """
+    members = np.arange(settings.members)
+    params = pt.perturb_parameters(
+        inputs.parameters, settings.parameter_sd, parameter_ranges(model),
+        seed=settings.seed, keys=inputs.keys, members=members,
+    )
+    b, m = inputs.n_basin, settings.members
+    flat = {k: v.reshape(-1) for k, v in params.items()}
+    states = np.asarray(model.initial_state(flat), dtype=np.float64).reshape(b, m, model.n_state)
+    day0 = int(inputs.days[0]) - 1
+    ar1 = {
+        name: pt.standard_normal(pt.counter_keys(settings.seed, inputs.keys, members, stream), day0)
+        for name, stream in (("precipitation", pt.PRECIPITATION), ("pet", pt.PET))
+    }
+    return EnsembleState(day0, states, params, ar1, np.zeros(b, dtype=np.int64))
+
+
+# ---------------------------------------------------------------- planning
+
+
+@dataclass(frozen=True)
+class Plan:
+    """Which days a run covers.
+
+    start : index into ``inputs.days`` of the first day to advance
+    stop : index of the last day (inclusive)
+    first_output : index of the first day written (after spin-up)
+    first_analysis : index of the first day assimilated (after spin-up)
+    """
+
+    start: int
+    stop: int
+    first_output: int
+    first_analysis: int
+
+    @property
+    def output_slice(self) -> slice:
+        return slice(max(self.start, self.first_output), self.stop + 1)
+
+
+def plan(inputs: Inputs, settings: Settings, state: EnsembleState | None, until_day: int | None = None) -> Plan:
+    """Days of a run from ``state`` (None: from the first day) to ``until_day``.
+
+    Raises
+    ------
+    RunError
+        if the state is not valid on a day of the inputs (or the day before the first), or
+        ``until_day`` is outside the inputs.
+    """
+    days = inputs.days
+    start = 0 if state is None else int(state.day - days[0] + 1)
+    if not 0 <= start <= len(days):
+        raise RunError("the restart is not valid on a day of the run period", variable="valid_time",
+                       place=f"day {state.day}")
+    stop = len(days) - 1 if until_day is None else int(until_day - days[0])
+    if not start - 1 <= stop < len(days):
+        raise RunError("--until is outside the run period (or before the restart)", variable="until",
+                       place=f"day {until_day}")
+    first = min(settings.spinup_days, len(days))
+    return Plan(start, stop, first, first)
+
+
+# ---------------------------------------------------------------- the analysis
+
+
+def analyse(
+    states: np.ndarray,
+    discharge: np.ndarray,
+    theta: np.ndarray | None,
+    observed: np.ndarray,
+    obs_var: np.ndarray,
+    lower: np.ndarray,
+    upper: np.ndarray,
+    theta_lower: np.ndarray | None,
+    theta_upper: np.ndarray | None,
+    obs_noise: np.ndarray | None,
+    settings: Settings,
+):
+    """One analysis over all basins of a chunk.
+
+    Parameters
+    ----------
+    states : (basin, member, n_update) float64, mm, the updated states
+    discharge : (basin, member) float64, m3 s-1, predicted discharge (background)
+    theta : (basin, member, n_param) float64 or None, estimated parameters
+    observed : (basin,) float64, m3 s-1, NaN where no usable reading
+    obs_var : (basin,) float64, (m3 s-1)^2, observation error variance
+    lower, upper : (basin, member, n_update) state bounds, mm
+    theta_lower, theta_upper : (n_param,) parameter ranges
+    obs_noise : (basin, member) standard normals for the perturbed observations (EnKF)
+
+    Returns
+    -------
+    states, discharge, theta (updated), and the filter's ``Analysis``.
+    """
+    from assim import filters
+
+    nb, nm, nu = states.shape
+    cols = [states, discharge[..., None]]
+    lo = [lower, np.zeros((nb, nm, 1))]
+    hi = [upper, np.full((nb, nm, 1), np.inf)]
+    if theta is not None:
+        npar = theta.shape[-1]
+        cols.append(theta)
+        lo.append(np.broadcast_to(theta_lower, (nb, nm, npar)))
+        hi.append(np.broadcast_to(theta_upper, (nb, nm, npar)))
+    x = np.concatenate(cols, axis=-1)
+    transform = _transform(settings)
+    if transform is not None:
+        obs_var = transform.variance(observed, obs_var)
+    a = filters.ensemble_update(
+        x,
+        discharge[..., None],
+        observed[:, None],
+        obs_var[:, None],
+        method=settings.method,
+        inflation=_inflation(settings),
+        gate_sigma=settings.gate_sigma if settings.gate_sigma > 0 else None,
+        lower=np.concatenate(lo, axis=-1),
+        upper=np.concatenate(hi, axis=-1),
+        transform=transform,
+        obs_noise=None if obs_noise is None else obs_noise[..., None],
+    )
+    xa = a.states
+    new_theta = None if theta is None else xa[..., nu + 1:]
+    return xa[..., :nu], xa[..., nu], new_theta, a
+
+
+def _inflation(settings: Settings):
+    from assim import filters
+
+    return filters.Inflation(multiplicative=settings.inflation, rtps=settings.rtps, rtpp=settings.rtpp)
+
+
+def _transform(settings: Settings):
+    from assim import filters
+
+    if settings.transform == "none":
+        return None
+    lam = settings.transform_lambda if settings.transform == "boxcox" else 1.0
+    return filters.Transform(settings.transform, offset=settings.transform_offset, lam=lam)
+
+
+def liu_west_shrink(theta: np.ndarray, a: float, z: np.ndarray, low: np.ndarray, high: np.ndarray) -> np.ndarray:
+    """Kernel shrinkage of parameter members before an analysis.
+
+    Parameters
+    ----------
+    theta : (basin, member, n_param) float64
+    a : shrinkage factor in (0, 1]
+    z : (basin, member, n_param) standard normals
+    low, high : (n_param,) valid range
+
+    Returns
+    -------
+    (basin, member, n_param): ``a theta + (1 - a) mean + h sd z`` clipped to the range,
+    ``h^2 = 1 - a^2``, so the ensemble mean and variance are kept in expectation.
+    """
+    mean = theta.mean(axis=1, keepdims=True)
+    var = theta.var(axis=1, ddof=1, keepdims=True)
+    h = np.sqrt(1.0 - a * a)
+    # Liu & West (2001), eq. 10: theta_i <- a theta_i + (1 - a) mean + N(0, h^2 Var(theta))
+    new = a * theta + (1.0 - a) * mean + h * np.sqrt(var) * z
+    return np.clip(new, low, high)
+
+
+# ---------------------------------------------------------------- one task: a chunk over a block
+
+
+@dataclass
+class BlockResult:
+    """What one task returns: outputs of its days, end state, hindcasts and counters."""
+
+    arrays: dict[str, np.ndarray]
+    state: EnsembleState
+    hindcast: np.ndarray | None  # (basin, issue, lead, member) m3 s-1
+    n_used: np.ndarray  # (basin,) readings used
+    n_gated: np.ndarray  # (basin,)
+    collapse_first: np.ndarray  # (basin,) first day number a collapse warning was reached, -1 none
+    first_bad: tuple | None = None
+
+
+def advance(
+    model: Model,
+    inputs: Inputs,
+    state: EnsembleState,
+    settings: Settings,
+    t0: int,
+    t1: int,
+    *,
+    members: np.ndarray,
+    first_output: int,
+    first_analysis: int,
+    collect: bool = True,
+    issue_index: np.ndarray | None = None,
+    leads: int = 0,
+    forecast_forcing: str = "observed",
+) -> BlockResult:
+    """Advance a chunk of the ensemble over days ``t0 .. t1 - 1`` (indices into inputs.days).
+
+    Parameters
+    ----------
+    inputs : the chunk's basins, all days
+    state : the chunk's ensemble at the end of day ``t0 - 1``
+    members : (member,) int, the member numbers of the chunk
+    first_output, first_analysis : day indices where outputs and analyses start
+    collect : gather the run outputs (False for a hindcast, which keeps forecasts only)
+    issue_index : day indices (within the block) whose end states start a hindcast forecast
+    leads : forecast length of the hindcast (days)
+
+    Returns
+    -------
+    BlockResult
+    """
+    nb, nm = inputs.n_basin, len(members)
+    ns = model.n_state
+    s = settings
+    days = inputs.days[t0:t1]
+    nt = len(days)
+    assim = s.assimilate
+    upd = np.array([model.state_index(n) for n in s.update_states], dtype=np.intp)
+    est = s.estimate
+    ranges = parameter_ranges(model)
+    th_lo = np.array([ranges[p].low for p in est])
+    th_hi = np.array([ranges[p].high for p in est])
+
+    x = np.array(state.states, dtype=np.float64).reshape(nb * nm, ns)
+    params = {k: np.array(v, dtype=np.float64) for k, v in state.parameters.items()}
+    flat = {k: v.reshape(-1) for k, v in params.items()}
+    prepared = model.prepare(flat)
+    lower, upper = model.bounds(flat)
+
+    # random numbers of the whole block in one call per stream
+    ck = {name: pt.counter_keys(s.seed, inputs.keys, members, stream)
+          for name, stream in (("precipitation", pt.PRECIPITATION), ("pet", pt.PET))}
+    log_err = {}  # (time, basin, member) AR(1) log errors of the block
+    for name, model_err in (("precipitation", s.precipitation), ("pet", s.pet)):
+        log_err[name] = model_err.series(state.ar1[name], pt.standard_normal(ck[name], days))
+    end_ar1 = {n: (e[-1].copy() if nt else state.ar1[n]) for n, e in log_err.items()}
+    noise = pt.StateNoise.from_names(s.state_noise, list(model.state_names))
+    noise_keys = [pt.counter_keys(s.seed, inputs.keys, members, k) for k in noise.streams]
+    obs_keys = pt.counter_keys(s.seed, inputs.keys, members, pt.OBSERVATION) if assim and s.method == "enkf" else None
+    kernel_keys = [pt.counter_keys(s.seed, inputs.keys, members, pt.stream_id("kernel:" + p)) for p in est]
+
+    area = inputs.area_km2[:, None] / SECONDS_PER_DAY_OVER_1000  # (basin, 1)
+    out_idx = [k for k in range(nt) if t0 + k >= first_output]
+    n_out = len(out_idx) if collect else 0
+    k_out0 = out_idx[0] if out_idx else nt
+    odt = np.float32 if s.float32 else np.float64
+    arrays: dict[str, np.ndarray] = {}
+    if n_out:
+        ens = (nb, n_out, nm)
+        arrays["discharge"] = np.empty(ens, dtype=odt)
+        if assim:
+            arrays["discharge_analysis"] = np.empty(ens, dtype=odt)
+        for n in s.write_states:
+            arrays[n] = np.empty(ens, dtype=odt)
+        if assim:
+            for p in est:
+                arrays[p] = np.empty(ens, dtype=odt)
+            for n in ("observed_discharge", "innovation", "innovation_variance", "spread_before",
+                      "spread_after"):
+                arrays[n] = np.full((nb, n_out), np.nan)
+            arrays["clipped_water"] = np.zeros((nb, n_out))
+            arrays["obs_status"] = np.full((nb, n_out), OBS_MISSING, dtype=np.int8)
+        arrays["state_noise_water"] = np.zeros((nb, n_out))
+    n_used = np.zeros(nb, dtype=np.int64)
+    n_gated = np.zeros(nb, dtype=np.int64)
+    collapse = np.array(state.collapse_days, dtype=np.int64)
+    collapse_first = np.full(nb, -1, dtype=np.int64)
+    issues = set() if issue_index is None else {int(i) for i in issue_index}
+    snaps = []
+
+    for k in range(nt):
+        t = t0 + k
+        day = int(days[k])
+        forcing = {
+            "precipitation": (inputs.precipitation[:, t, None]
+                              * s.precipitation.multiplier(log_err["precipitation"][k])).reshape(-1),
+            "pet": (inputs.pet[:, t, None] * s.pet.multiplier(log_err["pet"][k])).reshape(-1),
+        }
+        x, fluxes = model.step(x, forcing, prepared)
+        added = None
+        if noise:
+            z = [pt.standard_normal(kk, day).reshape(-1) for kk in noise_keys]
+            x, added = pt.add_state_noise(x, noise, z, lower, upper)
+        q = fluxes["runoff"].reshape(nb, nm) * area
+        qa = q
+        k_o = k - k_out0
+        record = collect and k >= k_out0
+        if assim and t >= first_analysis:
+            obs = inputs.observed[:, t]
+            has = np.isfinite(obs)
+            status = np.where(inputs.rejected[:, t], OBS_REJECTED, OBS_MISSING).astype(np.int8)
+            spread_b = q.std(axis=1, ddof=1)
+            obs_var = s.obs_error.variance(obs)
+            if has.any():
+                x3 = x.reshape(nb, nm, ns)
+                theta = None
+                if est:
+                    theta = np.stack([params[p] for p in est], axis=-1)
+                    zk = np.stack([pt.standard_normal(kk, day) for kk in kernel_keys], axis=-1)
+                    theta = liu_west_shrink(theta, s.shrinkage, zk, th_lo, th_hi)
+                on = pt.standard_normal(obs_keys, day) if obs_keys is not None else None
+                lo3 = lower.reshape(nb, nm, ns)[..., upd]
+                hi3 = upper.reshape(nb, nm, ns)[..., upd]
+                before = x3[..., upd]
+                xs, qa, theta_new, a = analyse(before, q, theta, obs, obs_var, lo3, hi3, th_lo, th_hi, on, s)
+                x3 = x3.copy()
+                x3[..., upd] = xs
+                x = x3.reshape(nb * nm, ns)
+                if est:
+                    for j, p in enumerate(est):
+                        params[p] = np.ascontiguousarray(theta_new[..., j])
+                    flat = {kk: v.reshape(-1) for kk, v in params.items()}
+                    prepared = model.prepare(flat)
+                    lower, upper = model.bounds(flat)
+                used = np.asarray(a.used).reshape(nb)
+                gated = np.asarray(a.gated).reshape(nb)
+                status = np.where(used, OBS_USED, np.where(gated, OBS_GATED, status)).astype(np.int8)
+                n_used += used
+                n_gated += gated
+                if record:
+                    arrays["innovation"][:, k_o] = np.where(has, np.asarray(a.innovation).reshape(nb), np.nan)
+                    arrays["innovation_variance"][:, k_o] = np.where(
+                        has, np.asarray(a.innovation_variance).reshape(nb), np.nan)
+                    arrays["clipped_water"][:, k_o] = _clipped_water(a, nb, nm, len(upd))
+            # collapse: spread of the predicted discharge far below the obs error, many days
+            low_spread = has & (spread_b < s.collapse_ratio * np.sqrt(np.nan_to_num(obs_var, nan=np.inf)))
+            collapse = np.where(has, np.where(low_spread, collapse + 1, 0), collapse)
+            hit = (collapse == s.collapse_days) & (collapse_first < 0)
+            collapse_first = np.where(hit, day, collapse_first)
+            if record:
+                arrays["observed_discharge"][:, k_o] = obs
+                arrays["obs_status"][:, k_o] = status
+                arrays["spread_before"][:, k_o] = spread_b
+                arrays["spread_after"][:, k_o] = qa.std(axis=1, ddof=1)
+        if not np.isfinite(x).all():
+            bad = np.flatnonzero(~np.isfinite(x).all(axis=1))[0]
+            col = int(np.flatnonzero(~np.isfinite(x[bad]))[0])
+            return BlockResult({}, state, None, n_used, n_gated, collapse_first,
+                               first_bad=(inputs.basin_ids[bad // nm], day, model.state_names[col]))
+        if record:
+            arrays["discharge"][:, k_o] = q
+            if assim:
+                arrays["discharge_analysis"][:, k_o] = qa
+                for p in est:
+                    arrays[p][:, k_o] = params[p]
+            x3v = x.reshape(nb, nm, ns)
+            for n in s.write_states:
+                arrays[n][:, k_o] = x3v[..., model.state_index(n)]
+            if added is not None:
+                arrays["state_noise_water"][:, k_o] = added.reshape(nb, nm).mean(axis=1)
+        if t in issues:
+            snaps.append((t, x.reshape(nb, nm, ns).copy(), {kk: v.copy() for kk, v in params.items()},
+                          {n: e[k].copy() for n, e in log_err.items()}))
+
+    if s.quantiles is not None and n_out and len(members) == s.members:
+        arrays = quantile_arrays(arrays, s.quantiles)
+    end = EnsembleState(
+        day=int(days[-1]) if nt else state.day,
+        states=x.reshape(nb, nm, ns).copy(),
+        parameters=params,
+        ar1=end_ar1,
+        collapse_days=collapse,
+    )
+    hind = None
+    if snaps:
+        hind = hindcast_forecasts(model, inputs, settings, snaps, members, leads, forecast_forcing)
+    return BlockResult(arrays, end, hind, n_used, n_gated, collapse_first)
+
+
+def _clipped_water(a, nb: int, nm: int, nu: int) -> np.ndarray:
+    """Water added by clipping the updated states to their bounds, ensemble mean per basin (mm).
+
+    ``a.clipped`` is (basin, n_col) summed over members; only the first ``nu`` columns are
+    states (the others are discharge and parameters)."""
+    c = np.asarray(a.clipped, dtype=np.float64).reshape(nb, -1)
+    return c[:, :nu].sum(axis=1) / nm
+
+
+def quantile_arrays(arrays: dict[str, np.ndarray], quantiles: Sequence[float]) -> dict[str, np.ndarray]:
+    """Replace member arrays (basin, time, member) by discharge quantiles (basin, time, quantile)."""
+    out = {k: v for k, v in arrays.items() if v.ndim == 2}
+    q = np.asarray(quantiles)
+    for name in ("discharge", "discharge_analysis"):
+        if name in arrays:
+            out[name + "_quantile"] = np.quantile(arrays[name], q, axis=2).transpose(1, 2, 0).astype(arrays[name].dtype)
+    return out
+
+
+# ---------------------------------------------------------------- forecasts
+
+
+def climatology_index(clim_days: np.ndarray, issue_days: np.ndarray, leads: int, members: np.ndarray) -> np.ndarray:
+    """Index into the climatology record of the forcing of every (issue, lead, member).
+
+    Member ``m`` takes the weather of year ``Y - 1 - (m mod n)`` counted among the record's
+    years with a complete window (issue date and leads 1..L on the same calendar dates, 29
+    February read as 28 February), most recent first; years after the issue year (for
+    hindcasts inside the record) follow the earlier ones. The issue's own year is never used.
+
+    Parameters
+    ----------
+    clim_days : (n,) int64 consecutive days of the record
+    issue_days : (issue,) int64
+    leads : L
+    members : (member,) int
+
+    Returns
+    -------
+    (issue, L, member) intp
+
+    Raises
+    ------
+    RunError
+        if the record holds no other year with a complete window.
+    """
+    d0 = int(clim_days[0])
+    n = len(clim_days)
+    out = np.empty((len(issue_days), leads, len(members)), dtype=np.intp)
+    dt = np.datetime64("1970-01-01", "D")
+    rec_years = np.arange((dt + d0).astype("datetime64[Y]").astype(int) + 1970,
+                          (dt + int(clim_days[-1])).astype("datetime64[Y]").astype(int) + 1971)
+    for i, iday in enumerate(issue_days):
+        date = dt + int(iday)
+        y = date.astype("datetime64[Y]").astype(int) + 1970
+        md = str(date)[5:]
+        if md == "02-29":
+            md = "02-28"
+        cands = []
+        for yy in list(rec_years[rec_years < y][::-1]) + list(rec_years[rec_years > y]):
+            start = int((np.datetime64(f"{yy:04d}-{md}") - dt).astype(int)) - d0
+            if start >= 0 and start + leads < n:
+                cands.append(start)
+        if not cands:
+            raise RunError("the forcing record holds no other year to build a climatological forecast",
+                           variable="forecast.forcing", place=str(date))
+        starts = np.array(cands)[np.asarray(members) % len(cands)]
+        out[i] = starts[None, :] + np.arange(1, leads + 1)[:, None]
+    return out
+
+
+def lead_forcing(
+    inputs: Inputs,
+    settings: Settings,
+    issue_index: np.ndarray,
+    ar1: Mapping[str, np.ndarray],
+    members: np.ndarray,
+    leads: int,
+    kind: str,
+    file_forcing: Mapping[str, np.ndarray] | None = None,
+) -> dict[str, np.ndarray]:
+    """Forcing of every lead of every issue.
+
+    Parameters
+    ----------
+    issue_index : (issue,) day indices into ``inputs.days``
+    ar1 : forcing name -> (issue, basin, member) AR(1) log errors at the issue day
+    kind : "observed" (recorded weather, perturbed as in the run: the AR(1) errors go on),
+        "climatology" (:func:`climatology_index`, unperturbed) or "file"
+    file_forcing : for "file", name -> (basin, issue, lead, file_member) mm d-1; member m
+        takes file member ``m mod n_file``
+
+    Returns
+    -------
+    dict name -> (lead, issue, basin, member) float64, mm d-1
+    """
+    ni, nb, nm = len(issue_index), inputs.n_basin, len(members)
+    out = {}
+    if kind == "observed":
+        for name, model_err, stream in (("precipitation", settings.precipitation, pt.PRECIPITATION),
+                                        ("pet", settings.pet, pt.PET)):
+            ck = pt.counter_keys(settings.seed, inputs.keys, members, stream)
+            e = ar1[name]
+            vals = np.empty((leads, ni, nb, nm))
+            src = getattr(inputs, name)
+            for lead in range(1, leads + 1):
+                idx = issue_index + lead
+                z = pt.standard_normal(ck, inputs.days[idx])  # (issue, basin, member)
+                e = model_err.step(e, z)
+                vals[lead - 1] = src[:, idx].T[:, :, None] * model_err.multiplier(e)
+            out[name] = vals
+    elif kind == "climatology":
+        clim = inputs.climatology
+        if clim is None:
+            raise RunError("climatological forecasts need the forcing record", variable="forecast.forcing")
+        idx = climatology_index(clim.days, inputs.days[issue_index], leads, members)  # (issue, L, member)
+        for name in FORCINGS:
+            src = getattr(clim, name)  # (basin, n)
+            out[name] = src[:, idx].transpose(2, 1, 0, 3)  # (L, issue, basin, member)
+    elif kind == "file":
+        if file_forcing is None:
+            ff = inputs.forecast_forcing
+            pos = np.searchsorted(ff["days"], inputs.days[issue_index])
+            file_forcing = {n: ff[n][:, pos] for n in FORCINGS}
+        for name in FORCINGS:
+            f = np.asarray(file_forcing[name])  # (basin, issue, lead, file_member)
+            sel = f[..., np.asarray(members) % f.shape[-1]]
+            out[name] = sel.transpose(2, 1, 0, 3)[:leads]
+    else:
+        raise ConfigError(f"unknown forecast forcing {kind!r}", variable="forcing")
+    return out
+
+
+def forecast_leads(
+    model: Model,
+    states: np.ndarray,
+    parameters: Mapping[str, np.ndarray],
+    forcing: Mapping[str, np.ndarray],
+    area_km2: np.ndarray,
+    settings: Settings,
+    keys: np.ndarray,
+    members: np.ndarray,
+    lead_days: np.ndarray,
+) -> np.ndarray:
+    """Advance the ensembles of several issue times over the leads, as one flat batch.
+
+    Parameters
+    ----------
+    states : (issue, basin, member, n_state) float64, mm, at the end of each issue day
+    parameters : name -> (issue, basin, member) float64
+    forcing : name -> (lead, issue, basin, member) mm d-1
+    area_km2 : (basin,)
+    keys : (basin,) uint64; members : (member,) int
+    lead_days : (lead, issue) int64, day numbers of every lead (for the state noise)
+
+    Returns
+    -------
+    (basin, issue, lead, member) float64, m3 s-1
+    """
+    ni, nb, nm, ns = states.shape
+    nl = forcing["precipitation"].shape[0]
+    x = states.reshape(-1, ns)
+    flat = {k: np.ascontiguousarray(v).reshape(-1) for k, v in parameters.items()}
+    prepared = model.prepare(flat)
+    noise = pt.StateNoise.from_names(settings.state_noise, list(model.state_names))
+    if noise:
+        lower, upper = model.bounds(flat)
+        noise_keys = [pt.counter_keys(settings.seed, keys, members, k) for k in noise.streams]
+    out = np.empty((nb, ni, nl, nm))
+    area = area_km2[None, :, None] / SECONDS_PER_DAY_OVER_1000
+    for lead in range(nl):
+        x, fl = model.step(x, {n: forcing[n][lead].reshape(-1) for n in FORCINGS}, prepared)
+        if noise:
+            z = [pt.standard_normal(kk, lead_days[lead]).reshape(-1) for kk in noise_keys]
+            x, _ = pt.add_state_noise(x, noise, z, lower, upper)
+        out[:, :, lead, :] = (fl["runoff"].reshape(ni, nb, nm) * area).transpose(1, 0, 2)
+    return out
+
+
+def hindcast_forecasts(model, inputs, settings, snaps, members, leads, kind):
+    """Forecasts from the end states of the issue days collected in a block."""
+    idx = np.array([t for t, *_ in snaps])
+    states = np.stack([x for _, x, _, _ in snaps])
+    params = {k: np.stack([p[k] for _, _, p, _ in snaps]) for k in snaps[0][2]}
+    ar1 = {n: np.stack([a[n] for _, _, _, a in snaps]) for n in FORCINGS}
+    forcing = lead_forcing(inputs, settings, idx, ar1, members, leads, kind)
+    lead_days = inputs.days[0] + idx[None, :] + np.arange(1, leads + 1)[:, None]
+    return forecast_leads(model, states, params, forcing, inputs.area_km2, settings, inputs.keys, members, lead_days)
+
+
+def issue_indices(plan_: Plan, every_days: int, leads: int, n_days: int) -> np.ndarray:
+    """Hindcast issue days: every K days from the first output day, with all leads inside."""
+    first = max(plan_.first_output, plan_.start)
+    idx = np.arange(first, plan_.stop + 1, every_days)
+    return idx[idx + leads <= min(plan_.stop, n_days - 1)]
+
+
+# ---------------------------------------------------------------- the run
+
+
+@dataclass
+class RunSummary:
+    """What a run returns besides the sink's file: end state, warnings, counts per basin."""
+
+    state: EnsembleState
+    warnings: list[str]
+    n_used: np.ndarray
+    n_gated: np.ndarray
+    first_collapse: np.ndarray
+    plan: Plan
+
+
+def _merge(results: list[list[BlockResult]], nb_chunks, nm_chunks, state_template) -> BlockResult:
+    """Concatenate the tasks of one block (rows: basin chunks, columns: member chunks)."""
+    rows = []
+    for row in results:
+        if len(row) == 1:
+            rows.append(row[0])
+            continue
+        arrays = {}
+        for k, v in row[0].arrays.items():
+            arrays[k] = np.concatenate([r.arrays[k] for r in row], axis=2) if v.ndim == 3 else v
+        st = EnsembleState(
+            row[0].state.day,
+            np.concatenate([r.state.states for r in row], axis=1),
+            {k: np.concatenate([r.state.parameters[k] for r in row], axis=1) for k in row[0].state.parameters},
+            {k: np.concatenate([r.state.ar1[k] for r in row], axis=1) for k in row[0].state.ar1},
+            row[0].state.collapse_days,
+        )
+        hind = None if row[0].hindcast is None else np.concatenate([r.hindcast for r in row], axis=3)
+        rows.append(BlockResult(arrays, st, hind, row[0].n_used, row[0].n_gated, row[0].collapse_first))
+    r0 = rows[0]
+    if len(rows) == 1:
+        return r0
+    arrays = {k: np.concatenate([r.arrays[k] for r in rows], axis=0) for k in r0.arrays}
+    st = EnsembleState(
+        r0.state.day,
+        np.concatenate([r.state.states for r in rows], axis=0),
+        {k: np.concatenate([r.state.parameters[k] for r in rows], axis=0) for k in r0.state.parameters},
+        {k: np.concatenate([r.state.ar1[k] for r in rows], axis=0) for k in r0.state.ar1},
+        np.concatenate([r.state.collapse_days for r in rows]),
+    )
+    hind = None if r0.hindcast is None else np.concatenate([r.hindcast for r in rows], axis=0)
+    cat = np.concatenate
+    return BlockResult(arrays, st, hind, cat([r.n_used for r in rows]), cat([r.n_gated for r in rows]),
+                       cat([r.collapse_first for r in rows]))
+
+
+def _run_task(args):
+    model, inputs, state, settings, t0, t1, kwargs = args
+    return advance(model, inputs, state, settings, t0, t1, **kwargs)
+
+
+def run(
+    model: Model,
+    inputs: Inputs,
+    settings: Settings,
+    sink=None,
+    *,
+    state: EnsembleState | None = None,
+    until_day: int | None = None,
+    hindcast: tuple[int, int, str] | None = None,
+    progress: Callable[[int, int], None] | None = None,
+) -> RunSummary:
+    """Run the ensemble over the inputs' days, block by block, handing outputs to ``sink``.
+
+    Parameters
+    ----------
+    model : the model of every basin
+    inputs : :class:`Inputs`
+    settings : :class:`Settings` (``mode`` "openloop" or "assimilate")
+    sink : object with ``write_block(start, arrays)`` (run outputs; ``start`` counts the
+        output days of :attr:`Plan.output_slice`) and, for hindcasts,
+        ``write_issues(start, discharge)`` with discharge (basin, issue, lead, member) m3 s-1;
+        None keeps nothing (the end state is still returned)
+    state : the ensemble to continue from (a restart); None starts a new run
+    until_day : last day to run (day number); None = the last day of the inputs
+    hindcast : (every_days, leads, forcing kind) to issue hindcast forecasts instead of
+        collecting run outputs
+    progress : called with (days done, days total) after each block
+
+    Returns
+    -------
+    RunSummary
+
+    Raises
+    ------
+    RunError
+        when a state becomes NaN or infinite (naming the basin, the day and the state), or
+        the days asked for are outside the inputs.
+    """
+    if state is None:
+        state = initial_ensemble(model, inputs, settings)
+    p = plan(inputs, settings, state, until_day)
+    nb, nmem = inputs.n_basin, settings.members
+    bc = max(1, min(settings.basin_chunk, nb))
+    b_chunks = [slice(i, min(i + bc, nb)) for i in range(0, nb, bc)]
+    member_chunking = settings.member_chunk > 0 and not settings.assimilate
+    mc = settings.member_chunk if member_chunking else nmem
+    m_chunks = [slice(i, min(i + mc, nmem)) for i in range(0, nmem, mc)]
+    members = np.arange(nmem)
+    issues = None
+    if hindcast is not None:
+        every, leads, kind = hindcast
+        issues = issue_indices(p, every, leads, len(inputs.days))
+    sub_inputs = [inputs.subset(b) for b in b_chunks]
+
+    n_used = np.zeros(nb, dtype=np.int64)
+    n_gated = np.zeros(nb, dtype=np.int64)
+    first_collapse = np.full(nb, -1, dtype=np.int64)
+    total = p.stop + 1 - p.start
+    out0 = max(p.start, p.first_output)
+    issue_done = 0
+    with parallel.executor(settings.scheduler, settings.workers) as ex:
+        t = p.start
+        while t <= p.stop:
+            t1 = min(t + settings.time_block_days, p.stop + 1)
+            kwargs = dict(first_output=p.first_output, first_analysis=p.first_analysis,
+                          collect=hindcast is None and sink is not None)
+            if issues is not None:
+                blk = issues[(issues >= t) & (issues < t1)]
+                kwargs.update(issue_index=blk, leads=hindcast[1], forecast_forcing=hindcast[2])
+            tasks = []
+            for bi, b in enumerate(b_chunks):
+                for m in m_chunks:
+                    tasks.append((model, sub_inputs[bi], state.subset(b, m), settings, t, t1,
+                                  dict(kwargs, members=members[m])))
+            flat_results = ex.map(_run_task, tasks)
+            bad = [r.first_bad for r in flat_results if r.first_bad is not None]
+            if bad:
+                basin, day, var = min(bad, key=lambda x: x[1])
+                raise RunError("the ensemble state became NaN or infinite; check the forcing, the "
+                               "parameters and the filter settings", variable=var,
+                               place=f"basin {basin}, {np.datetime64('1970-01-01', 'D') + day}")
+            grid = [flat_results[i * len(m_chunks):(i + 1) * len(m_chunks)] for i in range(len(b_chunks))]
+            merged = _merge(grid, len(b_chunks), len(m_chunks), state)
+            if settings.quantiles is not None and len(m_chunks) > 1 and merged.arrays:
+                merged.arrays = quantile_arrays(merged.arrays, settings.quantiles)
+            if sink is not None and merged.arrays:
+                sink.write_block(max(t, out0) - out0, merged.arrays)
+            if merged.hindcast is not None and sink is not None:
+                sink.write_issues(issue_done, merged.hindcast)
+                issue_done += merged.hindcast.shape[1]
+            n_used += merged.n_used
+            n_gated += merged.n_gated
+            first_collapse = np.where((first_collapse < 0) & (merged.collapse_first >= 0),
+                                      merged.collapse_first, first_collapse)
+            state = merged.state
+            t = t1
+            if progress is not None:
+                progress(t - p.start, total)
+    warns = health_warnings(inputs.basin_ids, n_used, n_gated, first_collapse, settings)
+    for w in warns:
+        _warnings.warn(w, RuntimeWarning, stacklevel=2)
+    return RunSummary(state, warns, n_used, n_gated, first_collapse, p)
+
+
+def health_warnings(basin_ids, n_used, n_gated, first_collapse, settings: Settings) -> list[str]:
+    """Warnings about ensemble collapse and frequent gating, one line per basin."""
+    out = []
+    if not settings.assimilate:
+        return out
+    for i, b in enumerate(basin_ids):
+        if first_collapse[i] >= 0:
+            day = np.datetime64("1970-01-01", "D") + int(first_collapse[i])
+            out.append(f"basin {b}: ensemble collapse: the spread of predicted discharge stayed below "
+                       f"{settings.collapse_ratio} x the observation error sd for {settings.collapse_days} "
+                       f"days with readings (reached on {day}); consider inflation or larger perturbations")
+        n = n_used[i] + n_gated[i]
+        if n and n_gated[i] / n > settings.gating_warn_fraction:
+            out.append(f"basin {b}: {n_gated[i]} of {n} readings ({n_gated[i] / n:.0%}) were gated; the "
+                       "ensemble may be biased or its spread too small")
+    return out
+
+
+def forecast_issue(
+    model: Model,
+    inputs: Inputs,
+    settings: Settings,
+    state: EnsembleState,
+    leads: int,
+    kind: str,
+    file_forcing: Mapping[str, np.ndarray] | None = None,
+) -> np.ndarray:
+    """Ensemble forecast from ``state`` (valid at the end of the issue day).
+
+    ``inputs.days`` must contain the issue day (and, for "observed" forcing, the leads).
+
+    Returns
+    -------
+    (basin, lead, member) float64, m3 s-1
+    """
+    members = np.arange(settings.members)
+    idx = np.array([int(state.day - inputs.days[0])])
+    forcing = lead_forcing(inputs, settings, idx, {n: v[None] for n, v in state.ar1.items()},
+                           members, leads, kind,
+                           None if file_forcing is None else {n: v[:, None] for n, v in file_forcing.items()})
+    lead_days = state.day + np.arange(1, leads + 1)[:, None]
+    q = forecast_leads(model, state.states[None], {k: v[None] for k, v in state.parameters.items()}, forcing,
+                       inputs.area_km2, settings, inputs.keys, members, lead_days)
+    return q[:, 0]

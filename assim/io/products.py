@@ -1,0 +1,510 @@
+"""Product files of runs, hindcasts and forecasts (layouts: DESIGN.md, products contract).
+
+Run and hindcast products are streamed: the writer opens the file once (under a temporary
+name, :func:`assim.io.common.atomic_path`), the engine hands it one time block after another
+through ``write_block``, and the file is renamed onto its final name when the writer is
+closed without error. Memory therefore does not grow with the length of the run.
+
+Dimensions are named ``basin`` (string ids, ``cf_role: timeseries_id``), ``time`` /
+``issue_time`` (CF "days since 1970-01-01", standard calendar, 00:00 UTC of the day),
+``member`` (0..N-1), ``lead`` (integer days), ``quantile``, ``threshold``, ``experiment``.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+
+import netCDF4
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from assim.errors import InputError
+from assim.io.common import atomic_path, global_attributes
+
+TIME_UNITS = "days since 1970-01-01 00:00:00"
+CALENDAR = "standard"
+DISCHARGE_ATTRS = {
+    "standard_name": "water_volume_transport_in_river_channel",
+    "units": "m3 s-1",
+}
+OBS_STATUS = {"used": 0, "missing": 1, "gated": 2, "rejected": 3}
+EXPERIMENTS = ("openloop", "assimilation")
+
+
+def day_numbers(times) -> np.ndarray:
+    """Dates (anything pandas reads) -> (n,) int64 days since 1970-01-01."""
+    t = pd.DatetimeIndex(pd.to_datetime(times)).normalize()
+    return ((t - pd.Timestamp("1970-01-01")) // pd.Timedelta(days=1)).to_numpy().astype(np.int64)
+
+
+def dates(day_numbers_: Sequence[int] | np.ndarray) -> pd.DatetimeIndex:
+    """(n,) days since 1970-01-01 -> DatetimeIndex at 00:00 UTC (tz-naive)."""
+    return pd.Timestamp("1970-01-01") + pd.to_timedelta(np.asarray(day_numbers_, dtype=np.int64), unit="D")
+
+
+class _StreamedFile:
+    """A NetCDF file written under a temporary name and renamed when closed cleanly."""
+
+    def __init__(self, path: str | os.PathLike, *, float32: bool, complevel: int = 1):
+        self.path = Path(path)
+        self.float32 = float32
+        self.complevel = complevel
+        self._stack = contextlib.ExitStack()
+        self.nc: netCDF4.Dataset | None = None
+
+    def __enter__(self):
+        tmp = self._stack.enter_context(atomic_path(self.path))
+        self.nc = netCDF4.Dataset(tmp, "w", format="NETCDF4")
+        self._stack.callback(self._close_nc)
+        try:
+            self._define()
+        except BaseException:
+            self._stack.__exit__(None, None, None)
+            raise
+        return self
+
+    def _close_nc(self):
+        if self.nc is not None and self.nc.isopen():
+            self.nc.close()
+
+    def __exit__(self, exc_type, exc, tb):
+        # closing the netCDF file first, then atomic_path renames (or removes on error)
+        return self._stack.__exit__(exc_type, exc, tb)
+
+    def _define(self):  # pragma: no cover - overridden
+        raise NotImplementedError
+
+    # helpers
+    def _basin(self, basins):
+        v = self.nc.createVariable("basin", str, ("basin",))
+        v[:] = np.array([str(b) for b in basins], dtype=object)
+        v.cf_role = "timeseries_id"
+        v.long_name = "basin identifier"
+
+    def _days(self, name, days, long_name):
+        v = self.nc.createVariable(name, "i4", (name,))
+        v[:] = np.asarray(days, dtype=np.int32)
+        v.units = TIME_UNITS
+        v.calendar = CALENDAR
+        v.standard_name = "time" if name == "time" else "forecast_reference_time"
+        v.long_name = long_name
+        v.axis = "T" if name == "time" else ""
+        if not v.axis:
+            del v.axis
+
+    def _int_coord(self, name, values, **attrs):
+        v = self.nc.createVariable(name, "i4", (name,))
+        v[:] = np.asarray(values, dtype=np.int32)
+        v.setncatts(attrs)
+
+    def _float_var(self, name, dims, chunks, attrs, ensemble=True):
+        dtype = "f4" if (self.float32 and ensemble) else "f8"
+        v = self.nc.createVariable(
+            name,
+            dtype,
+            dims,
+            zlib=self.float32,
+            complevel=self.complevel,
+            shuffle=self.float32,
+            chunksizes=chunks,
+            fill_value=np.float32(np.nan) if dtype == "f4" else np.nan,
+        )
+        v.setncatts(attrs)
+        return v
+
+
+class RunWriter(_StreamedFile):
+    """Sink of an open-loop or assimilation run: ``openloop.nc`` or ``analysis.nc``.
+
+    Parameters
+    ----------
+    path : output file
+    basins : basin ids
+    days : (time,) int, the output days (after spin-up), days since 1970-01-01
+    members : number of members
+    mode : "openloop" or "assimilate"
+    state_names : states written per member
+    parameter_names : estimated parameters whose trajectories are written (joint estimation)
+    quantiles : write ``discharge_quantile`` at these probabilities instead of members
+    float32 : float32 and zlib compression for ensemble values
+    time_chunk : days per NetCDF chunk along time
+    attrs : extra global attributes
+
+    ``write_block(start, arrays)`` writes arrays covering output days
+    ``start .. start + n - 1``: ``discharge``, ``discharge_analysis`` and the states and
+    parameters (basin, n, member), or ``discharge_quantile`` (and
+    ``discharge_analysis_quantile``) (basin, n, quantile), and the diagnostics (basin, n).
+    """
+
+    def __init__(
+        self,
+        path,
+        *,
+        basins: Sequence[str],
+        days,
+        members: int,
+        mode: str,
+        state_names: Sequence[str] = (),
+        state_units: Mapping[str, str] | None = None,
+        parameter_names: Sequence[str] = (),
+        quantiles: Sequence[float] | None = None,
+        float32: bool = True,
+        time_chunk: int = 365,
+        attrs: Mapping[str, str] | None = None,
+    ):
+        super().__init__(path, float32=float32)
+        self.basins = list(basins)
+        self.days = np.asarray(days, dtype=np.int64)
+        self.members = int(members)
+        self.mode = mode
+        self.state_names = tuple(state_names)
+        self.state_units = dict(state_units or {})
+        self.parameter_names = tuple(parameter_names)
+        self.quantiles = None if quantiles is None else tuple(float(q) for q in quantiles)
+        self.time_chunk = max(1, min(int(time_chunk), len(self.days) or 1))
+        self.attrs = dict(attrs or {})
+        self.written = 0
+
+    @property
+    def assimilate(self) -> bool:
+        return self.mode == "assimilate"
+
+    def _define(self):
+        nc = self.nc
+        nb, nt = len(self.basins), len(self.days)
+        title = "ensemble assimilation run" if self.assimilate else "ensemble open-loop run"
+        nc.setncatts(global_attributes(title, **self.attrs))
+        nc.createDimension("basin", nb)
+        nc.createDimension("time", nt)
+        self._basin(self.basins)
+        self._days("time", self.days, "day of the simulated discharge")
+        cb = max(1, min(nb, 16))
+        diag_chunks = (cb, self.time_chunk)
+        if self.quantiles is None:
+            nc.createDimension("member", self.members)
+            self._int_coord("member", np.arange(self.members), long_name="ensemble member")
+            ens_dims = ("basin", "time", "member")
+            chunks = (1, self.time_chunk, self.members)
+            self._float_var(
+                "discharge",
+                ens_dims,
+                chunks,
+                {**DISCHARGE_ATTRS, "long_name": "background discharge (before the day's reading is assimilated)"
+                 if self.assimilate else "simulated discharge"},
+            )
+            if self.assimilate:
+                self._float_var(
+                    "discharge_analysis",
+                    ens_dims,
+                    chunks,
+                    {**DISCHARGE_ATTRS, "long_name": "discharge after the day's update"},
+                )
+            for s in self.state_names:
+                when = "after the update" if self.assimilate else "at the end of the day"
+                self._float_var(s, ens_dims, chunks,
+                                {"units": self.state_units.get(s, "mm"), "long_name": f"model state {s} {when}"})
+            for p in self.parameter_names:
+                self._float_var(p, ens_dims, chunks, {"long_name": f"estimated parameter {p} after the update"})
+        else:
+            nc.createDimension("quantile", len(self.quantiles))
+            v = nc.createVariable("quantile", "f8", ("quantile",))
+            v[:] = np.asarray(self.quantiles)
+            v.long_name = "probability of non-exceedance"
+            chunks = (1, self.time_chunk, len(self.quantiles))
+            self._float_var("discharge_quantile", ("basin", "time", "quantile"), chunks,
+                            {**DISCHARGE_ATTRS, "long_name": "quantiles of the background discharge"
+                             if self.assimilate else "quantiles of the simulated discharge"})
+            if self.assimilate:
+                self._float_var("discharge_analysis_quantile", ("basin", "time", "quantile"), chunks,
+                                {**DISCHARGE_ATTRS, "long_name": "quantiles of the discharge after the update"})
+        if self.assimilate:
+            d2 = ("basin", "time")
+            self._float_var("observed_discharge", d2, diag_chunks,
+                            {**DISCHARGE_ATTRS, "long_name": "gauge reading used (NaN when none)"}, ensemble=False)
+            self._float_var("innovation", d2, diag_chunks,
+                            {"long_name": "observed minus mean predicted discharge, in assimilation space"},
+                            ensemble=False)
+            self._float_var("innovation_variance", d2, diag_chunks,
+                            {"long_name": "expected innovation variance HPH'+R, in assimilation space"},
+                            ensemble=False)
+            v = nc.createVariable("obs_status", "i1", d2, zlib=True, complevel=1, chunksizes=diag_chunks)
+            v.flag_values = np.array(list(OBS_STATUS.values()), dtype=np.int8)
+            v.flag_meanings = " ".join(OBS_STATUS)
+            v.long_name = "status of the day's gauge reading"
+            for name, ln in (("spread_before", "ensemble standard deviation of discharge before the update"),
+                             ("spread_after", "ensemble standard deviation of discharge after the update")):
+                self._float_var(name, d2, diag_chunks, {**DISCHARGE_ATTRS, "long_name": ln}, ensemble=False)
+            self._float_var("clipped_water", d2, diag_chunks,
+                            {"units": "mm", "long_name": "water added (positive) or removed by clipping states "
+                             "to their bounds after the update, ensemble mean"}, ensemble=False)
+        self._float_var("state_noise_water", ("basin", "time"), diag_chunks,
+                        {"units": "mm", "long_name": "water added by the additive state noise, ensemble mean"},
+                        ensemble=False)
+
+    def write_block(self, start: int, arrays: Mapping[str, np.ndarray]) -> None:
+        """Write output days ``start .. start + n - 1`` (see the class docstring)."""
+        n = None
+        for name, values in arrays.items():
+            if name not in self.nc.variables:
+                continue
+            values = np.asarray(values)
+            n = values.shape[1]
+            self.nc.variables[name][:, start:start + n, ...] = values
+        if n is not None:
+            self.written = max(self.written, start + n)
+
+    def set_attributes(self, **attrs) -> None:
+        """Global attributes known only at the end (diagnostics, warnings)."""
+        self.nc.setncatts({k: str(v) for k, v in attrs.items()})
+
+
+class HindcastWriter(_StreamedFile):
+    """Sink of a hindcast: ``discharge`` (experiment, basin, issue_time, lead, member).
+
+    ``write_block(experiment, start, discharge)`` writes issue times ``start .. start+n-1``
+    of one experiment; ``discharge`` is (basin, n, lead, member) m3 s-1.
+    """
+
+    def __init__(self, path, *, basins, issue_days, leads: int, members: int, float32=True,
+                 attrs: Mapping[str, str] | None = None):
+        super().__init__(path, float32=float32)
+        self.basins = list(basins)
+        self.issue_days = np.asarray(issue_days, dtype=np.int64)
+        self.leads = int(leads)
+        self.members = int(members)
+        self.attrs = dict(attrs or {})
+
+    def _define(self):
+        nc = self.nc
+        nc.setncatts(global_attributes("ensemble hindcast: open loop and assimilation", **self.attrs))
+        nc.createDimension("experiment", len(EXPERIMENTS))
+        nc.createDimension("basin", len(self.basins))
+        nc.createDimension("issue_time", len(self.issue_days))
+        nc.createDimension("lead", self.leads)
+        nc.createDimension("member", self.members)
+        v = nc.createVariable("experiment", str, ("experiment",))
+        v[:] = np.array(EXPERIMENTS, dtype=object)
+        v.long_name = "origin of the initial states"
+        self._basin(self.basins)
+        self._days("issue_time", self.issue_days, "issue time: the forecast starts from the end of this day")
+        self._int_coord("lead", np.arange(1, self.leads + 1), units="days", long_name="lead time; valid day = issue_time + lead")
+        self._int_coord("member", np.arange(self.members), long_name="ensemble member")
+        chunks = (1, 1, max(1, min(len(self.issue_days), 64)), self.leads, self.members)
+        self._float_var("discharge", ("experiment", "basin", "issue_time", "lead", "member"), chunks,
+                        {**DISCHARGE_ATTRS, "long_name": "forecast discharge"})
+
+    def write_block(self, experiment: str, start: int, discharge: np.ndarray) -> None:
+        e = EXPERIMENTS.index(experiment)
+        n = discharge.shape[1]
+        self.nc.variables["discharge"][e, :, start:start + n, :, :] = discharge
+
+    def set_attributes(self, **attrs) -> None:
+        self.nc.setncatts({k: str(v) for k, v in attrs.items()})
+
+
+def exceedance_probability(discharge: np.ndarray, thresholds: np.ndarray) -> np.ndarray:
+    """Fraction of members strictly above each threshold.
+
+    Parameters
+    ----------
+    discharge : (basin, lead, member) m3 s-1
+    thresholds : (basin, threshold) m3 s-1, NaN where a basin has no such level
+
+    Returns
+    -------
+    (basin, lead, threshold) float64 in [0, 1], NaN where the threshold is NaN
+    """
+    above = discharge[:, :, :, None] > thresholds[:, None, None, :]
+    p = above.mean(axis=2)
+    return np.where(np.isnan(thresholds)[:, None, :], np.nan, p)
+
+
+def write_forecast(
+    path,
+    *,
+    basins: Sequence[str],
+    issue_day: int,
+    discharge: np.ndarray,
+    quantiles: Sequence[float],
+    thresholds: Mapping[str, np.ndarray],
+    analysis: str,
+    float32: bool = True,
+    attrs: Mapping[str, str] | None = None,
+) -> xr.Dataset:
+    """Write ``forecast-YYYY-MM-DD.nc`` and return it.
+
+    Parameters
+    ----------
+    discharge : (basin, lead, member) m3 s-1, leads 1..L after ``issue_day``
+    quantiles : probabilities of ``discharge_quantile``
+    thresholds : name -> (basin,) m3 s-1 (NaN where a basin has no such level)
+    analysis : "performed ..." or "not performed: ..."
+    """
+    nb, nl, nm = discharge.shape
+    names = list(thresholds)
+    thr = np.stack([np.asarray(thresholds[k], dtype=np.float64) for k in names], axis=1) if names else np.zeros((nb, 0))
+    q = np.asarray(quantiles, dtype=np.float64)
+    dq = np.quantile(discharge, q, axis=2).transpose(1, 2, 0) if len(q) else np.zeros((nb, nl, 0))
+    issue = dates([issue_day])[0]
+    lead = np.arange(1, nl + 1)
+    ds = xr.Dataset(
+        {
+            "discharge": (("basin", "lead", "member"), discharge, {**DISCHARGE_ATTRS, "long_name": "forecast discharge"}),
+            "discharge_quantile": (("basin", "lead", "quantile"), dq,
+                                   {**DISCHARGE_ATTRS, "long_name": "quantiles of the forecast discharge"}),
+            "exceedance_probability": (("basin", "lead", "threshold"), exceedance_probability(discharge, thr),
+                                       {"units": "1", "long_name": "fraction of members above the threshold"}),
+            "thresholds": (("basin", "threshold"), thr, {**DISCHARGE_ATTRS, "long_name": "named discharge thresholds"}),
+        },
+        coords={
+            "basin": ("basin", np.array([str(b) for b in basins], dtype=object), {"cf_role": "timeseries_id"}),
+            "lead": ("lead", lead, {"units": "days", "long_name": "lead time after the issue date"}),
+            "member": ("member", np.arange(nm), {"long_name": "ensemble member"}),
+            "quantile": ("quantile", q, {"long_name": "probability of non-exceedance"}),
+            "threshold": ("threshold", np.array(names, dtype=object), {"long_name": "threshold name"}),
+            "valid_time": ("lead", dates(issue_day + lead), {"long_name": "day the lead is valid for"}),
+            "issue_time": ((), issue, {"long_name": "issue date; the forecast starts from the end of this day"}),
+        },
+        attrs=global_attributes(
+            "ensemble streamflow forecast",
+            issue_date=issue.strftime("%Y-%m-%d"),
+            analysis=analysis,
+            **dict(attrs or {}),
+        ),
+    )
+    enc_t = {"units": TIME_UNITS, "calendar": CALENDAR, "dtype": "i4"}
+    encoding = {"valid_time": enc_t, "issue_time": enc_t}
+    fdtype = "f4" if float32 else "f8"
+    for v in ("discharge", "discharge_quantile"):
+        encoding[v] = {"dtype": fdtype, "zlib": float32, "_FillValue": np.nan}
+    with atomic_path(path) as tmp:
+        ds.to_netcdf(tmp, encoding=encoding, format="NETCDF4")
+    ds.attrs["product_path"] = str(path)
+    return ds
+
+
+def open_product(path) -> xr.Dataset:
+    """Open a written product lazily, with ``attrs["product_path"]`` set."""
+    ds = xr.open_dataset(path)
+    ds.attrs["product_path"] = str(path)
+    return ds
+
+
+def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: int) -> dict[str, np.ndarray]:
+    """Forcing forecast of one issue from a NetCDF file with a member dimension.
+
+    Layout: ``precipitation`` and ``pet`` (mm d-1) on ``(basin, issue_time, lead, member)``
+    (``issue_time`` optional when the file holds one issue), ``basin`` string ids, ``lead``
+    1..L integer days, ``issue_time`` CF-encoded days.
+
+    Returns
+    -------
+    dict "precipitation", "pet" -> (basin, lead, file_member) float64, mm d-1
+
+    Raises
+    ------
+    InputError
+        if the file, a variable, a basin, the issue time or a lead is missing, or values are
+        negative or not finite.
+    """
+    try:
+        ds = xr.open_dataset(path)
+    except (OSError, ValueError) as exc:
+        raise InputError(f"cannot read forcing forecast ({exc})", file=path) from None
+    with ds:
+        out = {}
+        ids = [str(b) for b in ds["basin"].values] if "basin" in ds else []
+        missing = [b for b in basins if b not in ids]
+        if missing:
+            raise InputError("basin not in the forcing forecast", file=path, variable="basin", place=missing[0])
+        sel = {"basin": [ids.index(b) for b in basins]}
+        if "lead" not in ds.coords or ds["lead"].size < leads:
+            raise InputError(f"fewer than {leads} leads", file=path, variable="lead")
+        for name in ("precipitation", "pet"):
+            if name not in ds:
+                raise InputError("variable missing from the forcing forecast", file=path, variable=name)
+            da = ds[name].isel(sel)
+            if "issue_time" in da.dims:
+                days = day_numbers(da["issue_time"].values)
+                hit = np.flatnonzero(days == issue_day)
+                if not hit.size:
+                    raise InputError("issue time not in the forcing forecast", file=path, variable="issue_time",
+                                     place=dates([issue_day])[0].strftime("%Y-%m-%d"))
+                da = da.isel(issue_time=int(hit[0]))
+            da = da.sel(lead=np.arange(1, leads + 1)).transpose("basin", "lead", "member")
+            values = np.asarray(da.values, dtype=np.float64)
+            bad = ~np.isfinite(values) | (values < 0)
+            if bad.any():
+                b, lead_i, m = (int(i[0]) for i in np.nonzero(bad))
+                raise InputError("negative or missing value", file=path, variable=name,
+                                 place=f"basin {basins[b]}, lead {lead_i + 1}, member {m}")
+            out[name] = values
+    return out
+
+
+@contextlib.contextmanager
+def forecast_lock(path):
+    """Hold a lock file (PID and host) while a forecast for one issue date runs.
+
+    A lock held by a live process is refused; a lock whose process is dead on this host
+    (a stale lock) is reported through ``warnings`` and replaced.
+
+    Raises
+    ------
+    LockError
+        naming the lock file, the PID and the host of the run holding it.
+    """
+    import socket
+    import warnings
+
+    from assim.errors import LockError
+
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    host = socket.gethostname()
+    mine = f"{os.getpid()} {host}\n"
+    for _ in range(2):
+        try:
+            fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+        except FileExistsError:
+            try:
+                pid_text, _, other = path.read_text().strip().partition(" ")
+                pid = int(pid_text)
+            except (OSError, ValueError):
+                pid, other = -1, host
+            if other == host and pid > 0 and _alive(pid):
+                raise LockError(f"a forecast for this date is in progress (pid {pid} on {other}); "
+                                "wait for it to finish", file=path) from None
+            if other != host:
+                raise LockError(f"a forecast for this date is held by pid {pid} on host {other}; "
+                                "remove the lock file if that run is dead", file=path) from None
+            warnings.warn(f"{path}: stale lock of pid {pid} (no longer running) replaced", RuntimeWarning,
+                          stacklevel=3)
+            with contextlib.suppress(FileNotFoundError):
+                path.unlink()
+            continue
+        with os.fdopen(fd, "w") as f:
+            f.write(mine)
+        break
+    else:  # pragma: no cover - another run took the lock between our two attempts
+        raise LockError("a forecast for this date is starting in another process", file=path)
+    try:
+        yield path
+    finally:
+        with contextlib.suppress(FileNotFoundError):
+            if path.read_text() == mine:
+                path.unlink()
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True

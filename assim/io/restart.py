@@ -1,0 +1,163 @@
+"""``restart.nc``: everything needed to continue a run exactly.
+
+Contents (all float64):
+
+- ``states`` (basin, member, state), mm, valid at the end of ``valid_time``;
+- ``parameter_<name>`` (basin, member), the members' parameters;
+- ``ar1_<forcing>`` (basin, member), the AR(1) log errors of the forcing perturbations on
+  ``valid_time``, so the next day's multipliers continue the same series;
+- ``collapse_days`` (basin,), consecutive days of collapsed spread so far;
+- identity attributes: ``model``, ``members``, ``seed``, ``mode``, the basins (coordinate),
+  and digests of the config sections that shape the numbers (``digest_perturbation``,
+  ``digest_filter``, ``digest_ensemble``) and of the inputs (``digest_inputs``).
+
+A restart whose model, members, basins, seed or state names differ from the run is refused
+with :class:`assim.errors.RestartError`; differing perturbation, filter or input digests are
+returned as warnings (the continuation is then valid but not identical to an uninterrupted
+run).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+from assim.errors import RestartError
+from assim.io.common import atomic_path, global_attributes
+from assim.io.products import CALENDAR, TIME_UNITS, dates, day_numbers
+
+
+@dataclass(frozen=True)
+class Restart:
+    """The content of a restart file (see the module docstring)."""
+
+    basins: tuple[str, ...]
+    valid_day: int
+    state_names: tuple[str, ...]
+    states: np.ndarray
+    parameters: dict[str, np.ndarray]
+    ar1: dict[str, np.ndarray]
+    collapse_days: np.ndarray
+    identity: dict[str, str] = field(default_factory=dict)
+    path: str | None = None
+
+    @property
+    def members(self) -> int:
+        return self.states.shape[1]
+
+
+def write_restart(path, restart: Restart) -> Path:
+    """Write ``restart`` to ``path`` (atomically); returns the path."""
+    b = np.array(restart.basins, dtype=object)
+    data = {
+        "states": (("basin", "member", "state"), np.asarray(restart.states, dtype=np.float64),
+                   {"units": "mm", "long_name": "ensemble model states at the end of valid_time"}),
+        "collapse_days": (("basin",), np.asarray(restart.collapse_days, dtype=np.int32),
+                          {"long_name": "consecutive days with collapsed spread"}),
+    }
+    for name, v in restart.parameters.items():
+        data[f"parameter_{name}"] = (("basin", "member"), np.asarray(v, dtype=np.float64),
+                                     {"long_name": f"member value of parameter {name}"})
+    for name, v in restart.ar1.items():
+        data[f"ar1_{name}"] = (("basin", "member"), np.asarray(v, dtype=np.float64),
+                               {"long_name": f"AR(1) log error of the {name} perturbation on valid_time"})
+    ds = xr.Dataset(
+        data,
+        coords={
+            "basin": ("basin", b, {"cf_role": "timeseries_id"}),
+            "member": ("member", np.arange(restart.states.shape[1])),
+            "state": ("state", np.array(restart.state_names, dtype=object)),
+            "valid_time": ((), dates([restart.valid_day])[0],
+                           {"long_name": "the states are valid at the end of this day"}),
+        },
+        attrs=global_attributes("ensemble restart", **{k: str(v) for k, v in restart.identity.items()}),
+    )
+    enc = {"valid_time": {"units": TIME_UNITS, "calendar": CALENDAR, "dtype": "i4"}}
+    with atomic_path(path) as tmp:
+        ds.to_netcdf(tmp, encoding=enc, format="NETCDF4")
+    return Path(path)
+
+
+def read_restart(path) -> Restart:
+    """Read a restart file.
+
+    Raises
+    ------
+    RestartError
+        if the file is missing, unreadable or lacks a variable.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise RestartError("restart file not found", file=path)
+    try:
+        ds = xr.open_dataset(path)
+    except (OSError, ValueError) as exc:
+        raise RestartError(f"cannot read restart ({exc})", file=path) from None
+    with ds:
+        for v in ("states", "valid_time", "collapse_days"):
+            if v not in ds.variables:
+                raise RestartError("variable missing from the restart", file=path, variable=v)
+        return Restart(
+            basins=tuple(str(x) for x in ds["basin"].values),
+            valid_day=int(day_numbers([ds["valid_time"].values])[0]),
+            state_names=tuple(str(x) for x in ds["state"].values),
+            states=np.asarray(ds["states"].values, dtype=np.float64),
+            parameters={k[len("parameter_"):]: np.asarray(ds[k].values, dtype=np.float64)
+                        for k in ds.data_vars if k.startswith("parameter_")},
+            ar1={k[len("ar1_"):]: np.asarray(ds[k].values, dtype=np.float64) for k in ds.data_vars if k.startswith("ar1_")},
+            collapse_days=np.asarray(ds["collapse_days"].values, dtype=np.int64),
+            identity={k: str(v) for k, v in ds.attrs.items()},
+            path=str(path),
+        )
+
+
+STRICT = ("model", "members", "seed")
+LOOSE = ("digest_perturbation", "digest_filter", "digest_inputs")
+
+
+def check_restart(
+    restart: Restart,
+    *,
+    identity: Mapping[str, str],
+    basins: Sequence[str],
+    state_names: Sequence[str],
+) -> list[str]:
+    """Refuse a restart that does not fit the run; return warnings for looser differences.
+
+    Parameters
+    ----------
+    identity : the run's identity attributes (``model``, ``members``, ``seed`` and digests)
+    basins : the run's basin ids, in order
+    state_names : the model's state names
+
+    Raises
+    ------
+    RestartError
+        naming the file, the variable and the mismatch (model, members, seed, basins or
+        state names).
+    """
+    f = restart.path
+    for key in STRICT:
+        have, want = restart.identity.get(key), str(identity.get(key))
+        if have != want:
+            raise RestartError(f"restart has {key} {have!r} but the run has {want!r}", file=f, variable=key)
+    if tuple(restart.basins) != tuple(basins):
+        extra = sorted(set(restart.basins) - set(basins))
+        lacking = sorted(set(basins) - set(restart.basins))
+        what = (f"basins {lacking} not in the restart" if lacking else
+                f"basins {extra} not in the run" if extra else "basins in a different order")
+        raise RestartError(f"restart does not match the run: {what}", file=f, variable="basin")
+    if tuple(restart.state_names) != tuple(state_names):
+        raise RestartError(f"restart has states {list(restart.state_names)}, the model has {list(state_names)}",
+                           file=f, variable="state")
+    warnings = []
+    for key in LOOSE:
+        if key in identity and restart.identity.get(key) != str(identity[key]):
+            section = key.removeprefix("digest_")
+            warnings.append(f"{f}: the {section} settings differ from the run that wrote this restart; "
+                            "the continuation is valid but not identical to an uninterrupted run")
+    return warnings
