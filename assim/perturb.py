@@ -21,7 +21,9 @@ The error model
   the logit of the position in ``[low, high]`` for a finite range, ``log(theta - low)`` for
   a range open above. The draw's standard deviation in that space is chosen so that, to
   first order, the standard deviation in parameter units is ``relative_sd * |theta|``. The
-  draw never leaves the valid range, and a parameter sitting on a bound stays there.
+  draw never leaves the valid range, and a parameter sitting on a bound stays there; the
+  logit-space sd is at most ``MAX_LOGIT_SD`` (1), which only binds close to the upper bound
+  of a finite range, where the draws are then squeezed against it.
 - State noise: additive Gaussian error (mm) on chosen states after each model step, clipped
   to the states' bounds; the water actually added is returned so that it can be reported.
 """
@@ -46,6 +48,9 @@ _M1 = np.uint64(0xBF58476D1CE4E5B9)
 _M2 = np.uint64(0x94D049BB133111EB)
 _S30, _S27, _S31, _S11 = (np.uint64(k) for k in (30, 27, 31, 11))
 _TWO_M53 = 2.0**-53
+# Largest sd of a parameter draw in logit space: near the upper bound of a finite range the
+# first-order match would ask for an ever wider draw; this keeps the draws squeezed there.
+MAX_LOGIT_SD = 1.0
 
 
 def _mix(x: np.ndarray) -> np.ndarray:
@@ -232,7 +237,7 @@ def _transformed_draw(theta: np.ndarray, rel: float, rng: ParameterRange, z: np.
         p = np.clip((theta - lo) / width, 0.0, 1.0)
         with np.errstate(divide="ignore", invalid="ignore"):
             slope = width * p * (1.0 - p)  # d theta / d logit(p)
-            s = np.where(slope > 0, target / slope, 0.0)
+            s = np.where(slope > 0, np.minimum(target / slope, MAX_LOGIT_SD), 0.0)
             u = np.log(p) - np.log1p(-p)
         drawn = lo + width / (1.0 + np.exp(-(u[:, None] + s[:, None] * z)))
     else:

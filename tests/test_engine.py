@@ -1,0 +1,371 @@
+"""Tests of the time cycling (assim.engine) on arrays built in the test."""
+
+from __future__ import annotations
+
+import dataclasses
+import warnings
+
+import numpy as np
+import pytest
+import scoringrules as sr
+from filterpy.kalman import KalmanFilter
+
+from assim import engine, models
+from assim import perturb as pt
+from assim.config import load_config
+from assim.errors import RunError
+
+GR4J = models.get("gr4j")
+LR = models.get("linear_reservoir")
+
+
+class Collect:
+    """A sink that keeps every block in memory."""
+
+    def __init__(self):
+        self.blocks: dict[str, list] = {}
+        self.starts: list[int] = []
+        self.issues: list[np.ndarray] = []
+
+    def write_block(self, start, arrays):
+        self.starts.append(start)
+        for k, v in arrays.items():
+            self.blocks.setdefault(k, []).append(np.array(v))
+
+    def write_issues(self, start, discharge):
+        self.issues.append(np.array(discharge))
+
+    def get(self, name):
+        return np.concatenate(self.blocks[name], axis=1)
+
+    @property
+    def hindcast(self):
+        return np.concatenate(self.issues, axis=1)
+
+
+def lognormal_ar1(rng, shape, cv, phi):
+    """An AR(1) lognormal multiplicative error drawn independently of assim.perturb."""
+    s = np.sqrt(np.log1p(cv**2))
+    e = np.empty(shape)
+    e[:, 0] = rng.standard_normal(shape[0])
+    for i in range(1, shape[1]):
+        e[:, i] = phi * e[:, i - 1] + np.sqrt(1 - phi**2) * rng.standard_normal(shape[0])
+    return np.exp(s * e - s * s / 2)
+
+
+def synthetic_weather(rng, nb, nt):
+    t = np.arange(nt)
+    wet = rng.random((nb, nt)) < 0.35
+    p = np.where(wet, rng.gamma(0.8, 9.0, (nb, nt)), 0.0)
+    e = np.clip(2.5 + 2.0 * np.sin(2 * np.pi * (t - 100) / 365.25), 0.3, None)[None].repeat(nb, 0)
+    return p, e
+
+
+def make_inputs(model, params, p, e, obs=None, area=None, ids=None, day0=15000):
+    nb, nt = p.shape
+    ids = tuple(ids or (f"b{i}" for i in range(nb)))
+    area = np.full(nb, 250.0) if area is None else np.asarray(area, dtype=float)
+    obs = np.full((nb, nt), np.nan) if obs is None else obs
+    return engine.Inputs(ids, pt.basin_keys(ids), area, np.arange(nt, dtype=np.int64) + day0, p, e, obs,
+                         np.zeros((nb, nt), dtype=bool), {k: np.asarray(v, dtype=float) for k, v in params.items()})
+
+
+# ---------------------------------------------------------------- acceptance: twin experiment
+
+
+@pytest.fixture(scope="module")
+def twin():
+    """Synthetic truth from GR4J with true parameters on 16 invented basins; observed
+    forcing = true forcing x errors from the configured error model; readings = truth +
+    the configured observation error. The engine runs with the shipped defaults
+    (64 members, 365 spin-up days), over 4 years after the spin-up."""
+    cfg = load_config(None)
+    rng = np.random.default_rng(20261201)
+    nb, spin = 16, cfg["period"]["spinup_days"]
+    nt = spin + 4 * 365
+    p, e = synthetic_weather(rng, nb, nt)
+    area = np.linspace(200, 1500, nb)
+    params = {"x1": np.linspace(200, 600, nb), "x2": np.linspace(-1, 1, nb),
+              "x3": np.linspace(50, 150, nb), "x4": np.linspace(1.2, 3.0, nb)}
+    x = GR4J.initial_state(params)
+    q = np.empty((nb, nt))
+    for i in range(nt):
+        x, f = GR4J.step(x, {"precipitation": p[:, i], "pet": e[:, i]}, params)
+        q[:, i] = f["runoff"]
+    truth = q * area[:, None] / 86.4
+    per, oe = cfg["perturbation"], cfg["filter"]["obs_error"]
+    po = p * lognormal_ar1(rng, (nb, nt), per["precipitation_cv"], per["precipitation_ar1"])
+    eo = e * lognormal_ar1(rng, (nb, nt), per["pet_cv"], per["pet_ar1"])
+    sd = np.maximum(oe["relative"] * truth, oe["floor_m3s"])
+    obs = np.maximum(truth + sd * rng.standard_normal((nb, nt)), 0.0)
+    inputs = make_inputs(GR4J, params, po, eo, obs, area)
+    hc = cfg["hindcast"]
+    out = {}
+    for mode in ("openloop", "assimilate"):
+        st = engine.settings_from_config(cfg, GR4J, mode)
+        run_sink, hind_sink = Collect(), Collect()
+        engine.run(GR4J, inputs, st, run_sink)
+        engine.run(GR4J, inputs, st, hind_sink, hindcast=(hc["every_days"], hc["leads"], "observed"))
+        out[mode] = (run_sink, hind_sink)
+    plan = engine.plan(inputs, engine.settings_from_config(cfg, GR4J, "openloop"), None)
+    issues = engine.issue_indices(plan, hc["every_days"], hc["leads"], nt)
+    return dict(truth=truth, spin=spin, out=out, issues=issues, leads=hc["leads"])
+
+
+def _crps(obs, ens):
+    return float(sr.crps_ensemble(obs, ens.astype(np.float64)).mean())
+
+
+def test_twin_assimilation_halves_the_crps(twin):
+    """CRPS (scoringrules.crps_ensemble, reference library) of the background discharge of
+    the assimilation run against the truth is at most half that of the open loop (acceptance
+    criterion of the project, common practice of twin experiments)."""
+    tr = twin["truth"][:, twin["spin"]:]
+    c_ol = _crps(tr, twin["out"]["openloop"][0].get("discharge"))
+    c_da = _crps(tr, twin["out"]["assimilate"][0].get("discharge"))
+    c_an = _crps(tr, twin["out"]["assimilate"][0].get("discharge_analysis"))
+    assert c_da <= 0.5 * c_ol
+    assert c_an < c_da  # the update moves the ensemble towards the truth
+
+
+def test_twin_hindcast_skill_by_lead(twin):
+    """Lead-1 CRPS skill score of the assimilation hindcast against the open-loop hindcast
+    is at least 0.5, and skill decreases with lead (scoringrules.crps_ensemble)."""
+    truth, issues = twin["truth"], twin["issues"]
+    hol = twin["out"]["openloop"][1].hindcast
+    hda = twin["out"]["assimilate"][1].hindcast
+    assert hol.shape == (16, len(issues), twin["leads"], 64)
+    skill = []
+    for lead in range(1, twin["leads"] + 1):
+        v = truth[:, issues + lead]
+        skill.append(1 - _crps(v, hda[:, :, lead - 1]) / _crps(v, hol[:, :, lead - 1]))
+    skill = np.array(skill)
+    assert skill[0] >= 0.5
+    assert np.all(np.diff(skill) < 0.02)  # non-increasing up to sampling noise
+    assert skill[-1] < skill[0] - 0.15
+
+
+def test_twin_spread_matches_error(twin):
+    """Ratio of ensemble spread (sqrt of the mean ensemble variance) to the RMSE of the
+    ensemble mean against the truth, pooled over basins after scaling each by its mean flow,
+    is between 0.8 and 1.2 (Fortin et al. 2014, eq. 1, without the (M+1)/M factor, which is
+    1.008 here)."""
+    tr = twin["truth"][:, twin["spin"]:]
+    w = 1.0 / tr.mean(axis=1, keepdims=True) ** 2
+    for mode in ("assimilate", "openloop"):
+        ens = twin["out"][mode][0].get("discharge").astype(np.float64)
+        spread = np.sqrt((w * ens.var(axis=-1, ddof=1)).mean())
+        rmse = np.sqrt((w * (ens.mean(axis=-1) - tr) ** 2).mean())
+        assert 0.8 <= spread / rmse <= 1.2, mode
+
+
+def test_openloop_hindcast_equals_the_run(twin):
+    """With observed forcing perturbed as in the run, the open-loop forecast from issue t at
+    lead l is the open-loop run at t + l, exactly (the numbers depend only on seed, basin,
+    member and day)."""
+    run = twin["out"]["openloop"][0].get("discharge")  # float32 output
+    hind = twin["out"]["openloop"][1].hindcast
+    idx = twin["issues"] - twin["spin"]
+    for lead in (1, 5, 10):
+        np.testing.assert_array_equal(hind[:, :, lead - 1].astype(np.float32), run[:, idx + lead])
+
+
+# ---------------------------------------------------------------- exact references
+
+
+def test_linear_reservoir_enkf_follows_the_kalman_filter():
+    """On the linear reservoir with multiplicative precipitation errors, the ensemble mean
+    and variance of the stochastic EnKF follow the exact Kalman filter
+    (filterpy.kalman.KalmanFilter, reference library) with process noise variance
+    (a P cv)^2 per day, to Monte Carlo accuracy: the filter uses only the first two moments
+    and the lognormal error has mean 1 and sd cv (Burgers et al. 1998, sect. 3)."""
+    rng = np.random.default_rng(4)
+    nt, cv, area = 120, 0.3, 86.4  # area 86.4 km2: 1 mm d-1 = 1 m3 s-1
+    p = np.where(rng.random(nt) < 0.5, rng.gamma(1.0, 8.0, nt), 0.0)[None]
+    e = np.full((1, nt), 1.0)
+    k, c = 0.2, 0.05
+    a = (1 - k) * np.exp(-c * 1.0)
+    h = k / a
+    truth = np.zeros(nt)
+    s = 20.0
+    for t in range(nt):
+        s = a * (s + p[0, t])
+        truth[t] = h * s
+    obs = (truth + rng.normal(0, 0.5, nt))[None]
+    obs[0, ::3] = np.nan
+    inputs = make_inputs(LR, {"k": [k], "c": [c]}, p, e, obs, area=[area])
+    st = engine.Settings(mode="assimilate", members=4000, seed=1, spinup_days=0,
+                         precipitation=pt.LognormalAR1(cv, 0.0), pet=pt.LognormalAR1(0.0, 0.0),
+                         update_states=("store",), write_states=("store",),
+                         obs_error=engine.ObsError("absolute", 0.5), gate_sigma=0.0, float32=False,
+                         scheduler="synchronous")
+    sink = Collect()
+    engine.run(LR, inputs, st, sink)
+    ens = sink.get("store")[0]
+    kf = KalmanFilter(dim_x=1, dim_z=1)
+    kf.x = np.array([[0.0]])
+    kf.P = np.array([[0.0]])
+    kf.F = np.array([[a]])
+    kf.H = np.array([[h]])
+    kf.R = np.array([[0.25]])
+    means, variances = [], []
+    for t in range(nt):
+        kf.Q = np.array([[(a * p[0, t] * cv) ** 2]])
+        kf.predict(u=np.array([[a * p[0, t]]]), B=np.array([[1.0]]))
+        if np.isfinite(obs[0, t]):
+            kf.update(np.array([[obs[0, t]]]))
+        means.append(kf.x[0, 0])
+        variances.append(kf.P[0, 0])
+    means, variances = np.array(means), np.array(variances)
+    np.testing.assert_allclose(ens.mean(axis=1), means, rtol=0.03, atol=0.05)
+    np.testing.assert_allclose(ens.var(axis=1, ddof=1), variances, rtol=0.12, atol=0.02)
+
+
+def test_no_perturbation_gives_identical_members_equal_to_the_model():
+    """With zero forcing errors and no parameter or state noise, every member is the
+    deterministic model run (common practice, no published source)."""
+    rng = np.random.default_rng(0)
+    p, e = synthetic_weather(rng, 2, 200)
+    params = {"x1": [300.0, 500.0], "x2": [0.0, -0.5], "x3": [80.0, 120.0], "x4": [1.5, 2.5]}
+    inputs = make_inputs(GR4J, params, p, e)
+    st = engine.Settings(mode="openloop", members=3, seed=0, precipitation=pt.LognormalAR1(0.0, 0.5),
+                         pet=pt.LognormalAR1(0.0, 0.5), float32=False, scheduler="synchronous")
+    sink = Collect()
+    engine.run(GR4J, inputs, st, sink)
+    q = sink.get("discharge")
+    x = GR4J.initial_state({k: np.asarray(v) for k, v in params.items()})
+    for t in range(200):
+        x, f = GR4J.step(x, {"precipitation": p[:, t], "pet": e[:, t]}, {k: np.asarray(v) for k, v in params.items()})
+        for m in range(3):
+            np.testing.assert_allclose(q[:, t, m], f["runoff"] * 250.0 / 86.4, rtol=1e-12)
+
+
+def test_spinup_days_are_not_written_and_not_assimilated():
+    rng = np.random.default_rng(1)
+    p, e = synthetic_weather(rng, 1, 100)
+    obs = np.full((1, 100), 3.0)
+    inputs = make_inputs(GR4J, {"x1": [300.0], "x2": [0.0], "x3": [80.0], "x4": [1.5]}, p, e, obs)
+    st = engine.Settings(mode="assimilate", members=8, spinup_days=30, update_states=("production_store",),
+                         scheduler="synchronous")
+    sink = Collect()
+    summary = engine.run(GR4J, inputs, st, sink)
+    assert sink.get("discharge").shape == (1, 70, 8)
+    assert summary.n_used.sum() + summary.n_gated.sum() == 70
+
+
+# ---------------------------------------------------------------- joint estimation
+
+
+def test_liu_west_shrinkage_keeps_mean_and_variance():
+    """Liu & West (2001), eq. 10: a theta + (1 - a) mean + N(0, (1 - a^2) Var) keeps the
+    ensemble mean and, in expectation, the variance."""
+    rng = np.random.default_rng(2)
+    theta = rng.gamma(4.0, 1.0, (1, 20000, 1))
+    z = rng.standard_normal(theta.shape)
+    new = engine.liu_west_shrink(theta, 0.9, z, np.array([-np.inf]), np.array([np.inf]))
+    assert new.mean() == pytest.approx(theta.mean(), abs=0.03)
+    assert new.var() == pytest.approx(theta.var(), rel=0.03)
+    assert np.corrcoef(new.ravel(), theta.ravel())[0, 1] == pytest.approx(0.9, abs=0.01)
+    clipped = engine.liu_west_shrink(theta, 0.5, z, np.array([3.0]), np.array([5.0]))
+    assert clipped.min() >= 3.0 and clipped.max() <= 5.0
+
+
+def test_joint_estimation_moves_the_parameter_towards_the_truth():
+    """Twin on the linear reservoir: the truth has k = 0.3, the basin file says 0.15 with a
+    30 % perturbation; estimating k with the readings moves the ensemble mean of k towards
+    0.3 and keeps every member in the valid range (common practice of joint
+    state-parameter estimation, no published value)."""
+    rng = np.random.default_rng(3)
+    nt = 400
+    p = np.where(rng.random((1, nt)) < 0.4, rng.gamma(1.0, 10.0, (1, nt)), 0.0)
+    e = np.full((1, nt), 2.0)
+    s, q = 0.0, np.empty(nt)
+    for t in range(nt):
+        filled = s + p[0, t]
+        q[t] = 0.3 * filled
+        s = (1 - 0.3) * np.exp(-0.02 * 2.0) * filled
+    obs = (q + rng.normal(0, 0.05 * q + 0.05))[None]
+    inputs = make_inputs(LR, {"k": [0.15], "c": [0.02]}, p, e, obs, area=[86.4])
+    st = engine.Settings(mode="assimilate", members=64, seed=9, spinup_days=0, parameter_sd={"k": 0.3},
+                         update_states=("store",), estimate=("k",), shrinkage=0.98,
+                         obs_error=engine.ObsError("relative", relative=0.05, floor=0.05),
+                         scheduler="synchronous")
+    sink = Collect()
+    summary = engine.run(LR, inputs, st, sink)
+    traj = sink.get("k")[0]
+    assert traj.shape == (nt, 64)
+    assert abs(traj[-50:].mean() - 0.3) < 0.3 * abs(traj[0].mean() - 0.3)
+    assert traj.min() >= 0.001 and traj.max() <= 0.95
+    np.testing.assert_allclose(summary.state.parameters["k"][0], traj[-1], rtol=1e-6)
+
+
+# ---------------------------------------------------------------- filter health
+
+
+def test_nan_state_stops_the_run_naming_basin_and_date():
+    p = np.full((3, 50), 2.0)
+    p[1, 20] = np.inf  # a corrupt forcing value in basin "b1"
+    inputs = make_inputs(LR, {"k": [0.1] * 3, "c": [0.0] * 3}, p, np.ones((3, 50)))
+    st = engine.Settings(mode="openloop", members=4, basin_chunk=2, scheduler="synchronous")
+    with pytest.raises(RunError) as info:
+        engine.run(LR, inputs, st, Collect())
+    text = str(info.value)
+    day = np.datetime64("1970-01-01") + np.timedelta64(15020, "D")
+    assert "basin b1" in text and str(day) in text and "store" in text
+
+
+def test_collapse_and_gating_are_warned():
+    """No perturbation: the spread is zero, so the collapse warning fires after
+    collapse_days readings; readings far from the ensemble are gated and warned about."""
+    p = np.full((2, 60), 2.0)
+    obs = np.full((2, 60), np.nan)
+    obs[0] = 1000.0  # far off: gated
+    s, q = 0.0, np.empty(60)  # the unperturbed model (area 86.4 km2: mm d-1 = m3 s-1)
+    for t in range(60):
+        q[t] = 0.1 * (s + 2.0)
+        s = 0.9 * (s + 2.0)
+    obs[1, 1::2] = q[1::2]
+    inputs = make_inputs(LR, {"k": [0.1, 0.1], "c": [0.0, 0.0]}, p, np.ones((2, 60)), obs, area=[86.4, 86.4])
+    st = engine.Settings(mode="assimilate", members=8, precipitation=pt.LognormalAR1(0.05, 0.5),
+                         pet=pt.LognormalAR1(0.0, 0.5), collapse_ratio=1e6, collapse_days=10,
+                         update_states=("store",), scheduler="synchronous")
+    sink = Collect()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        summary = engine.run(LR, inputs, st, sink)
+    text = " ".join(summary.warnings)
+    assert "basin b0" in text and "gated" in text
+    assert "basin b1: ensemble collapse" in text
+    assert any("collapse" in str(w.message) for w in caught)
+    status = sink.get("obs_status")
+    assert np.all(status[0] == engine.OBS_GATED)
+    assert np.all(status[1, 1::2] == engine.OBS_USED) and np.all(status[1, 0::2] == engine.OBS_MISSING)
+    # the day after 10 readings (day index 19): first collapse
+    assert summary.first_collapse[1] == 15000 + 19
+
+
+def test_quantile_outputs():
+    rng = np.random.default_rng(5)
+    p, e = synthetic_weather(rng, 2, 60)
+    inputs = make_inputs(GR4J, {"x1": [300.0] * 2, "x2": [0.0] * 2, "x3": [80.0] * 2, "x4": [1.5] * 2}, p, e)
+    base = engine.Settings(mode="openloop", members=16, float32=False, scheduler="synchronous")
+    members, quant = Collect(), Collect()
+    engine.run(GR4J, inputs, base, members)
+    engine.run(GR4J, inputs, dataclasses.replace(base, quantiles=(0.1, 0.5, 0.9)), quant)
+    np.testing.assert_array_equal(quant.get("discharge_quantile"),
+                                  np.quantile(members.get("discharge"), [0.1, 0.5, 0.9], axis=2).transpose(1, 2, 0))
+    assert "discharge" not in quant.blocks
+
+
+def test_climatology_index_cycles_past_years():
+    """Member m takes year Y-1-(m mod n) of the record, same calendar dates; 29 February is
+    read as 28 February (the documented convention)."""
+    dt = np.datetime64("1970-01-01", "D")
+    days = np.arange((np.datetime64("2001-01-01") - dt).astype(int), (np.datetime64("2005-01-01") - dt).astype(int))
+    issue = np.array([(np.datetime64("2004-02-29") - dt).astype(int)])
+    idx = engine.climatology_index(days, issue, 3, np.arange(5))
+    got = (dt + days[idx[0]]).astype(str)
+    assert list(got[:, 0]) == ["2003-03-01", "2003-03-02", "2003-03-03"]
+    assert list(got[0]) == ["2003-03-01", "2002-03-01", "2001-03-01", "2003-03-01", "2002-03-01"]
+    with pytest.raises(RunError):
+        engine.climatology_index(days[:300], np.array([days[10]]), 3, np.arange(2))
