@@ -18,6 +18,7 @@ them by basin:
 from __future__ import annotations
 
 import re
+import textwrap
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 
@@ -220,8 +221,8 @@ def plot_plume(forecast: xr.Dataset, observed: xr.DataArray | None, basin: str, 
     ax.set_ylim(0, 1.3 * top)  # head room for the legend above the data and thresholds
     ax.grid(alpha=0.3)
     ax.legend(loc="upper left", fontsize=8, ncol=3, framealpha=0.9)
-    ax.set_title(f"issued {issue:%Y-%m-%d} (end of day); analysis {forecast.attrs.get('analysis', 'unknown')}",
-                 fontsize=9)
+    analysis = textwrap.shorten(str(forecast.attrs.get("analysis", "unknown")), width=110, placeholder=" ...")
+    ax.set_title(f"issued {issue:%Y-%m-%d} (end of day); analysis {analysis}", fontsize=9)
     # exceedance probability per lead, one bar group per valid day
     p = fc["exceedance_probability"].transpose("lead", "threshold").values if thr_names else np.zeros((len(valid), 0))
     shown = [k for k in range(len(thr_names)) if np.isfinite(thr[k])]
@@ -230,10 +231,12 @@ def plot_plume(forecast: xr.Dataset, observed: xr.DataArray | None, basin: str, 
         offset = pd.to_timedelta((j - (len(shown) - 1) / 2) * width, unit="D")
         bars = axp.bar(valid + offset, p[:, k], width=width, color=colors[k % len(colors)], label=thr_names[k])
         if len(valid) <= 15:
-            labels = [f"{x:.0%}" if x > 0 else "0" for x in p[:, k]]
-            axp.bar_label(bars, labels=labels, fontsize=6, padding=1)
+            axp.bar_label(bars, labels=[f"{x:.0%}" if x > 0 else "" for x in p[:, k]], fontsize=6, padding=1)
     if not shown:
         axp.text(0.5, 0.5, "no threshold for this basin", transform=axp.transAxes, ha="center", va="center")
+    elif not np.nanmax(p[:, shown], initial=0) > 0:
+        axp.text(0.5, 0.5, "no member exceeds any threshold at any lead (probability 0)",
+                 transform=axp.transAxes, ha="center", va="center", fontsize=9, color="0.3")
     axp.set_ylim(0, 1.12)
     axp.set_yticks(np.linspace(0, 1, 6))
     axp.set_ylabel("Exceedance\nprobability (-)")
@@ -276,7 +279,7 @@ def plot_skill_by_lead(skill: xr.Dataset, basin: str, path: str | Path, *,
     Path of the written figure.
     """
     leads = skill["lead"].values.astype(int)
-    panels = (("crpss", "CRPSS against open loop (-)", 0.0, "open loop"),
+    panels = (("crpss", "CRPSS against open loop (-)", 0.0, "reference (open loop)"),
               ("nse", "NSE of median (-)", 0.0, "observed mean"),
               ("kge", "KGE of median (-)", 1 - np.sqrt(2), "mean-flow benchmark"))
     fig, axes = _figure(1, 3, (12, 4.0))
@@ -364,8 +367,9 @@ def plot_reliability(skill: xr.Dataset, basin: str, threshold: str, path: str | 
             ok = n > 0
             if ok.any():
                 ax.plot(fp[ok], of[ok], "-", color=style["color"], lw=1)
+                events = int(round(float(np.sum(of[ok] * n[ok]))))
                 ax.scatter(fp[ok], of[ok], s=8 + 60 * np.sqrt(n[ok] / n.max()), color=style["color"],
-                           label=f"{style['label']} (n = {n.sum()})", zorder=3)
+                           label=f"{style['label']} (n = {n.sum()}, {events} observed)", zorder=3)
         ax.set_xlim(-0.02, 1.02)
         ax.set_ylim(-0.02, 1.02)
         ax.set_aspect("equal")
