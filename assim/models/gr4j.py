@@ -187,7 +187,8 @@ def prepare(params: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
 
     Call it once per run (or whenever the parameters change) and pass the result to
     :func:`step` in place of the raw parameters. Keys starting with ``_`` hold the
-    precomputed arrays; the raw ``x1..x4`` are kept unchanged.
+    precomputed arrays; the raw ``x1..x4`` are kept. A dict that is already prepared is
+    returned as it is.
 
     Parameters
     ----------
@@ -197,13 +198,14 @@ def prepare(params: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
     Returns
     -------
     dict
-        ``x1..x4`` as (batch,) float64, plus ``_uh1`` (batch, k1) and ``_uh2`` (batch, k2)
-        Fortran-ordered ordinates already multiplied by the 0.9 and 0.1 shares, where
-        k1 = ceil(max X4) and k2 = ceil(2 max X4), and reciprocals ``_inv_x1``, ``_inv_x3``
-        and ``_perc_x1`` = 4 / (9 X1).
+        ``x1..x4`` as contiguous (batch,) float64; ``_uh1`` (batch, k1) and ``_uh2``
+        (batch, k2), the Fortran-ordered ordinates already multiplied by the 0.9 and 0.1
+        shares, where k1 = ceil(max X4) and k2 = ceil(2 max X4) over the batch; ``_inv_x1``
+        = 1/X1, ``_perc_x1`` = 4/(9 X1), ``_inv_x3`` = 1/X3, ``_exchange`` = X2 / X3^(7/2),
+        and the constants ``_zero`` and ``_one`` (numpy is faster with array operands).
     """
     if "_uh1" in params:
-        return dict(params)
+        return params  # type: ignore[return-value]
     x = np.broadcast_arrays(*(np.asarray(params[p.name], dtype=np.float64) for p in PARAMETERS))
     x1, x2, x3, x4 = (np.ascontiguousarray(v, dtype=np.float64).reshape(-1) for v in x)
     uh1, uh2 = uh_ordinates(x4)
@@ -220,6 +222,9 @@ def prepare(params: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
         "_inv_x1": 1.0 / x1,
         "_perc_x1": (4.0 / 9.0) / x1,
         "_inv_x3": 1.0 / x3,
+        "_exchange": x2 / (x3 * x3 * x3 * np.sqrt(x3)),
+        "_zero": np.zeros(x1.shape[0]),
+        "_one": np.ones(x1.shape[0]),
     }
 
 
@@ -244,103 +249,108 @@ def initial_state(params: Mapping[str, np.ndarray]) -> np.ndarray:
     return state
 
 
-def _block(st, p, e, q, out, fl, w):
-    """Advance one block: ``st`` and ``out`` (b, n_state), ``q`` prepared params, ``fl`` fluxes.
+_PREPARED_ROWS = ("x1", "x3", "_inv_x1", "_perc_x1", "_inv_x3", "_exchange")
+_N_WORK = 6  # scratch rows per block
 
-    ``w`` is a (10, b) scratch buffer. Every array here is a view into the caller's arrays.
+
+def _block(S, R, U1, U2, p, e, x1, x3, ix1, px1, ix3, cx, o1, o2,
+           S_out, R_out, V1, V2, f_pn, f_ae, f_perc, f_ex, f_qr, f_qd, f_q, zero, one, w):
+    """Advance one block of b elements (every argument is a view of the caller's arrays).
+
+    S, R : (b,) start-of-day stores; U1, U2 : (b, k - 1) unit-hydrograph slots in use;
+    p, e : (b,) forcing; x1 .. cx : (b,) prepared parameters; o1, o2 : (b, k) ordinates;
+    S_out .. V2 : the new state; f_* : (b,) fluxes; zero, one : (b,) constant arrays
+    (faster than scalar operands in numpy); w : (_N_WORK, b) scratch.
+
+    Written as in-place numpy calls with positional outputs: at small batch the cost is the
+    number of calls, at large batch the number of passes over the block.
     """
-    x1, x2, x3 = q["x1"], q["x2"], q["x3"]
-    o1, o2 = q["_uh1"], q["_uh2"]
-    k1, k2 = o1.shape[1], o2.shape[1]
-    S, R = st[:, 0], st[:, 1]
-    d, en, s, ta, tb, ps, a, c, pr, t = w
+    mul, add, sub, div, sqrt = np.multiply, np.add, np.subtract, np.divide, np.sqrt
+    vmax, vmin = np.maximum, np.minimum
+    w0, w1, w2, w3, w4, w5 = w
 
-    # Interception: Pn = max(P - E, 0), En = max(E - P, 0); E is met first by P.
-    np.subtract(p, e, out=d)
-    pn = np.maximum(d, 0.0, out=fl["net_rainfall"])  # Perrin et al. (2003), appendix: Pn
-    np.subtract(pn, d, out=en)  # Perrin et al. (2003), appendix: En
-    ae = np.minimum(p, e, out=fl["actual_evaporation"])  # interception part of evaporation
+    # Interception: E is met by P first; Pn = max(P - E, 0), En = max(E - P, 0).
+    d = sub(p, e, w0)
+    pn = vmax(d, zero, out=f_pn)  # Perrin et al. (2003), appendix: Pn = P - E if P >= E
+    ae = vmin(p, e, out=f_ae)  # interception: the part of E met by P
+    # tanh is odd and at most one of Pn, En is non-zero: one tanh serves both.
+    u = mul(d, ix1, w1)
+    np.tanh(u, u)
+    ta = vmax(u, zero, out=w2)  # tanh(Pn / X1)
+    tb = sub(ta, u, w1)  # tanh(En / X1), En = E - P if E > P
 
-    # Production store: Ps and Es, the tanh formulas.
-    np.multiply(S, q["_inv_x1"], out=s)
-    np.multiply(pn, q["_inv_x1"], out=ta)
-    np.tanh(ta, out=ta)
-    np.multiply(en, q["_inv_x1"], out=tb)
-    np.tanh(tb, out=tb)
-    np.multiply(S, s, out=ps)
-    np.subtract(x1, ps, out=ps)
-    ps *= ta
-    np.multiply(s, ta, out=a)
-    a += 1.0
-    ps /= a  # Perrin et al. (2003), appendix: Ps = X1 (1 - (S/X1)^2) tanh(Pn/X1) / (1 + S/X1 tanh(Pn/X1))
-    np.minimum(ps, pn, out=ps)  # Ps <= Pn holds exactly; keep it so under rounding
-    np.subtract(1.0, s, out=c)
-    np.add(c, 1.0, out=a)
-    a *= S
-    a *= tb
-    c *= tb
-    c += 1.0
-    a /= c  # Perrin et al. (2003), appendix: Es = S (2 - S/X1) tanh(En/X1) / (1 + (1 - S/X1) tanh(En/X1))
-    es = np.minimum(a, S, out=a)  # Es <= S holds exactly; keep it so under rounding
-    ae += es
-    s1 = np.subtract(S, es, out=c)
-    s1 += ps  # Perrin et al. (2003), appendix: S = S - Es + Ps
+    # Production store.
+    s = mul(S, ix1, w3)
+    ps = mul(S, s, w4)
+    sub(x1, ps, ps)
+    mul(ps, ta, ps)
+    den = mul(s, ta, w5)
+    add(den, one, den)
+    div(ps, den, ps)  # Perrin et al. (2003), appendix: Ps = X1 (1 - (S/X1)^2) tanh(Pn/X1) / (1 + S/X1 tanh(Pn/X1))
+    vmin(ps, pn, out=ps)  # Ps <= Pn holds exactly; keep it so under rounding
+    v = mul(s, tb, w5)
+    c = sub(tb, v, w3)  # (1 - S/X1) tanh(En/X1)
+    es = add(c, tb, w2)
+    mul(es, S, es)
+    add(c, one, c)
+    div(es, c, es)  # Perrin et al. (2003), appendix: Es = S (2 - S/X1) tanh(En/X1) / (1 + (1 - S/X1) tanh(En/X1))
+    vmin(es, S, out=es)  # Es <= S holds exactly; keep it so under rounding
+    add(ae, es, ae)
+    s1 = sub(S, es, w3)
+    add(s1, ps, s1)  # Perrin et al. (2003), appendix: S = S - Es + Ps
 
-    # Percolation: S_end = S (1 + (4/9 S/X1)^4)^(-1/4), Perc = S - S_end.
-    np.multiply(s1, q["_perc_x1"], out=t)
-    t *= t
-    t *= t
-    t += 1.0
-    np.sqrt(t, out=t)
-    np.sqrt(t, out=t)
-    s_end = np.divide(s1, t, out=out[:, 0])
-    perc = np.subtract(s1, s_end, out=fl["percolation"])  # Perrin et al. (2003), appendix: Perc
-    np.subtract(pn, ps, out=pr)
-    pr += perc  # Perrin et al. (2003), appendix: Pr = Perc + (Pn - Ps)
+    # Percolation.
+    t = mul(s1, px1, w5)
+    mul(t, t, t)
+    mul(t, t, t)
+    add(t, one, t)
+    sqrt(t, t)
+    sqrt(t, t)
+    div(s1, t, S_out)  # S (1 + (4/9 S/X1)^4)^(-1/4)
+    perc = sub(s1, S_out, f_perc)  # Perrin et al. (2003), appendix: Perc = S (1 - (1 + (4/9 S/X1)^4)^(-1/4))
+    pr = sub(pn, ps, w4)
+    add(pr, perc, pr)  # Perrin et al. (2003), appendix: Pr = Perc + (Pn - Ps)
 
     # Unit hydrographs: today's share leaves now, the rest moves one day closer.
-    q9 = np.multiply(o1[:, 0], pr, out=s)
-    q1 = np.multiply(o2[:, 0], pr, out=ta)
-    if k1 > 1:
-        q9 += st[:, _C1]
-        u1 = out[:, _C1:_C1 + k1 - 1]
-        np.multiply(o1[:, 1:k1], pr[:, None], out=u1)
-        u1[:, :k1 - 2] += st[:, _C1 + 1:_C1 + k1 - 1]
-    if k2 > 1:
-        q1 += st[:, _C2]
-        u2 = out[:, _C2:_C2 + k2 - 1]
-        np.multiply(o2[:, 1:k2], pr[:, None], out=u2)
-        u2[:, :k2 - 2] += st[:, _C2 + 1:_C2 + k2 - 1]
+    q9 = mul(o1[:, 0], pr, w0)
+    q1 = mul(o2[:, 0], pr, w1)
+    if V1.shape[1]:
+        add(q9, U1[:, 0], q9)
+        mul(o1[:, 1:], pr[:, None], V1)
+        add(V1[:, :-1], U1[:, 1:], V1[:, :-1])
+    if V2.shape[1]:
+        add(q1, U2[:, 0], q1)
+        mul(o2[:, 1:], pr[:, None], V2)
+        add(V2[:, :-1], U2[:, 1:], V2[:, :-1])
 
-    # Groundwater exchange from the routing store level at the start of the step.
-    r = np.multiply(R, q["_inv_x3"], out=tb)
-    f = np.sqrt(r, out=d)
-    np.multiply(r, r, out=en)
-    f *= en
-    f *= r
-    f *= x2  # Perrin et al. (2003), appendix: F = X2 (R/X3)^(7/2)
+    # Groundwater exchange from the routing store level at the start of the day.
+    f = sqrt(R, w2)
+    mul(f, R, f)
+    mul(f, R, f)
+    mul(f, R, f)
+    mul(f, cx, f)  # Perrin et al. (2003), appendix: F = X2 (R/X3)^(7/2)
 
-    # Routing store: R' = max(0, R + Q9 + F), Qr = R' (1 - (1 + (R'/X3)^4)^(-1/4)).
-    rq = np.add(R, q9, out=q9)
-    r1 = np.add(rq, f, out=c)
-    np.maximum(r1, 0.0, out=r1)  # Perrin et al. (2003), appendix: R = max(0, R + Q9 + F)
-    fr = np.subtract(r1, rq, out=rq)  # exchange actually applied to the routing store
-    np.multiply(r1, q["_inv_x3"], out=t)
-    t *= t
-    t *= t
-    t += 1.0
-    np.sqrt(t, out=t)
-    np.sqrt(t, out=t)
-    r_end = np.divide(r1, t, out=out[:, 1])
-    np.minimum(r_end, x3, out=r_end)  # R_end < X3 holds exactly; keep it so under rounding
-    qr = np.subtract(r1, r_end, out=fl["routed_runoff"])  # Perrin et al. (2003), appendix: Qr
+    # Routing store.
+    rq = add(R, q9, w0)
+    r1 = add(rq, f, w3)
+    vmax(r1, zero, out=r1)  # Perrin et al. (2003), appendix: R = max(0, R + Q9 + F)
+    fr = sub(r1, rq, w0)  # exchange actually applied to the routing store
+    t = mul(r1, ix3, w5)
+    mul(t, t, t)
+    mul(t, t, t)
+    add(t, one, t)
+    sqrt(t, t)
+    sqrt(t, t)
+    div(r1, t, R_out)
+    vmin(R_out, x3, out=R_out)  # R_end < X3 holds exactly; keep it so under rounding
+    qr = sub(r1, R_out, f_qr)  # Perrin et al. (2003), appendix: Qr = R (1 - (1 + (R/X3)^4)^(-1/4))
 
-    # Direct branch: Qd = max(0, Q1 + F).
-    qd = np.add(q1, f, out=fl["direct_runoff"])
-    np.maximum(qd, 0.0, out=qd)  # Perrin et al. (2003), appendix: Qd = max(0, Q1 + F)
-    fd = np.subtract(qd, q1, out=q1)  # exchange actually applied to the direct branch
-    np.add(fr, fd, out=fl["exchange"])
-    np.add(qr, qd, out=fl["runoff"])  # Perrin et al. (2003), appendix: Q = Qr + Qd
+    # Direct branch.
+    qd = add(q1, f, f_qd)
+    vmax(qd, zero, out=qd)  # Perrin et al. (2003), appendix: Qd = max(0, Q1 + F)
+    fd = sub(qd, q1, w1)  # exchange actually applied to the direct branch
+    add(fr, fd, f_ex)
+    add(qr, qd, f_q)  # Perrin et al. (2003), appendix: Q = Qr + Qd
 
 
 def step(
@@ -353,7 +363,8 @@ def step(
     state : (batch, n_state) float64, mm
         State at the start of the day (not modified). Any memory order; Fortran order is
         fastest. Unit-hydrograph slots beyond an element's time base must be zero (they are
-        whenever the state came from :func:`initial_state` or :func:`step`).
+        whenever the state came from :func:`initial_state` or :func:`step`), and so must
+        every slot beyond the time base of the largest X4 in the batch.
     forcing : dict with ``precipitation`` and ``pet``, each (batch,) float64, mm d-1, >= 0
     params : dict of (batch,) float64, raw (``x1..x4``) or from :func:`prepare` (faster)
 
@@ -369,20 +380,39 @@ def step(
         runoff`` holds to rounding.
     """
     q = prepare(params)
-    n = q["x1"].shape[0]
-    p = np.broadcast_to(np.asarray(forcing["precipitation"], dtype=np.float64), (n,))
-    e = np.broadcast_to(np.asarray(forcing["pet"], dtype=np.float64), (n,))
+    o1, o2 = q["_uh1"], q["_uh2"]
+    n = o1.shape[0]
+    m1, m2 = o1.shape[1] - 1, o2.shape[1] - 1  # unit-hydrograph slots in use
+    p = _as_batch(forcing["precipitation"], n)
+    e = _as_batch(forcing["pet"], n)
     state = np.asarray(state, dtype=np.float64)
-    out = np.zeros((n, N_STATE), order="F")
-    fluxes = {name: np.empty(n) for name in FLUXES[2:]}
-    w = np.empty((10, min(n, BLOCK)))
-    for i0 in range(0, n, BLOCK):
-        i1 = min(i0 + BLOCK, n)
-        b = slice(i0, i1)
-        qb = {k: v[b] for k, v in q.items()}
-        _block(state[b], p[b], e[b], qb, out[b], {k: v[b] for k, v in fluxes.items()},
-               w[:, : i1 - i0])
-    return out, {"precipitation": p, "pet": e, **fluxes}
+    out = np.empty((n, N_STATE), order="F")
+    if m1 < N_SLOT1:
+        out[:, _C1 + m1:_C2] = 0.0  # slots no element of this batch can fill
+    if m2 < N_SLOT2:
+        out[:, _C2 + m2:] = 0.0
+    fluxes = np.empty((len(FLUXES) - 2, n))
+    arrays = (
+        state[:, 0], state[:, 1], state[:, _C1:_C1 + m1], state[:, _C2:_C2 + m2], p, e,
+        *(q[k] for k in _PREPARED_ROWS), o1, o2,
+        out[:, 0], out[:, 1], out[:, _C1:_C1 + m1], out[:, _C2:_C2 + m2],
+        *fluxes, q["_zero"], q["_one"],
+    )
+    if n <= BLOCK:
+        _block(*arrays, np.empty((_N_WORK, n)))
+    else:
+        w = np.empty((_N_WORK, BLOCK))
+        for i0 in range(0, n, BLOCK):
+            i1 = min(i0 + BLOCK, n)
+            _block(*(a[i0:i1] for a in arrays), w[:, : i1 - i0])
+    return out, {"precipitation": p, "pet": e, **dict(zip(FLUXES[2:], fluxes, strict=True))}
+
+
+def _as_batch(x, n: int) -> np.ndarray:
+    """``x`` as a (n,) float64 array, without a copy when it already is one."""
+    if type(x) is np.ndarray and x.dtype == np.float64 and x.shape == (n,):
+        return x
+    return np.broadcast_to(np.asarray(x, dtype=np.float64), (n,))
 
 
 MODEL = register(
