@@ -103,3 +103,22 @@ def test_figure_names_round_trip():
     assert name == "reliability__up_stream_1__minor.png"
     assert plots.parse_figure_name(name) == ("reliability", "up_stream_1", "minor")
     assert plots.parse_figure_name("notes.png") is None
+
+
+def test_hydrograph_from_quantile_products(study, tmp_path, monkeypatch):
+    """Common practice, no published source: a run written as quantiles draws the same
+    bands (the written 5..95 % quantiles) as the members would."""
+    import xarray as xr
+
+    cfg, _ = study
+    drawn = []
+    monkeypatch.setattr(plots, "_save", lambda fig, path: drawn.append(fig) or path)
+    with open_product(paths.run_product(cfg, "openloop")) as ds:
+        ds = ds.load()
+    q = ds["discharge"].quantile([0.05, 0.25, 0.5, 0.75, 0.95], dim="member").transpose("basin", "time", "quantile")
+    runs = {"openloop": xr.Dataset({"discharge_quantile": q}), "assimilation": ds}
+    plots.plot_hydrograph(runs, None, "alder", tmp_path / "h.png")
+    top, bottom = drawn[0].axes
+    shown = top.lines[0].get_ydata()
+    np.testing.assert_allclose(shown, q.sel(basin="alder", quantile=0.5).values[-len(shown):])
+    np.testing.assert_allclose(shown, bottom.lines[0].get_ydata())  # median of the members

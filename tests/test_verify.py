@@ -455,3 +455,31 @@ def test_package_is_callable_like_the_entry_point(tmp_path):
     cfg, _ = make_study(tmp_path, hindcast=False, forecast=False)
     ds = assim.verify(cfg)
     assert ds.attrs["product_path"].endswith("skill.nc")
+
+
+def _to_quantiles(path, qs=(0.05, 0.25, 0.5, 0.75, 0.95)):
+    """Rewrite a member run product as outputs.ensemble = quantiles would write it."""
+    with xr.open_dataset(path) as ds:
+        ds = ds.load()
+    q = ds["discharge"].quantile(list(qs), dim="member").transpose("basin", "time", "quantile")
+    out = xr.Dataset({"discharge_quantile": q.drop_vars("member", errors="ignore")}, attrs=ds.attrs)
+    out.to_netcdf(path, encoding=_encode_time(out, "time"))
+    return out
+
+
+def test_verify_results_on_quantile_products(tmp_path):
+    """Common practice, no published source: a run written as quantiles is scored by its
+    median (deterministic metrics equal assim.verify.nse of the 0.5 quantile); ensemble
+    metrics are not scored (n = 0) and leave no CSV row."""
+    cfg, truth = make_study(tmp_path, hindcast=False, forecast=False)
+    q = _to_quantiles(tmp_path / "results" / "openloop.nc")
+    ds = v.verify_results(cfg)
+    usable = _usable(truth)
+    obs0 = usable[:, (truth["run_days"] - truth["all_days"][0]).astype(int)]
+    median = q["discharge_quantile"].sel(quantile=0.5).transpose("basin", "time").values
+    np.testing.assert_allclose(ds["skill"].sel(experiment="openloop", lead=0, metric="nse").values,
+                               v.nse(median, obs0), rtol=1e-6)
+    assert ds["n"].sel(experiment="openloop", metric="crps").values.sum() == 0
+    assert ds["n"].sel(experiment="assimilation", metric="crps").values.min() > 0
+    table = pd.read_csv(cfg["results"] + "/skill.csv")
+    assert not ((table.experiment == "openloop") & (table.metric == "crps")).any()
