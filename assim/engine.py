@@ -545,7 +545,8 @@ def advance(
                 arrays[n] = np.full((nb, n_out), np.nan)
             arrays["clipped_water"] = np.zeros((nb, n_out))
             arrays["obs_status"] = np.full((nb, n_out), OBS_MISSING, dtype=np.int8)
-        arrays["state_noise_water"] = np.zeros((nb, n_out))
+        if noise:  # per member here; the ensemble mean is taken after the chunks are joined
+            arrays["state_noise_water"] = np.zeros((nb, n_out, nm))
     n_used = np.zeros(nb, dtype=np.int64)
     n_gated = np.zeros(nb, dtype=np.int64)
     collapse = np.array(state.collapse_days, dtype=np.int64)
@@ -632,13 +633,11 @@ def advance(
             for n in s.write_states:
                 arrays[n][:, k_o] = x3v[..., model.state_index(n)]
             if added is not None:
-                arrays["state_noise_water"][:, k_o] = added.reshape(nb, nm).mean(axis=1)
+                arrays["state_noise_water"][:, k_o] = added.reshape(nb, nm)
         if t in issues:
             snaps.append((t, x.reshape(nb, nm, ns).copy(), {kk: v.copy() for kk, v in params.items()},
                           {n: e[k].copy() for n, e in log_err.items()}))
 
-    if s.quantiles is not None and n_out and len(members) == s.members:
-        arrays = quantile_arrays(arrays, s.quantiles)
     end = EnsembleState(
         day=int(days[-1]) if nt else state.day,
         states=x.reshape(nb, nm, ns).copy(),
@@ -988,7 +987,9 @@ def run(
                                place=f"basin {basin}, {np.datetime64('1970-01-01', 'D') + day}")
             grid = [flat_results[i * len(m_chunks):(i + 1) * len(m_chunks)] for i in range(len(b_chunks))]
             merged = _merge(grid, len(b_chunks), len(m_chunks), state)
-            if settings.quantiles is not None and len(m_chunks) > 1 and merged.arrays:
+            if "state_noise_water" in merged.arrays:
+                merged.arrays["state_noise_water"] = merged.arrays["state_noise_water"].mean(axis=2)
+            if settings.quantiles is not None and merged.arrays:
                 merged.arrays = quantile_arrays(merged.arrays, settings.quantiles)
             if sink is not None and merged.arrays:
                 sink.write_block(max(t, out0) - out0, merged.arrays)

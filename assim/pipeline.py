@@ -251,7 +251,8 @@ def run(cfg: Config, mode: str = "assimilate", restart_from=None, until=None) ->
         state_units={s.name: s.unit for s in model.states},
         parameter_names=settings.estimate if mode == "assimilate" else (),
         quantiles=settings.quantiles, float32=settings.float32,
-        time_chunk=min(settings.time_block_days, 365), attrs=_attrs(cfg, model, settings),
+        time_chunk=min(settings.time_block_days, 365), state_noise=bool(settings.state_noise),
+        attrs=_attrs(cfg, model, settings),
     )
     try:
         with writer:

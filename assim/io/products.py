@@ -132,6 +132,7 @@ class RunWriter(_StreamedFile):
     quantiles : write ``discharge_quantile`` at these probabilities instead of members
     float32 : float32 and zlib compression for ensemble values
     time_chunk : days per NetCDF chunk along time
+    state_noise : write ``state_noise_water`` (basin, time), mm (runs with additive state noise)
     attrs : extra global attributes
 
     ``write_block(start, arrays)`` writes arrays covering output days
@@ -154,9 +155,11 @@ class RunWriter(_StreamedFile):
         quantiles: Sequence[float] | None = None,
         float32: bool = True,
         time_chunk: int = 365,
+        state_noise: bool = False,
         attrs: Mapping[str, str] | None = None,
     ):
         super().__init__(path, float32=float32)
+        self.state_noise = bool(state_noise)
         self.basins = list(basins)
         self.days = np.asarray(days, dtype=np.int64)
         self.members = int(members)
@@ -241,9 +244,10 @@ class RunWriter(_StreamedFile):
             self._float_var("clipped_water", d2, diag_chunks,
                             {"units": "mm", "long_name": "water added (positive) or removed by clipping states "
                              "to their bounds after the update, ensemble mean"}, ensemble=False)
-        self._float_var("state_noise_water", ("basin", "time"), diag_chunks,
-                        {"units": "mm", "long_name": "water added by the additive state noise, ensemble mean"},
-                        ensemble=False)
+        if self.state_noise:
+            self._float_var("state_noise_water", ("basin", "time"), diag_chunks,
+                            {"units": "mm", "long_name": "water added by the additive state noise, ensemble mean"},
+                            ensemble=False)
 
     def write_block(self, start: int, arrays: Mapping[str, np.ndarray]) -> None:
         """Write output days ``start .. start + n - 1`` (see the class docstring)."""

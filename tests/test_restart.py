@@ -1,0 +1,140 @@
+"""Tests of restart.nc: exact continuation and refusal of restarts that do not fit."""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from assim import engine, models
+from assim import perturb as pt
+from assim.errors import RestartError
+from assim.io.restart import Restart, check_restart, read_restart, write_restart
+
+GR4J = models.get("gr4j")
+IDENTITY = {"model": "gr4j", "members": "10", "seed": "4", "digest_perturbation": "p1",
+            "digest_filter": "f1", "digest_inputs": "i1"}
+
+
+class Collect:
+    def __init__(self):
+        self.blocks = {}
+
+    def write_block(self, start, arrays):
+        for k, v in arrays.items():
+            self.blocks.setdefault(k, []).append(np.array(v))
+
+    def result(self):
+        return {k: np.concatenate(v, axis=1) for k, v in self.blocks.items()}
+
+
+def _inputs(nb=3, nt=80):
+    rng = np.random.default_rng(1)
+    p = np.where(rng.random((nb, nt)) < 0.4, rng.gamma(0.8, 10.0, (nb, nt)), 0.0)
+    ids = tuple(f"creek-{i}" for i in range(nb))
+    obs = np.where(rng.random((nb, nt)) < 0.8, rng.gamma(4.0, 1.0, (nb, nt)), np.nan)
+    params = {"x1": np.linspace(250, 450, nb), "x2": np.zeros(nb), "x3": np.full(nb, 90.0), "x4": np.full(nb, 1.7)}
+    return engine.Inputs(ids, pt.basin_keys(ids), np.full(nb, 120.0), np.arange(nt) + 17000, p,
+                         np.full((nb, nt), 2.5), obs, np.zeros((nb, nt), bool), params)
+
+
+SETTINGS = engine.Settings(mode="assimilate", members=10, seed=4, spinup_days=12, time_block_days=25,
+                           parameter_sd={"x1": 0.1, "x3": 0.1}, state_noise={"routing_store": 0.3},
+                           update_states=("production_store", "routing_store"), estimate=("x3",),
+                           write_states=("production_store", "routing_store"), scheduler="synchronous")
+
+
+def _to_restart(state, inputs):
+    return Restart(inputs.basin_ids, state.day, GR4J.state_names, state.states, state.parameters, state.ar1,
+                   state.collapse_days, IDENTITY)
+
+
+def _to_state(r):
+    return engine.EnsembleState(r.valid_day, r.states, r.parameters, r.ar1, r.collapse_days)
+
+
+@pytest.mark.parametrize("split", [5, 12, 30, 50, 74])
+def test_split_run_equals_the_uninterrupted_run(tmp_path, split):
+    """A run stopped after day index ``split``, written to restart.nc, read back and
+    continued, gives outputs and end state equal bit for bit to one uninterrupted run (split
+    inside the spin-up, at its end, inside a time block and at a block boundary of 25 days
+    plus 12 spin-up days)."""
+    inputs = _inputs()
+    whole = Collect()
+    ref = engine.run(GR4J, inputs, SETTINGS, whole)
+    first, second = Collect(), Collect()
+    part = engine.run(GR4J, inputs, SETTINGS, first, until_day=int(inputs.days[split]))
+    path = write_restart(tmp_path / "restart.nc", _to_restart(part.state, inputs))
+    back = read_restart(path)
+    assert back.valid_day == inputs.days[split]
+    rest = engine.run(GR4J, inputs, SETTINGS, second, state=_to_state(back))
+    a, b, c = whole.result(), first.result(), second.result()
+    for k in a:
+        joined = np.concatenate([x for x in (b.get(k), c.get(k)) if x is not None], axis=1)
+        np.testing.assert_array_equal(a[k], joined, err_msg=k)
+    np.testing.assert_array_equal(ref.state.states, rest.state.states)
+    np.testing.assert_array_equal(ref.state.parameters["x3"], rest.state.parameters["x3"])
+
+
+def test_restart_file_holds_float64_states_parameters_and_ar1(tmp_path):
+    inputs = _inputs()
+    st = engine.initial_ensemble(GR4J, inputs, SETTINGS)
+    write_restart(tmp_path / "r.nc", _to_restart(st, inputs))
+    with xr.open_dataset(tmp_path / "r.nc") as ds:
+        assert ds["states"].dims == ("basin", "member", "state")
+        assert ds["states"].dtype == np.float64
+        assert {"parameter_x1", "parameter_x3", "ar1_precipitation", "ar1_pet"} <= set(ds.data_vars)
+        assert ds.attrs["model"] == "gr4j" and "caution" in ds.attrs
+        assert list(ds["basin"].values) == list(inputs.basin_ids)
+    back = read_restart(tmp_path / "r.nc")
+    np.testing.assert_array_equal(back.states, st.states)
+    np.testing.assert_array_equal(back.ar1["precipitation"], st.ar1["precipitation"])
+
+
+@pytest.mark.parametrize("key, value", [("model", "linear_reservoir"), ("members", "12"), ("seed", "5")])
+def test_mismatched_restart_is_refused(tmp_path, key, value):
+    inputs = _inputs()
+    st = engine.initial_ensemble(GR4J, inputs, SETTINGS)
+    write_restart(tmp_path / "r.nc", _to_restart(st, inputs))
+    r = read_restart(tmp_path / "r.nc")
+    with pytest.raises(RestartError) as info:
+        check_restart(r, identity={**IDENTITY, key: value}, basins=inputs.basin_ids, state_names=GR4J.state_names)
+    text = str(info.value)
+    assert str(tmp_path / "r.nc") in text and f"'{key}'" in text and value in text
+
+
+def test_restart_with_other_basins_is_refused(tmp_path):
+    inputs = _inputs()
+    st = engine.initial_ensemble(GR4J, inputs, SETTINGS)
+    write_restart(tmp_path / "r.nc", _to_restart(st, inputs))
+    r = read_restart(tmp_path / "r.nc")
+    with pytest.raises(RestartError, match="basin.*creek-9"):
+        check_restart(r, identity=IDENTITY, basins=(*inputs.basin_ids[:2], "creek-9"), state_names=GR4J.state_names)
+    with pytest.raises(RestartError, match="different order"):
+        check_restart(r, identity=IDENTITY, basins=inputs.basin_ids[::-1], state_names=GR4J.state_names)
+    # other filter settings: accepted, with a warning
+    warns = check_restart(r, identity={**IDENTITY, "digest_filter": "f2"}, basins=inputs.basin_ids,
+                          state_names=GR4J.state_names)
+    assert len(warns) == 1 and "filter" in warns[0]
+
+
+def test_missing_restart_is_a_restart_error(tmp_path):
+    with pytest.raises(RestartError, match="not found"):
+        read_restart(tmp_path / "nope.nc")
+
+
+def test_restart_with_another_start_day_of_the_inputs():
+    """A restart continues on inputs that start later (an operational forecast reads only
+    the days since the restart): the numbers are the same."""
+    inputs = _inputs()
+    whole = Collect()
+    engine.run(GR4J, inputs, dataclasses.replace(SETTINGS, spinup_days=0), whole)
+    part = engine.run(GR4J, inputs, dataclasses.replace(SETTINGS, spinup_days=0), None, until_day=int(inputs.days[39]))
+    late = dataclasses.replace(
+        inputs, days=inputs.days[39:], precipitation=inputs.precipitation[:, 39:], pet=inputs.pet[:, 39:],
+        observed=inputs.observed[:, 39:], rejected=inputs.rejected[:, 39:])
+    rest = Collect()
+    engine.run(GR4J, late, dataclasses.replace(SETTINGS, spinup_days=0), rest, state=part.state)
+    np.testing.assert_array_equal(whole.result()["discharge"][:, 40:], rest.result()["discharge"])
