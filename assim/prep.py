@@ -363,12 +363,15 @@ def prepare(cfg: Mapping) -> dict[str, xr.Dataset]:
 
 
 def _longest_run(mask: np.ndarray) -> np.ndarray:
-    """Longest run of True along the last axis, per row."""
-    out = np.zeros(mask.shape[0], dtype=np.int64)
-    run = np.zeros(mask.shape[0], dtype=np.int64)
-    for j in range(mask.shape[1]):  # a loop over days of a summary, not a hot path
-        run = np.where(mask[:, j], run + 1, 0)
-        out = np.maximum(out, run)
+    """Longest run of True along the last axis of a (row, n) array, per row."""
+    rows, n = mask.shape
+    padded = np.zeros((rows, n + 2), dtype=np.int8)
+    padded[:, 1:-1] = mask
+    edges = np.diff(padded, axis=1)
+    r_start, c_start = np.nonzero(edges == 1)
+    _, c_end = np.nonzero(edges == -1)
+    out = np.zeros(rows, dtype=np.int64)
+    np.maximum.at(out, r_start, c_end - c_start)
     return out
 
 

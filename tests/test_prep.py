@@ -271,6 +271,7 @@ def test_check_summary(good):
     cfg, _ = good
     text = prep.check(cfg)
     for part in ("alpha", "beta", "2015-03-01 to 2015-03-10", "spike 1", "flat_line 0",
+                 "0 missing (longest gap 0 d)", "1 missing (longest gap 1 d)",
                  "insufficient coverage (no discharge): 1", "prepared folder", "matches the raw folder"):
         assert part in text, part
 
@@ -466,6 +467,9 @@ def test_sample_basin_prepares_with_expected_faults(tmp_path):
     tam = obs.sel(basin="tamblewyn")
     gap = tam["discharge"].sel(time=slice("2016-10-04", "2016-11-12")).values
     assert np.isnan(gap).all()
+    summary = prep.check(cfg)
+    assert "tamblewyn: Tamblewyn River at Dorrick Ferry, 915 km2, discharge gauge" in summary
+    assert "missing (longest gap 42 d)" in summary and "not written yet" in summary
     truth = np.genfromtxt(REPO / "sample_basin" / "truth.csv", delimiter=",", skip_header=1,
                           usecols=2).reshape(3, -1)
     ratio = obs["discharge"].values / truth

@@ -367,9 +367,9 @@ def _numeric(df: pd.DataFrame, col: str, path: Path, lines: np.ndarray, time_col
 
 
 def _basin_codes(df, path, basin_ids, *, allow_other=frozenset()) -> np.ndarray:
-    index = {b: k for k, b in enumerate(basin_ids)}
+    """Index of each row's basin in ``basin_ids`` (-1 for known but unselected basins)."""
     names = df["basin"].to_numpy(dtype=object)
-    codes = np.array([index.get(n, -1) for n in names], dtype=np.int64)
+    codes = pd.Index(list(basin_ids)).get_indexer(names).astype(np.int64)
     unknown = (codes < 0) & ~np.isin(names, list(allow_other))
     if unknown.any():
         i = _first(unknown)
@@ -438,19 +438,26 @@ def read_weather(path: str | Path, basin_ids: Sequence[str], *, need_pet: bool =
     lines = np.arange(len(df)) + 2
     keep = codes >= 0
     df, codes, dates, lines = df[keep].reset_index(drop=True), codes[keep], dates[keep], lines[keep]
-    for k, b in enumerate(basin_ids):
-        if not (codes == k).any():
-            raise InputError(f"no weather rows for basin '{b}' of {BASINS_FILE}", file=path,
-                             variable="basin", place=f"basin '{b}'")
+    absent = np.bincount(codes, minlength=len(basin_ids)) == 0
+    if absent.any():
+        b = basin_ids[_first(absent)]
+        raise InputError(f"no weather rows for basin '{b}' of {BASINS_FILE}", file=path,
+                         variable="basin", place=f"basin '{b}'")
     _check_order(codes, dates, np.timedelta64(1, "D"), path, "date", lines, basin_ids, regular=True)
-    first = {k: dates[codes == k].min() for k in range(len(basin_ids))}
-    last = {k: dates[codes == k].max() for k in range(len(basin_ids))}
-    for k in range(1, len(basin_ids)):
-        if first[k] != first[0] or last[k] != last[0]:
-            raise InputError(
-                f"basin '{basin_ids[k]}' covers {first[k]} to {last[k]} but basin "
-                f"'{basin_ids[0]}' covers {first[0]} to {last[0]}; all basins need the same days",
-                file=path, variable="date", place=f"basin '{basin_ids[k]}'")
+    day = (dates - dates.min()).astype(np.int64)
+    first_i = np.full(len(basin_ids), np.iinfo(np.int64).max)
+    last_i = np.full(len(basin_ids), -1)
+    np.minimum.at(first_i, codes, day)
+    np.maximum.at(last_i, codes, day)
+    first = dates.min() + first_i.astype("timedelta64[D]")
+    last = dates.min() + last_i.astype("timedelta64[D]")
+    differ = (first != first[0]) | (last != last[0])
+    if differ.any():
+        k = _first(differ)
+        raise InputError(
+            f"basin '{basin_ids[k]}' covers {first[k]} to {last[k]} but basin "
+            f"'{basin_ids[0]}' covers {first[0]} to {last[0]}; all basins need the same days",
+            file=path, variable="date", place=f"basin '{basin_ids[k]}'")
 
     prec = _numeric(df, "precipitation_mm", path, lines, "date")
     tmin = _numeric(df, "tmin_c", path, lines, "date")
@@ -469,7 +476,7 @@ def read_weather(path: str | Path, basin_ids: Sequence[str], *, need_pet: bool =
             i = _first(mask)
             raise InputError(f"{what}: {df[col].iat[i]}", file=path, variable=col,
                              place=f"line {lines[i]}, basin '{basin_ids[codes[i]]}', {dates[i]}")
-    n_time = int((last[0] - first[0]).astype(int)) + 1
+    n_time = int(last_i[0] - first_i[0]) + 1
     t_index = (dates - first[0]).astype(np.int64)
 
     def grid(v):
