@@ -97,7 +97,8 @@ def _dispatch(args: argparse.Namespace) -> str:
         return f"hindcast written: {ds.attrs.get('product_path', cfg['results'])}"
     if cmd == "forecast":
         ds = pipeline.forecast(cfg, args.issue_date)
-        return f"forecast written: {ds.attrs.get('product_path', cfg['results'])}"
+        return (f"forecast written: {ds.attrs.get('product_path', cfg['results'])}\n"
+                f"analysis {ds.attrs.get('analysis', 'unknown')}")
     if cmd == "verify":
         ds = pipeline.verify(cfg)
         return f"skill written: {ds.attrs.get('product_path', cfg['results'])}"

@@ -1,0 +1,266 @@
+"""Runs, restarts, hindcasts and operational forecasts through files (assim.pipeline, CLI)."""
+
+from __future__ import annotations
+
+import os
+import shutil
+import subprocess
+import sys
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+import yaml
+
+from assim import pipeline
+from assim.cli import main
+from assim.config import load_config
+from assim.errors import LockError, RestartError
+from assim.io import prepared as prep_io
+
+IDS = ["alder-creek", "birch-river"]
+START, END = "2001-01-01", "2003-12-31"
+
+
+@pytest.fixture(scope="module")
+def prepared(tmp_path_factory):
+    """A prepared layer of two invented basins, three years, built from GR4J in the test."""
+    from assim import models
+
+    folder = tmp_path_factory.mktemp("prepared")
+    dates = pd.date_range(START, END, freq="D")
+    nt = len(dates)
+    rng = np.random.default_rng(8)
+    p = np.where(rng.random((2, nt)) < 0.35, rng.gamma(0.8, 9.0, (2, nt)), 0.0)
+    t = np.arange(nt)
+    e = np.clip(2.5 + 2.0 * np.sin(2 * np.pi * (t - 100) / 365.25), 0.3, None)[None].repeat(2, 0)
+    params = {"x1": np.array([300.0, 450.0]), "x2": np.array([0.0, -0.5]), "x3": np.array([80.0, 110.0]),
+              "x4": np.array([1.5, 2.2])}
+    area = np.array([180.0, 420.0])
+    m = models.get("gr4j")
+    x = m.initial_state(params)
+    q = np.empty((2, nt))
+    for i in range(nt):
+        x, f = m.step(x, {"precipitation": p[:, i], "pet": e[:, i]}, params)
+        q[:, i] = f["runoff"] * area / 86.4
+    obs = q * (1 + 0.1 * rng.standard_normal((2, nt)))
+    obs[:, rng.random(nt) < 0.1] = np.nan
+    flags = np.where(np.isnan(obs), prep_io.QC_FLAGS["insufficient_coverage"], 0)
+    obs[1, 500] = np.nan
+    flags[1, 500] = prep_io.QC_FLAGS["spike"] | prep_io.QC_FLAGS["insufficient_coverage"]
+    lat, lon = np.array([45.0, 46.0]), np.array([5.0, 6.0])
+    prep_io.write_forcing(prep_io.forcing_dataset(IDS, dates.values, p, e, lat, lon), folder / "forcing.nc")
+    prep_io.write_observations(
+        prep_io.observations_dataset(IDS, dates.values, obs, flags, np.where(np.isnan(obs), 0.0, 1.0),
+                                     np.full((2, nt), 24), np.zeros((2, nt)), lat, lon), folder / "observations.nc")
+    prep_io.write_basins(
+        prep_io.basins_dataset(IDS, ["Alder Creek", "Birch River"], area, lat, lon, "gr4j", params,
+                               np.array([[20.0, 40.0], [30.0, np.nan]]), ["minor", "major"],
+                               ["discharge", "discharge"]), folder / "basins.nc")
+    return folder
+
+
+def _cfg(prepared, results, **over):
+    sections = dict(
+        data={"prepared": str(prepared)},
+        results=str(results),
+        period={"start": "2002-01-01", "end": "2003-06-30", "spinup_days": 60},
+        ensemble={"members": 8, "scheduler": "synchronous", "time_block_days": 50, "progress": False},
+        hindcast={"every_days": 10, "leads": 5},
+        forecast={"leads": 5},
+    )
+    for k, v in over.items():
+        sections[k] = {**sections.get(k, {}), **v} if isinstance(v, dict) else v
+    return load_config(None, **sections)
+
+
+@pytest.fixture(scope="module")
+def runs(prepared, tmp_path_factory):
+    results = tmp_path_factory.mktemp("results")
+    cfg = _cfg(prepared, results)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        ol = pipeline.run(cfg, mode="openloop").load()
+        da = pipeline.run(cfg, mode="assimilate").load()
+        hc = pipeline.hindcast(cfg).load()
+    return cfg, ol, da, hc
+
+
+def test_run_products_follow_the_contract(runs):
+    """Layout of openloop.nc and analysis.nc (products contract): dims, CF time, caution,
+    diagnostics and QC status flags."""
+    cfg, ol, da, _ = runs
+    for ds in (ol, da):
+        assert ds["discharge"].dims == ("basin", "time", "member")
+        assert ds["discharge"].attrs["standard_name"] == "water_volume_transport_in_river_channel"
+        assert ds["discharge"].dtype == np.float32
+        assert ds.attrs["Conventions"] == "CF-1.8" and "official flood warnings" in ds.attrs["caution"]
+        assert list(ds["basin"].values) == IDS
+        assert ds["basin"].attrs["cf_role"] == "timeseries_id"
+        assert pd.Timestamp(ds["time"].values[0]) == pd.Timestamp("2002-03-02")  # 60 spin-up days
+        assert pd.Timestamp(ds["time"].values[-1]) == pd.Timestamp("2003-06-30")
+        assert list(ds["member"].values) == list(range(8))
+        assert {"production_store", "routing_store"} <= set(ds.data_vars)
+        assert "uh1_1" not in ds
+    assert "discharge_analysis" in da and "discharge_analysis" not in ol
+    for v in ("observed_discharge", "innovation", "innovation_variance", "obs_status", "spread_before",
+              "spread_after", "clipped_water"):
+        assert da[v].dims == ("basin", "time"), v
+    status = da["obs_status"].values
+    obs = da["observed_discharge"].values
+    assert da["obs_status"].attrs["flag_meanings"] == "used missing gated rejected"
+    assert np.all(np.isnan(obs[status == 1]))
+    assert np.all(np.isfinite(obs[status == 0]))
+    day = int(np.flatnonzero(da["time"].values == np.datetime64("2002-05-16"))[0])  # 2001-01-01 + 500 d
+    assert status[1, day] == 3
+    with xr.open_dataset(cfg.results / "openloop.nc", decode_times=False) as raw:
+        assert raw["time"].attrs["units"].startswith("days since 1970-01-01")
+        assert raw["time"].attrs["calendar"] == "standard"
+
+
+def test_assimilation_run_is_closer_to_the_readings(runs):
+    """Common practice, no published source: the analysis ensemble mean is closer to the
+    readings it used than the open loop."""
+    _, ol, da, _ = runs
+    obs = da["observed_discharge"].values
+    ok = np.isfinite(obs)
+    err_ol = np.abs(ol["discharge"].values.mean(-1) - obs)[ok].mean()
+    err_an = np.abs(da["discharge_analysis"].values.mean(-1) - obs)[ok].mean()
+    assert err_an < 0.5 * err_ol
+
+
+def test_hindcast_layout_and_open_loop_consistency(runs):
+    """hindcast.nc layout (products contract), and the open-loop experiment with observed
+    forcing equals the open-loop run on the valid days."""
+    _, ol, _, hc = runs
+    assert hc["discharge"].dims == ("experiment", "basin", "issue_time", "lead", "member")
+    assert list(hc["experiment"].values) == ["openloop", "assimilation"]
+    assert list(hc["lead"].values) == [1, 2, 3, 4, 5]
+    assert pd.Timestamp(hc["issue_time"].values[0]) == pd.Timestamp("2002-03-02")
+    assert "caution" in hc.attrs
+    issue = hc["issue_time"].values[3]
+    for lead in (1, 5):
+        valid = issue + np.timedelta64(lead, "D")
+        np.testing.assert_array_equal(hc["discharge"].sel(experiment="openloop", lead=lead, issue_time=issue).values,
+                                      ol["discharge"].sel(time=valid).values)
+    assert not np.array_equal(hc["discharge"].sel(experiment="assimilation").values,
+                              hc["discharge"].sel(experiment="openloop").values)
+
+
+@pytest.mark.parametrize("until", ["2002-02-15", "2002-04-10", "2002-05-01"])
+def test_restarted_run_equals_the_whole_run(prepared, tmp_path, runs, until):
+    """``run --until D`` then ``run --restart-from restart.nc`` gives, joined, the files of the
+    uninterrupted run (split in the spin-up, inside and at the edge of a time block)."""
+    whole = runs[2]
+    cfg = _cfg(prepared, tmp_path)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        first = pipeline.run(cfg, mode="assimilate", until=until).load()
+        shutil.copy(tmp_path / "restart.nc", tmp_path / "restart-first.nc")
+        second = pipeline.run(cfg, mode="assimilate", restart_from=tmp_path / "restart-first.nc").load()
+    joined = xr.concat([first, second], dim="time") if first.sizes["time"] else second
+    for v in ("discharge", "discharge_analysis", "routing_store", "innovation", "obs_status"):
+        np.testing.assert_array_equal(joined[v].values, whole[v].values, err_msg=v)
+
+
+def test_mismatched_restart_is_refused_by_run_and_cli(prepared, tmp_path, runs, capsys):
+    cfg = runs[0]
+    other = _cfg(prepared, tmp_path, ensemble={"members": 6})
+    with pytest.raises(RestartError, match="members"):
+        pipeline.run(other, mode="assimilate", restart_from=cfg.results / "restart.nc")
+    conf = tmp_path / "config.yaml"
+    conf.write_text(yaml.safe_dump(dict(other)))
+    code = main(["run", "--config", str(conf), "--restart-from", str(cfg.results / "restart.nc")])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and len(err.splitlines()) == 1 and "restart.nc" in err and "members" in err
+
+
+# ---------------------------------------------------------------- operational forecasts
+
+
+@pytest.fixture()
+def operational(prepared, tmp_path):
+    cfg = _cfg(prepared, tmp_path, period={"end": "2003-06-20"})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        pipeline.run(cfg, mode="assimilate")
+    return cfg
+
+
+def test_forecast_products_and_rerun(operational):
+    """forecast-D.nc layout (products contract); exceedance probability is the fraction of
+    members above each threshold; the forecast restart feeds the next day's forecast; a
+    rerun of a finished date gives the same numbers."""
+    cfg = operational
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        ds = pipeline.forecast(cfg, "2003-06-25").load()
+    assert ds.attrs["product_path"].endswith("forecast-2003-06-25.nc")
+    assert (cfg.results / "forecasts" / "restart-2003-06-25.nc").exists()
+    assert ds.attrs["analysis"].startswith("performed")
+    assert ds.attrs["issue_date"] == "2003-06-25" and "caution" in ds.attrs
+    assert ds["discharge"].dims == ("basin", "lead", "member")
+    assert ds["exceedance_probability"].dims == ("basin", "lead", "threshold")
+    assert list(ds["threshold"].values) == ["minor", "major"]
+    assert pd.Timestamp(ds["valid_time"].values[0]) == pd.Timestamp("2003-06-26")
+    q = ds["discharge"].values
+    thr = ds["thresholds"].values
+    np.testing.assert_allclose(ds["exceedance_probability"].values[..., 0], (q > thr[:, None, None, 0]).mean(-1))
+    assert np.isnan(ds["exceedance_probability"].values[1, :, 1]).all()
+    np.testing.assert_allclose(ds["discharge_quantile"].sel(quantile=0.5).values, np.median(q, axis=-1), rtol=1e-6)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        again = pipeline.forecast(cfg, "2003-06-25").load()
+        nxt = pipeline.forecast(cfg, "2003-06-26").load()
+    np.testing.assert_array_equal(again["discharge"].values, q)
+    assert "restart-2003-06-25.nc" in nxt.attrs["restart"]
+
+
+def test_forecast_without_gauge_readings_says_so(prepared, tmp_path):
+    """A day without readings: the forecast still runs, without an analysis, and says so."""
+    cfg = _cfg(prepared, tmp_path, period={"end": "2003-06-20"})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        pipeline.run(cfg, mode="assimilate")
+        ds = pipeline.forecast(cfg, "2003-06-20")
+    assert ds.attrs["analysis"].startswith("not performed")
+    # readings blanked after the restart: the CLI prints it too
+    folder = tmp_path / "prep2"
+    shutil.copytree(prepared, folder)
+    obs = xr.load_dataset(folder / "observations.nc")
+    t = obs["time"].values
+    obs["discharge"] = obs["discharge"].where(t <= np.datetime64("2003-06-20"))
+    obs.to_netcdf(folder / "observations.nc")
+    conf = tmp_path / "config.yaml"
+    conf.write_text(yaml.safe_dump({**dict(cfg), "data": {**cfg["data"], "prepared": str(folder)}}))
+    out = subprocess.run([sys.executable, "-m", "assim", "forecast", "--config", str(conf), "--issue-date",
+                          "2003-06-23"], capture_output=True, text=True)
+    assert out.returncode == 0, out.stderr
+    assert "analysis not performed: no gauge reading since the last restart" in out.stdout
+    assert "CAUTION" in out.stdout
+
+
+def test_forecast_lock_held_and_stale(operational):
+    """A lock held by a live process is refused; a stale lock (dead PID) is reported and
+    replaced."""
+    cfg = operational
+    lock = cfg.results / "forecasts" / ".forecast-2003-06-22.lock"
+    lock.parent.mkdir(parents=True, exist_ok=True)
+    import socket
+
+    sleeper = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(30)"])
+    try:
+        lock.write_text(f"{sleeper.pid} {socket.gethostname()}\n")
+        with pytest.raises(LockError, match=str(sleeper.pid)):
+            pipeline.forecast(cfg, "2003-06-22")
+    finally:
+        sleeper.kill()
+        sleeper.wait()
+    assert lock.exists()
+    with pytest.warns(RuntimeWarning, match="stale lock"):
+        ds = pipeline.forecast(cfg, "2003-06-22")
+    assert ds.attrs["analysis"].startswith("performed")
+    assert not lock.exists()
+    assert os.path.exists(ds.attrs["product_path"])
