@@ -68,25 +68,25 @@ def test_general_path_equals_one_observation_path():
     eigen/solve path and the serial adjustment give the same weights and states to 1e-12
     (Hunt et al. 2007, eqs. 20 and 24; Anderson 2001)."""
     rng = np.random.default_rng(7)
-    B, N = 5, 9
-    Ypw = rng.normal(size=(B, N, 1))
-    Ypw -= Ypw.mean(axis=1, keepdims=True)
-    A = 1.3**2 * np.einsum("bim,bik->bmk", Ypw, Ypw) / (N - 1)
+    B, N, g = 5, 9, 1.3
+    Ypw = rng.normal(size=(B, 1, N))
+    Ypw -= Ypw.mean(axis=2, keepdims=True)
+    A = g**2 * np.einsum("bmi,bki->bmk", Ypw, Ypw) / (N - 1)
     dw = rng.normal(size=(B, 1))
-    z = rng.normal(size=(B, N, 1))
+    z = rng.normal(size=(B, 1, N))
     for method in ("enkf", "etkf"):
-        general = ens._weights(method, dw, Ypw, A, z, 1.3)[:, :, 0]
-        one = ens._weights_one(method, dw, Ypw, A, z, 1.3)
-        np.testing.assert_allclose(general, one, rtol=1e-12, atol=1e-14)
+        general, P = ens._weights(method, dw, Ypw, A, z, g)
+        one, p = ens._weights_one(method, dw[:, 0], Ypw[:, 0], A[:, 0, 0], z[:, 0], g)
+        np.testing.assert_allclose(general[:, 0], one, rtol=1e-12, atol=1e-14)
+        if method == "etkf":
+            np.testing.assert_allclose(P[:, 0, 0], p, rtol=1e-12)
 
     X, H, Y, y, r = _linear_problem(rng, 5, 12, 3, 1)
-    fast = ensemble_update(X, Y, y, r, method="eakf", inflation=Inflation(multiplicative=1.2))
+    fast = ensemble_update(X, Y, y, r, method="eakf", inflation=Inflation(multiplicative=g))
     s = 1.0 / np.sqrt(r)
     ybar = Y.mean(axis=1)
-    serial = ens._eakf_serial(
-        X, X.mean(axis=1), (Y - ybar[:, None, :]) * s[:, None, :], ybar * s, y * s,
-        np.ones((5, 1), bool), 1.2,
-    )
+    Ypw_t = np.swapaxes((Y - ybar[:, None, :]) * s[:, None, :], 1, 2)
+    serial = ens._eakf_serial(X, X.mean(axis=1), Ypw_t, ybar * s, y * s, np.ones((5, 1), bool), g)
     np.testing.assert_allclose(fast.states, serial, rtol=1e-12, atol=1e-12)
 
 

@@ -155,15 +155,55 @@ def _check(states, predicted, observed, obs_variance, method, update_mask, obs_n
     return X, Y, y, r, mask, noise
 
 
-def _mean(a: np.ndarray) -> np.ndarray:
-    """Member mean of a (B, N, k) array, (B, k)."""
-    return np.full(a.shape[1], 1.0 / a.shape[1]) @ a
+_vecmat = getattr(np, "vecmat", None)  # numpy >= 2.2
 
 
-def _spread(a: np.ndarray, mean: np.ndarray) -> np.ndarray:
-    """Ensemble standard deviation (ddof = 1) of a (B, N, k) array given its mean, (B, k)."""
-    dev = a - mean[:, None, :]
-    return np.sqrt(np.einsum("bik,bik->bk", dev, dev) / (a.shape[1] - 1))
+def _vm(v: np.ndarray, a: np.ndarray) -> np.ndarray:
+    """``v^T a`` per basin for v (B, N) and a (B, N, n): (B, n), one pass over ``a``."""
+    if _vecmat is not None:
+        return _vecmat(v, a)
+    return np.einsum("bi,bin->bn", v, a)
+
+
+def _sum(a: np.ndarray) -> np.ndarray:
+    """Member sum of a (B, N, k) array, (B, k)."""
+    return np.matmul(np.ones(a.shape[1]), a)
+
+
+def _cross(a: np.ndarray, vt: np.ndarray) -> np.ndarray:
+    """``v^T a`` per basin for a (B, N, n) and v given transposed, vt (B, k, N): (B, k, n).
+
+    Broadcast vector-matrix products read each basin's block of ``a`` once for all k
+    vectors (it stays in cache), far faster than a batched matmul of small matrices."""
+    if _vecmat is not None:
+        return _vecmat(vt, a[:, None])
+    return np.einsum("bki,bin->bkn", vt, a)
+
+
+def _exact_variance(a: np.ndarray) -> np.ndarray:
+    """Two-pass ensemble variance (ddof = 1) of a (B, N, k) array, (B, k)."""
+    dev = a - (_sum(a) / a.shape[1])[:, None, :]
+    return np.einsum("bik,bik->bk", dev, dev) / (a.shape[1] - 1)
+
+
+# Variances from member sums of squares lose about (mean / sd)^2 N eps of their relative
+# precision; where the mean exceeds sqrt(_CANCELLATION_RATIO) standard deviations they are
+# recomputed from deviations (two passes) for the basins concerned.
+_CANCELLATION_RATIO = 1e6
+
+
+def _variance(a: np.ndarray, total: np.ndarray, squares: np.ndarray) -> np.ndarray:
+    """Ensemble variance (ddof = 1) of a (B, N, k) array from its member sums and sums of
+    squares, recomputed from deviations where cancellation would cost precision."""
+    N = a.shape[1]
+    mean = total / N
+    var = np.maximum(squares - total * mean, 0.0) / (N - 1)
+    with np.errstate(invalid="ignore"):
+        redo = ~(mean * mean <= _CANCELLATION_RATIO * var)
+    redo = redo.any(axis=-1) & np.isfinite(squares).all(axis=-1)
+    if redo.any():
+        var[redo] = _exact_variance(a[redo])
+    return var
 
 
 def _sqrt_weight(a: np.ndarray) -> np.ndarray:
@@ -172,52 +212,69 @@ def _sqrt_weight(a: np.ndarray) -> np.ndarray:
     return -1.0 / (root * (1.0 + root))
 
 
-def _weights_one(method, dw, Ypw, A, z, gamma):
-    """Member weights for one observation, (B, N); the general formulas with n_obs = 1."""
-    a = A[:, 0, 0]
-    d = dw[:, 0]
-    yp = Ypw[:, :, 0]
+def _weights_one(method, dw, yp, a, z, gamma):
+    """Member weights for one observation: the general formulas with n_obs = 1.
+
+    dw (B,), yp (B, N), a (B,), z (B, N) or None. Returns W (B, N) and, for the
+    deterministic methods, the factor p (B,) with W - mean(W) = p yp (None for enkf)."""
     if method == "enkf":
-        return (gamma**2 / (1.0 + a))[:, None] * (d[:, None] + z[:, :, 0] - gamma * yp)
-    mean_w = gamma**2 * d / (1.0 + a)  # Hunt et al. (2007), eq. 20
-    return mean_w[:, None] + (gamma**3 * _sqrt_weight(a))[:, None] * yp  # Hunt et al. (2007), eq. 24
+        return (gamma**2 / (1.0 + a))[:, None] * (dw[:, None] + z - gamma * yp), None
+    mean_w = gamma**2 * dw / (1.0 + a)  # Hunt et al. (2007), eq. 20
+    p = gamma**3 * _sqrt_weight(a)
+    return mean_w[:, None] + p[:, None] * yp, p  # Hunt et al. (2007), eq. 24
 
 
 def _weights(method, dw, Ypw, A, z, gamma):
-    """Member weights (B, N, m) of the increment ``W C^T`` for enkf and etkf."""
+    """Member weights for n_obs observations, transposed: W (B, n_obs, N).
+
+    dw (B, m), Ypw (B, m, N), A (B, m, m), z (B, m, N) or None. For the deterministic
+    methods also returns P (B, m, m), symmetric, with W - mean(W) = P Ypw (None for enkf)."""
     m = A.shape[-1]
     if method == "enkf":
-        rhs = dw[:, None, :] + z - gamma * Ypw
-        sol = np.linalg.solve(A + np.eye(m), np.swapaxes(rhs, 1, 2))
-        return gamma**2 * np.swapaxes(sol, 1, 2)  # Burgers et al. (1998), sect. 3
+        rhs = dw[:, :, None] + z - gamma * Ypw
+        return gamma**2 * np.linalg.solve(A + np.eye(m), rhs), None  # Burgers et al. (1998)
     lam, V = np.linalg.eigh(A)
-    mean_w = gamma**2 * np.einsum("bjk,bk,blk,bl->bj", V, 1.0 / (1.0 + lam), V, dw)  # Hunt et al. (2007), eq. 20
-    G = np.einsum("bjk,bk,blk->bjl", V, _sqrt_weight(lam), V)
-    return mean_w[:, None, :] + gamma**3 * np.einsum("bik,bkl->bil", Ypw, G)  # Hunt et al. (2007), eq. 24
+    inv = np.einsum("bjk,bk,blk->bjl", V, 1.0 / (1.0 + lam), V)
+    mean_w = gamma**2 * np.einsum("bjl,bl->bj", inv, dw)  # Hunt et al. (2007), eq. 20
+    P = gamma**3 * np.einsum("bjk,bk,blk->bjl", V, _sqrt_weight(lam), V)
+    return mean_w[:, :, None] + P @ Ypw, P  # Hunt et al. (2007), eq. 24
 
 
 def _eakf_serial(Xu, xbar_u, Ypw, ybar_w, y_w, used, gamma):
-    """Serial ensemble adjustment, one observation at a time; returns the updated states."""
+    """Serial ensemble adjustment, one observation at a time; returns the updated states.
+
+    Xu (B, N, n), xbar_u (B, n); Ypw (B, m, N) whitened predicted perturbations;
+    ybar_w, y_w, used (B, m) whitened predicted mean, whitened reading, use flag."""
     N = Xu.shape[1]
     X = Xu + (gamma - 1.0) * (Xu - xbar_u[:, None, :]) if gamma != 1.0 else Xu.copy()
-    Y = ybar_w[:, None, :] + gamma * Ypw
-    for j in range(Y.shape[-1]):
-        yj = Y[:, :, j]
+    Y = ybar_w[:, :, None] + gamma * Ypw
+    for j in range(Y.shape[1]):
+        yj = Y[:, j]
         ym = yj.mean(axis=1)
         yp = yj - ym[:, None]
         var = np.einsum("bi,bi->b", yp, yp) / (N - 1)
-        post_var = var / (1.0 + var)  # Anderson (2001), eq. 4.1 with R = 1
-        shift = post_var * (y_w[:, j] - ym)  # Anderson (2001), eq. 4.2 with R = 1
-        dy = shift[:, None] + (1.0 / np.sqrt(1.0 + var) - 1.0)[:, None] * yp  # Anderson (2001), eq. 4.3
+        # Anderson (2001): the scalar posterior (R = 1 after whitening) and the members
+        # shifted to its mean and shrunk to its spread.
+        shift = var / (1.0 + var) * (y_w[:, j] - ym)
+        dy = shift[:, None] + (1.0 / np.sqrt(1.0 + var) - 1.0)[:, None] * yp
         dy = np.where(used[:, j, None], dy, 0.0)
         inv_var = np.where(var > 0.0, 1.0 / np.where(var > 0.0, var, 1.0), 0.0)
-        bx = (np.einsum("bin,bi->bn", X, yp) / (N - 1)) * inv_var[:, None]  # Anderson (2003), eq. 9
+        # Anderson (2003): the increment regressed onto each state and remaining prediction.
+        bx = _vm(yp, X) * (inv_var / (N - 1))[:, None]
         X += dy[:, :, None] * bx[:, None, :]
-        if j + 1 < Y.shape[-1]:
-            rest = Y[:, :, j + 1 :]
-            by = (np.einsum("bik,bi->bk", rest, yp) / (N - 1)) * inv_var[:, None]
-            rest += dy[:, :, None] * by[:, None, :]
+        if j + 1 < Y.shape[1]:
+            rest = Y[:, j + 1 :]
+            by = np.einsum("bki,bi->bk", rest, yp) * (inv_var / (N - 1))[:, None]
+            rest += by[:, :, None] * dy[:, None, :]
     return X
+
+
+def _bounds(bound, cols, full, shape, B):
+    """A bound broadcast to the updated columns, (B, N, n_u), without copying."""
+    arr = np.asarray(bound, dtype=np.float64)
+    if not full and arr.ndim and arr.shape[-1] != 1:
+        arr = arr[..., cols]
+    return np.broadcast_to(arr, shape[:-1] + (cols.size,)).reshape(B, shape[-2], cols.size)
 
 
 def ensemble_update(
@@ -315,17 +372,20 @@ def ensemble_update(
 
     cols = np.flatnonzero(mask)
     full = cols.size == n
-    Xu = X2 if full else X2[:, :, cols]
 
-    xbar = _mean(X2)
-    xbar_u = xbar if full else xbar[:, cols]
-    ybar = Y2.mean(axis=1)
-    Yp = Y2 - ybar[:, None, :]
-    var_y = np.einsum("bim,bim->bm", Yp, Yp) / (N - 1)
+    # Observation space, kept transposed (basin, n_obs, member) so that the member axis is
+    # the fast one; these arrays are small beside the states.
+    Yt = np.ascontiguousarray(np.swapaxes(Y2, 1, 2))
+    ybar = Yt.mean(axis=2)
+    Yp = Yt - ybar[:, :, None]
+    var_y = np.einsum("bmi,bmi->bm", Yp, Yp) / (N - 1)
     innovation = y2 - ybar
     innovation_variance = gamma**2 * var_y + r2
 
-    states_ok = np.isfinite(xbar_u).all(axis=-1) if cols.size else np.zeros(B, dtype=bool)
+    # Sums of squares of the prior states (one pass); a NaN or infinite state shows in them.
+    xsq = np.einsum("bin,bin->bn", X2, X2)
+    states_ok = np.isfinite(xsq[:, cols]).all(axis=-1) if cols.size else np.zeros(B, bool)
+
     usable = ~missing & np.isfinite(innovation) & np.isfinite(var_y) & states_ok[:, None]
     invalid = ~missing & ~usable
     if gate_sigma:
@@ -336,61 +396,133 @@ def ensemble_update(
     used = usable & ~gated
     active = used.any(axis=-1)
 
-    # Whitening: unused observations get weight 0, so they contribute exactly nothing.
-    s = np.where(used, 1.0 / np.sqrt(np.where(used, r2, 1.0)), 0.0)
-    Ypw = np.where(used[:, None, :], Yp, 0.0) * s[:, None, :]
-    dw = np.where(used, innovation, 0.0) * s
-    A = gamma**2 * np.einsum("bim,bik->bmk", Ypw, Ypw) / (N - 1)
+    serial = method == "eakf" and m > 1
+    exact_after = infl.rtpp > 0.0 or infl.rtps > 0.0 or serial
+    # The vectors contracted with the states in one pass: ones (member sums), the whitened
+    # predicted perturbations Y' and, for enkf, the centred weights W'.
+    k = 1 + m + (m if method == "enkf" and not exact_after else 0)
+    V = np.empty((B, k, N))
+    V[:, 0] = 1.0
 
-    if method == "eakf" and m > 1:
+    # Whitening: unused observations get weight 0, so they contribute exactly nothing.
+    all_used = bool(used.all())
+    s = 1.0 / np.sqrt(r2) if all_used else np.where(used, 1.0 / np.sqrt(np.where(used, r2, 1.0)), 0.0)
+    Ypw = V[:, 1 : 1 + m]
+    if all_used:
+        np.multiply(Yp, s[:, :, None], out=Ypw)
+    else:
+        np.multiply(np.where(used[:, :, None], Yp, 0.0), s[:, :, None], out=Ypw)
+    dw = np.where(used, innovation, 0.0) * s
+    A = gamma**2 * np.einsum("bmi,bki->bmk", Ypw, Ypw) / (N - 1)
+
+    W = P = p = None
+    if not serial:
+        z = None
+        if method == "enkf":
+            z = noise.reshape(B, N, m) if noise is not None else rng.standard_normal((B, N, m))
+            z = np.swapaxes(z, 1, 2)
+            if centre_noise:
+                z = z - z.mean(axis=2, keepdims=True)
+            if not all_used:
+                z = np.where(used[:, :, None], z, 0.0)
+        if m == 1:
+            w, p = _weights_one(
+                method, dw[:, 0], Ypw[:, 0], A[:, 0, 0], None if z is None else z[:, 0], gamma
+            )
+            W = w[:, None, :]
+        else:
+            W, P = _weights(method, dw, Ypw, A, z, gamma)
+        wbar = W.mean(axis=2)
+        if k > 1 + m:
+            Wc = V[:, 1 + m :]
+            np.subtract(W, wbar[:, :, None], out=Wc)
+        else:
+            Wc = W - wbar[:, :, None]
+
+    # One pass over the prior states for the member sums, X^T Y' and (enkf) X^T W'.
+    sums = _cross(X2, V)
+    xsum = sums[:, 0]
+    xbar = xsum / N
+    var_b = _variance(X2, xsum, xsq)
+
+    Xu = X2 if full else X2[:, :, cols]
+    xbar_u = xbar if full else xbar[:, cols]
+    var_u = var_b if full else var_b[:, cols]
+    if serial:
         ybar_w = np.where(used, ybar, 0.0) * s
         y_w = np.where(used, y2, 0.0) * s
         Xa = _eakf_serial(Xu, xbar_u, Ypw, ybar_w, y_w, used, gamma)
     else:
         # Cross-covariance from the raw states: Y' sums to zero over members, so X^T Y'
         # equals X'^T Y'; the second term removes what rounding leaves of that sum.
-        C = (
-            np.einsum("bin,bim->bnm", Xu, Ypw) - xbar_u[:, :, None] * Ypw.sum(axis=1)[:, None, :]
-        ) / (N - 1)
-        z = None
-        if method == "enkf":
-            z = noise.reshape(B, N, m) if noise is not None else rng.standard_normal((B, N, m))
-            if centre_noise:
-                z = z - z.mean(axis=1, keepdims=True)
-            z = np.where(used[:, None, :], z, 0.0)
+        XY = np.swapaxes(sums[:, 1 : 1 + m], 1, 2)
+        C = (XY - xbar[:, :, None] * Ypw.sum(axis=2)[:, None, :]) / (N - 1)
+        if not full:
+            C = C[:, cols]
         if m == 1:
-            W = _weights_one(method, dw, Ypw, A, z, gamma)
-            Xa = np.einsum("bi,bn->bin", W, C[:, :, 0])
+            Xa = np.einsum("bi,bn->bin", w, C[:, :, 0])
         else:
-            W = _weights(method, dw, Ypw, A, z, gamma)
-            Xa = np.einsum("bim,bnm->bin", W, C)
-        Xa += Xu
-        if gamma != 1.0:
-            Xa += (gamma - 1.0) * (Xu - xbar_u[:, None, :])  # Anderson & Anderson (1999)
+            Xa = np.einsum("bmi,bnm->bin", W, C)
+        if gamma == 1.0:
+            Xa += Xu
+        else:
+            Xa += (1.0 - gamma) * xbar_u[:, None, :]
+            Xa += gamma * Xu  # Anderson & Anderson (1999): prior perturbations times gamma
+        if not exact_after:
+            # Analysis variance from small quantities, X'a = g X' + W'^T C^T:
+            # sum X'a^2 = g^2 sum X'^2 + 2 g C.(X'^T W'^T) + C (W' W'^T) C^T.
+            if method == "enkf":
+                XW = np.swapaxes(sums[:, 1 + m :], 1, 2)
+                XW = XW - xbar[:, :, None] * Wc.sum(axis=2)[:, None, :]
+                if not full:
+                    XW = XW[:, cols]
+            elif m == 1:
+                XW = (N - 1) * p[:, None, None] * C
+            else:
+                XW = (N - 1) * (C @ P)
+            WtW = np.einsum("bmi,bki->bmk", Wc, Wc)
+            var_a = (
+                gamma**2 * (N - 1) * var_u
+                + 2.0 * gamma * np.einsum("bnm,bnm->bn", C, XW)
+                + np.einsum("bnm,bmk,bnk->bn", C, WtW, C)
+            ) / (N - 1)
+            mean_a = xbar_u + np.einsum("bm,bnm->bn", wbar, C)
 
     if infl.rtpp > 0.0 or infl.rtps > 0.0:
-        xa_bar = _mean(Xa)
+        xa_bar = _sum(Xa) / N
         Xap = Xa - xa_bar[:, None, :]
         Xbp = gamma * (Xu - xbar_u[:, None, :])
         if infl.rtpp > 0.0:
             Xap = relax_to_prior_perturbations(Xap, Xbp, infl.rtpp)
         if infl.rtps > 0.0:
-            sd_b = gamma * _spread(Xu, xbar_u)
+            sd_b = gamma * np.sqrt(_exact_variance(Xu))
             sd_a = np.sqrt(np.einsum("bin,bin->bn", Xap, Xap) / (N - 1))
             Xap = relax_to_prior_spread(Xap, sd_b, sd_a, infl.rtps)
         Xa = xa_bar[:, None, :] + Xap
 
     clipped = np.zeros((B, n))
+    redo = ~active if exact_after else np.zeros(B, bool)
     if lower is not None or upper is not None:
-        raw = Xa
-        if lower is not None:
-            lo = np.broadcast_to(np.asarray(lower, dtype=np.float64), X.shape).reshape(B, N, n)
-            Xa = np.maximum(Xa, lo if full else lo[:, :, cols])
-        if upper is not None:
-            hi = np.broadcast_to(np.asarray(upper, dtype=np.float64), X.shape).reshape(B, N, n)
-            Xa = np.minimum(Xa, hi if full else hi[:, :, cols])
-        clipped[:, cols] = (Xa - raw).sum(axis=1)
-        clipped[~active] = 0.0
+        lo = None if lower is None else _bounds(lower, cols, full, X.shape, B)
+        hi = None if upper is None else _bounds(upper, cols, full, X.shape, B)
+        outside = np.zeros(B, bool)
+        if lo is not None:
+            outside |= np.less(Xa, lo).any(axis=(1, 2))
+        if hi is not None:
+            outside |= np.greater(Xa, hi).any(axis=(1, 2))
+        outside &= active
+        if outside.any():
+            raw = Xa[outside]
+            fixed = raw
+            if lo is not None:
+                fixed = np.maximum(fixed, lo[outside])
+            if hi is not None:
+                fixed = np.minimum(fixed, hi[outside])
+            Xa[outside] = fixed
+            part = np.zeros((int(outside.sum()), n))
+            part[:, cols] = (fixed - raw).sum(axis=1)
+            clipped[outside] = part
+            redo |= outside
 
     if full:
         out = Xa
@@ -400,16 +532,32 @@ def ensemble_update(
     if not active.all():
         out[~active] = X2[~active]
 
-    spread_before = _spread(X2, xbar)
-    spread_after = _spread(out, _mean(out))
+    # Spread after: unchanged columns and basins keep the prior value; the updated ones
+    # come from the small-quantity formula unless clipping, relaxation, the serial path or
+    # cancellation call for the two-pass computation.
+    var_after = var_b.copy()
+    if exact_after:
+        redo = active.copy()
+    else:
+        with np.errstate(invalid="ignore"):
+            lost = ~(var_a > 1e-6 * gamma**2 * var_u) | ~(mean_a * mean_a <= _CANCELLATION_RATIO * var_a)
+        redo |= lost.any(axis=-1) & active
+        keep = active & ~redo
+        if full:
+            var_after[keep] = var_a[keep]
+        else:
+            var_after[np.ix_(keep, cols)] = var_a[keep]
+    if redo.any():
+        var_after[redo] = _exact_variance(out[redo])
+
     invalid_innov = missing | ~np.isfinite(innovation)
     return Analysis(
         states=out.reshape(X.shape),
         innovation=np.where(invalid_innov, np.nan, innovation).reshape(y.shape),
         innovation_variance=np.where(invalid_innov, np.nan, innovation_variance).reshape(y.shape),
         predicted_spread=np.sqrt(var_y).reshape(y.shape),
-        spread_before=spread_before.reshape(batch + (n,)),
-        spread_after=spread_after.reshape(batch + (n,)),
+        spread_before=np.sqrt(var_b).reshape(batch + (n,)),
+        spread_after=np.sqrt(var_after).reshape(batch + (n,)),
         used=used.reshape(y.shape),
         gated=gated.reshape(y.shape),
         missing=missing.reshape(y.shape),
