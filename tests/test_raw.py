@@ -168,3 +168,12 @@ def test_inf_and_nan_values_are_errors(tmp_path):
         with pytest.raises(InputError) as info:
             raw.read_gauge(write(tmp_path, "gauge.csv", text), ["alpha"])
         assert "variable 'value'" in str(info.value) and "line 2" in str(info.value)
+
+
+def test_blanks_and_windows_line_ends(tmp_path):
+    """Blanks around fields and CRLF line ends are accepted (common spreadsheet exports)."""
+    text = WEATHER.replace(",", " , ").replace("\n", " \r\n")
+    w = raw.read_weather(write(tmp_path, "weather.csv", text), ["alpha", "beta"])
+    np.testing.assert_array_equal(w.precipitation, [[1.0, 0.0], [3.5, 0.2]])
+    g = GAUGE.replace(",", "\t,").replace("\n", "\r\n")
+    assert raw.read_gauge(write(tmp_path, "gauge.csv", g), ["alpha", "beta"]).value.tolist() == [1.2, 1.25, 5.0, 5.5]

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import io
 import math
+import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -325,10 +326,17 @@ def read_basins_yaml(path: str | Path, select: Sequence[str] = ()) -> list[Basin
 # ---------------------------------------------------------------------------------- csv
 
 
+_BLANKS = re.compile(r"^[ \t]+|[ \t]+$|[ \t]*,[ \t]*", re.MULTILINE)
+
+
 def _read_csv(path: Path, required: Sequence[str]) -> pd.DataFrame:
     text = read_text(path)
+    if "\r" in text:
+        text = text.replace("\r\n", "\n").replace("\r", "\n")
+    if " " in text or "\t" in text:  # blanks around fields are allowed; drop them once
+        text = _BLANKS.sub(lambda m: "," if "," in m.group(0) else "", text)
     try:
-        df = pd.read_csv(io.StringIO(text), dtype=str, keep_default_na=False, skipinitialspace=True)
+        df = pd.read_csv(io.StringIO(text), dtype=str, keep_default_na=False)
     except pd.errors.ParserError as exc:
         msg = str(exc).strip().splitlines()[-1]
         raise InputError(f"not a valid CSV table ({msg})", file=path) from None
@@ -344,8 +352,6 @@ def _read_csv(path: Path, required: Sequence[str]) -> pd.DataFrame:
     dup = df.columns[df.columns.duplicated()]
     if len(dup):
         raise InputError("column appears twice", file=path, variable=dup[0], place="line 1")
-    for col in df.columns:
-        df[col] = df[col].str.strip()
     return df
 
 
@@ -370,7 +376,9 @@ def _basin_codes(df, path, basin_ids, *, allow_other=frozenset()) -> np.ndarray:
     """Index of each row's basin in ``basin_ids`` (-1 for known but unselected basins)."""
     names = df["basin"].to_numpy(dtype=object)
     codes = pd.Index(list(basin_ids)).get_indexer(names).astype(np.int64)
-    unknown = (codes < 0) & ~np.isin(names, list(allow_other))
+    unknown = codes < 0
+    if unknown.any():
+        unknown &= pd.Index(list(allow_other)).get_indexer(names) < 0
     if unknown.any():
         i = _first(unknown)
         raise InputError(f"unknown basin {names[i]!r} (not in {BASINS_FILE})", file=path,
