@@ -1,0 +1,191 @@
+"""Tests of the product writers and readers (assim.io.products)."""
+
+from __future__ import annotations
+
+import json
+import os
+import socket
+import subprocess
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+
+from assim.errors import InputError, LockError
+from assim.io.products import (
+    HindcastWriter,
+    RunWriter,
+    exceedance_probability,
+    forecast_lock,
+    read_forcing_forecast,
+    write_forecast,
+)
+
+DAYS = np.arange(18262, 18262 + 20)  # 2020-01-01 ...
+
+
+def _block(rng, n, members=4, nb=2):
+    ens = lambda: rng.gamma(2.0, 3.0, (nb, n, members))  # noqa: E731
+    return {
+        "discharge": ens(), "discharge_analysis": ens(), "production_store": ens(),
+        "observed_discharge": rng.gamma(2.0, 3.0, (nb, n)), "innovation": rng.normal(size=(nb, n)),
+        "innovation_variance": rng.gamma(2.0, 1.0, (nb, n)), "obs_status": rng.integers(0, 4, (nb, n)).astype(np.int8),
+        "spread_before": rng.gamma(2.0, 1.0, (nb, n)), "spread_after": rng.gamma(2.0, 1.0, (nb, n)),
+        "clipped_water": np.zeros((nb, n)),
+    }
+
+
+def _write(path, blocks, **kw):
+    args = dict(basins=["alder", "birch"], days=DAYS, members=4, mode="assimilate",
+                state_names=("production_store",))
+    args.update(kw)
+    with RunWriter(path, **args) as w:
+        start = 0
+        for b in blocks:
+            w.write_block(start, b)
+            start += b["discharge"].shape[1]
+        w.set_attributes(warnings="none")
+
+
+def test_run_writer_streams_blocks_into_one_cf_file(tmp_path):
+    rng = np.random.default_rng(0)
+    blocks = [_block(rng, 7), _block(rng, 13)]
+    _write(tmp_path / "analysis.nc", blocks)
+    with xr.open_dataset(tmp_path / "analysis.nc") as ds:
+        want = np.concatenate([b["discharge"] for b in blocks], axis=1).astype(np.float32)
+        np.testing.assert_array_equal(ds["discharge"].values, want)
+        assert ds["discharge"].dims == ("basin", "time", "member")
+        assert ds["discharge"].encoding["zlib"] and ds["discharge"].dtype == np.float32
+        assert ds["observed_discharge"].dtype == np.float64
+        assert pd.Timestamp(ds["time"].values[0]) == pd.Timestamp("2020-01-01")
+        assert ds["obs_status"].attrs["flag_values"].tolist() == [0, 1, 2, 3]
+        assert ds.attrs["warnings"] == "none" and "caution" in ds.attrs
+        assert list(ds["basin"].values) == ["alder", "birch"]
+    assert not list(tmp_path.glob("*.part"))
+
+
+def test_run_writer_passes_the_cf_checker(tmp_path):
+    """compliance-checker (reference library), CF-1.8: no high-priority failure."""
+    from compliance_checker.runner import CheckSuite, ComplianceChecker
+
+    _write(tmp_path / "analysis.nc", [_block(np.random.default_rng(1), 20)])
+    CheckSuite().load_all_available_checkers()
+    out = tmp_path / "cc.json"
+    ComplianceChecker.run_checker(str(tmp_path / "analysis.nc"), ["cf:1.8"], 0, "normal",
+                                  output_filename=str(out), output_format="json")
+    report = next(iter(json.loads(out.read_text()).values()))
+    assert [m for m in report["high_priorities"] if m["msgs"]] == []
+
+
+def test_interrupted_write_keeps_the_previous_file(tmp_path):
+    """An exception inside the writer leaves the earlier complete file and no partial file."""
+    rng = np.random.default_rng(2)
+    _write(tmp_path / "analysis.nc", [_block(rng, 20)])
+    before = xr.load_dataset(tmp_path / "analysis.nc")["discharge"].values
+    with pytest.raises(KeyboardInterrupt):
+        with RunWriter(tmp_path / "analysis.nc", basins=["alder", "birch"], days=DAYS, members=4,
+                       mode="assimilate") as w:
+            w.write_block(0, _block(rng, 5))
+            raise KeyboardInterrupt
+    np.testing.assert_array_equal(xr.load_dataset(tmp_path / "analysis.nc")["discharge"].values, before)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["analysis.nc"]
+
+
+def test_quantile_and_open_loop_layout(tmp_path):
+    rng = np.random.default_rng(3)
+    q = np.sort(rng.gamma(2.0, 3.0, (2, 20, 3)), axis=-1)
+    with RunWriter(tmp_path / "openloop.nc", basins=["a", "b"], days=DAYS, members=4, mode="openloop",
+                   quantiles=(0.1, 0.5, 0.9), float32=False) as w:
+        w.write_block(0, {"discharge_quantile": q})
+    with xr.open_dataset(tmp_path / "openloop.nc") as ds:
+        assert ds["discharge_quantile"].dims == ("basin", "time", "quantile")
+        assert ds["quantile"].values.tolist() == [0.1, 0.5, 0.9]
+        assert "discharge" not in ds and "member" not in ds.dims and "obs_status" not in ds
+        np.testing.assert_array_equal(ds["discharge_quantile"].values, q)
+
+
+def test_hindcast_writer_layout(tmp_path):
+    rng = np.random.default_rng(4)
+    issues = DAYS[::5]
+    with HindcastWriter(tmp_path / "hindcast.nc", basins=["a", "b"], issue_days=issues, leads=3, members=4) as w:
+        for exp in ("openloop", "assimilation"):
+            w.write_block(exp, 0, rng.gamma(2.0, 1.0, (2, 2, 3, 4)))
+            w.write_block(exp, 2, rng.gamma(2.0, 1.0, (2, 2, 3, 4)))
+    with xr.open_dataset(tmp_path / "hindcast.nc") as ds:
+        assert ds["discharge"].dims == ("experiment", "basin", "issue_time", "lead", "member")
+        assert ds["experiment"].values.tolist() == ["openloop", "assimilation"]
+        assert ds["lead"].values.tolist() == [1, 2, 3]
+        assert np.isfinite(ds["discharge"].values).all()
+        assert "caution" in ds.attrs
+
+
+def test_exceedance_probability_counts_members_above():
+    """Fraction of members strictly above the threshold (common practice, no published
+    source); NaN where a basin lacks the level."""
+    q = np.array([[[1.0, 2.0, 3.0, 4.0]], [[5.0, 5.0, 5.0, 6.0]]])  # (basin 2, lead 1, member 4)
+    thr = np.array([[2.0, 10.0], [5.0, np.nan]])
+    p = exceedance_probability(q, thr)
+    np.testing.assert_array_equal(p[0, 0], [0.5, 0.0])
+    assert p[1, 0, 0] == 0.25 and np.isnan(p[1, 0, 1])
+
+
+def test_write_forecast(tmp_path):
+    q = np.random.default_rng(5).gamma(2.0, 3.0, (2, 4, 16))
+    ds = write_forecast(tmp_path / "forecast-2020-01-05.nc", basins=["a", "b"], issue_day=int(DAYS[4]),
+                        discharge=q, quantiles=[0.5], thresholds={"minor": np.array([5.0, 6.0])},
+                        analysis="performed: test")
+    back = xr.load_dataset(tmp_path / "forecast-2020-01-05.nc")
+    assert back.attrs["issue_date"] == "2020-01-05" and back.attrs["analysis"] == "performed: test"
+    assert pd.Timestamp(back["valid_time"].values[0]) == pd.Timestamp("2020-01-06")
+    np.testing.assert_allclose(back["discharge"].values, q.astype(np.float32))
+    assert ds.attrs["product_path"].endswith("forecast-2020-01-05.nc")
+
+
+def _forcing_file(path, values=None):
+    rng = np.random.default_rng(6)
+    pr = rng.gamma(1.0, 3.0, (2, 2, 5, 3)) if values is None else values
+    ds = xr.Dataset(
+        {"precipitation": (("basin", "issue_time", "lead", "member"), pr),
+         "pet": (("basin", "issue_time", "lead", "member"), np.full(pr.shape, 2.0))},
+        coords={"basin": ["a", "b"], "issue_time": pd.to_datetime(["2020-01-05", "2020-01-06"]),
+                "lead": np.arange(1, 6), "member": np.arange(3)},
+    )
+    ds.to_netcdf(path)
+    return pr
+
+
+def test_read_forcing_forecast(tmp_path):
+    pr = _forcing_file(tmp_path / "ff.nc")
+    got = read_forcing_forecast(tmp_path / "ff.nc", ["b", "a"], int(DAYS[5]), 4)
+    np.testing.assert_array_equal(got["precipitation"], pr[::-1, 1, :4])
+    with pytest.raises(InputError, match="basin.*zz"):
+        read_forcing_forecast(tmp_path / "ff.nc", ["zz"], int(DAYS[5]), 4)
+    with pytest.raises(InputError, match="issue_time.*2020-01-09"):
+        read_forcing_forecast(tmp_path / "ff.nc", ["a"], int(DAYS[8]), 4)
+    bad = np.ones((2, 2, 5, 3))
+    bad[0, 0, 2, 1] = -1.0
+    _forcing_file(tmp_path / "bad.nc", bad)
+    with pytest.raises(InputError, match="basin a, lead 3, member 1"):
+        read_forcing_forecast(tmp_path / "bad.nc", ["a"], int(DAYS[4]), 5)
+
+
+def test_forecast_lock(tmp_path):
+    lock = tmp_path / ".forecast-2020-01-05.lock"
+    with forecast_lock(lock):
+        assert lock.read_text().split()[0] == str(os.getpid())
+        with pytest.raises(LockError, match="in progress"):
+            with forecast_lock(lock):
+                pass
+    assert not lock.exists()
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()
+    lock.write_text(f"{dead.pid} {socket.gethostname()}\n")
+    with pytest.warns(RuntimeWarning, match="stale lock"):
+        with forecast_lock(lock):
+            assert lock.read_text().startswith(str(os.getpid()))
+    lock.write_text("123 another-host\n")
+    with pytest.raises(LockError, match="another-host"):
+        with forecast_lock(lock):
+            pass
