@@ -392,6 +392,23 @@ def check(cfg: Mapping) -> str:
         f"raw folder {cfg['data']['raw']}: {f.sizes['basin']} basin(s), model {datasets['basins'].attrs['model']}, "
         f"{days[0]} to {days[-1]} ({days.size} days), PET {cfg['data']['pet_method']}",
     ]
+    period = cfg.get("period", {})
+    bounds = []
+    for key, default in (("start", days[0]), ("end", days[-1])):
+        text = period.get(key)
+        try:
+            day = np.datetime64(str(text), "D") if text else default
+        except ValueError:
+            raise ConfigError(f"not a date YYYY-MM-DD: {text!r}", file=getattr(cfg, "source", None),
+                              variable=f"period.{key}") from None
+        if not days[0] <= day <= days[-1]:
+            raise ConfigError(f"{day} is outside the weather records ({days[0]} to {days[-1]})",
+                              file=getattr(cfg, "source", None), variable=f"period.{key}")
+        bounds.append(day)
+    if bounds[1] < bounds[0]:
+        raise ConfigError(f"period ends ({bounds[1]}) before it starts ({bounds[0]})",
+                          file=getattr(cfg, "source", None), variable="period.end")
+    lines.append(f"run period {bounds[0]} to {bounds[1]}, spin-up {period.get('spinup_days', 0)} days")
     q = o["discharge"].values
     missing = ~np.isfinite(q)
     longest = _longest_run(missing)

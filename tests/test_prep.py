@@ -276,6 +276,19 @@ def test_check_summary(good):
         assert part in text, part
 
 
+def test_check_run_period(good):
+    """check refuses a run period outside the weather records and reports a good one."""
+    from assim.errors import ConfigError
+
+    cfg, _ = good
+    ok = load_config(None, data=dict(cfg["data"]), period={"start": "2015-03-02", "end": "2015-03-09"})
+    assert "run period 2015-03-02 to 2015-03-09" in prep.check(ok)
+    bad = load_config(None, data=dict(cfg["data"]), period={"start": "2014-12-01"})
+    with pytest.raises(ConfigError) as info:
+        prep.check(bad)
+    assert "period.start" in str(info.value) and "2015-03-01 to 2015-03-10" in str(info.value)
+
+
 def test_assim_prep_is_the_entry_point(good, tmp_path):
     """``assim.prep(cfg)`` prepares, as the Python API documents."""
     import assim
