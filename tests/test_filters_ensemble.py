@@ -449,6 +449,25 @@ def test_diagnostics_against_numpy():
     np.testing.assert_allclose(a.spread_after, a.states.std(axis=1, ddof=1), rtol=1e-10)
 
 
+@pytest.mark.parametrize("method", ["enkf", "etkf", "eakf"])
+def test_spreads_stay_exact_when_sums_of_squares_would_cancel(method):
+    """States with a mean 1e6 times their spread (a collapsed parameter column), a clipped
+    basin and an RTPS run: spread_before and spread_after still equal the two-pass
+    numpy.std (ddof = 1) to 1e-9."""
+    rng = np.random.default_rng(16)
+    X, H, Y, y, r = _linear_problem(rng, 4, 20, 3, 1)
+    X[:, :, 2] = 1e4 + 1e-2 * rng.standard_normal((4, 20))
+    X[1, :, 1] -= X[1, :, 1].min() + 1.0  # basin 1 sits near the lower bound of 0 ...
+    Y = np.einsum("bmn,bin->bim", H, X)
+    y[1] = Y[1].mean(axis=0) - 3 * np.sign(H[1, 0, 1]) * Y[1].std(axis=0)  # ... and is pushed below
+    for infl in (None, Inflation(rtps=0.5)):
+        a = ensemble_update(X, Y, y, r, method=method, rng=rng, lower=np.array([-np.inf, 0.0, 0.0]),
+                            inflation=infl)
+        np.testing.assert_allclose(a.spread_before, X.std(axis=1, ddof=1), rtol=1e-9)
+        np.testing.assert_allclose(a.spread_after, a.states.std(axis=1, ddof=1), rtol=1e-9)
+        assert a.clipped[1, 1] > 0
+
+
 # --- shapes, errors, properties ----------------------------------------------------------
 
 
@@ -493,6 +512,8 @@ def test_property_shapes_and_unchanged_when_missing(batch, N, n, m, method, seed
         (dict(update_mask=np.ones(3, bool)), "update_mask"),
         (dict(obs_noise=np.zeros((3, 4))), "obs_noise"),
         (dict(rng=None), "rng"),
+        (dict(lower=np.zeros(3)), "lower"),
+        (dict(upper=np.zeros((2, 4, 2))), "upper"),
     ],
 )
 def test_bad_input_raises_input_error_naming_the_variable(change, variable):

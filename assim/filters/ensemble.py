@@ -269,9 +269,13 @@ def _eakf_serial(Xu, xbar_u, Ypw, ybar_w, y_w, used, gamma):
     return X
 
 
-def _bounds(bound, cols, full, shape, B):
-    """A bound broadcast to the updated columns, (B, N, n_u), without copying."""
+def _bounds(bound, name, cols, full, shape, B):
+    """A bound broadcast to the updated columns, (B, N, n_u), without copying if it can."""
     arr = np.asarray(bound, dtype=np.float64)
+    try:
+        np.broadcast_shapes(arr.shape, shape)
+    except ValueError:
+        _fail(f"must broadcast to the states' shape {shape}, got {arr.shape}", name)
     if not full and arr.ndim and arr.shape[-1] != 1:
         arr = arr[..., cols]
     return np.broadcast_to(arr, shape[:-1] + (cols.size,)).reshape(B, shape[-2], cols.size)
@@ -501,10 +505,10 @@ def ensemble_update(
         Xa = xa_bar[:, None, :] + Xap
 
     clipped = np.zeros((B, n))
-    redo = ~active if exact_after else np.zeros(B, bool)
+    redo = np.zeros(B, bool)  # basins whose spread after is recomputed from deviations
     if lower is not None or upper is not None:
-        lo = None if lower is None else _bounds(lower, cols, full, X.shape, B)
-        hi = None if upper is None else _bounds(upper, cols, full, X.shape, B)
+        lo = None if lower is None else _bounds(lower, "lower", cols, full, X.shape, B)
+        hi = None if upper is None else _bounds(upper, "upper", cols, full, X.shape, B)
         outside = np.zeros(B, bool)
         if lo is not None:
             outside |= np.less(Xa, lo).any(axis=(1, 2))
@@ -537,7 +541,7 @@ def ensemble_update(
     # cancellation call for the two-pass computation.
     var_after = var_b.copy()
     if exact_after:
-        redo = active.copy()
+        redo = active
     else:
         with np.errstate(invalid="ignore"):
             lost = ~(var_a > 1e-6 * gamma**2 * var_u) | ~(mean_a * mean_a <= _CANCELLATION_RATIO * var_a)
