@@ -47,7 +47,7 @@ BASINS = (
     },
     {
         "id": "tamblewyn", "name": "Tamblewyn River at Dorrick Ferry", "area_km2": 915.0,
-        "latitude": 53.402, "longitude": -2.958, "character": "larger mixed catchment",
+        "latitude": 53.902, "longitude": -2.561, "character": "larger mixed catchment",
         "truth": {"x1": 420.0, "x2": -0.2, "x3": 130.0, "x4": 2.3},
         "climate": {"wet_mean": 6.5, "p01": 0.36, "p11": 0.66, "t_mean": 9.0, "t_amp": 6.0, "range": 7.5},
         "gauge": "discharge", "step_hours": (2.0, 6.0),
