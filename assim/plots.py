@@ -9,7 +9,8 @@ them by basin:
   above assimilation, over the last :data:`HYDROGRAPH_DAYS` days of the run;
 - ``plume``: one forecast issue: recent observations, members and bands, named thresholds,
   and the exceedance probability per lead in a second panel;
-- ``skill``: CRPSS, NSE and KGE against lead time for both experiments;
+- ``skill``: CRPSS (against climatology, and assimilation against open loop), NSE and KGE
+  against lead time for both experiments;
 - ``rank-histogram``: rank histograms at lead 0, 1 and the last lead;
 - ``spread-skill``: spread-skill ratio against lead time;
 - ``reliability``: reliability diagram of one named threshold (extra = threshold name).
@@ -266,7 +267,10 @@ def _lead_axis(ax, leads) -> None:
 
 def plot_skill_by_lead(skill: xr.Dataset, basin: str, path: str | Path, *,
                        names: Mapping[str, str] | None = None) -> Path:
-    """CRPSS (against the open loop), NSE and KGE of both experiments against lead time.
+    """CRPSS, NSE and KGE of both experiments against lead time.
+
+    CRPSS is against the observed day-of-year climatology; the assimilation's CRPSS against
+    the open loop is drawn dotted in the same panel.
 
     Parameters
     ----------
@@ -279,7 +283,7 @@ def plot_skill_by_lead(skill: xr.Dataset, basin: str, path: str | Path, *,
     Path of the written figure.
     """
     leads = skill["lead"].values.astype(int)
-    panels = (("crpss", "CRPSS against open loop (-)", 0.0, "reference (open loop)"),
+    panels = (("crpss", "CRPSS against climatology (-)", 0.0, "climatology"),
               ("nse", "NSE of median (-)", 0.0, "observed mean"),
               ("kge", "KGE of median (-)", 1 - np.sqrt(2), "mean-flow benchmark"))
     fig, axes = _figure(1, 3, (12, 4.0))
@@ -288,6 +292,11 @@ def plot_skill_by_lead(skill: xr.Dataset, basin: str, path: str | Path, *,
             y = _skill_values(skill, basin, metric, exp)
             if y is not None and np.isfinite(y).any():
                 ax.plot(leads, y, "o-", color=style["color"], label=style["label"], ms=4)
+        if metric == "crpss":
+            y = _skill_values(skill, basin, "crpss_openloop", "assimilation")
+            if y is not None and np.isfinite(y).any():
+                ax.plot(leads, y, "s:", color=EXPERIMENT_STYLE["assimilation"]["color"], ms=3, lw=1,
+                        label="assimilation against open loop")
         ax.axhline(ref, color="0.4", lw=0.8, ls="--", label=ref_label)
         ax.set_ylabel(label)
         _lead_axis(ax, leads)

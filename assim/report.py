@@ -29,7 +29,7 @@ from assim.io.common import atomic_path
 from assim.io.skill import read_skill
 from assim.plots import KINDS, parse_figure_name
 
-SUMMARY_METRICS = ("crpss", "crps", "nse", "kge", "kge_modified", "spread_skill")
+SUMMARY_METRICS = ("crpss", "crpss_openloop", "crps", "nse", "kge", "kge_modified", "spread_skill")
 PRODUCTS = ("openloop.nc", "analysis.nc", "hindcast.nc", "skill.nc", "skill.csv")
 _KIND_TITLES = {
     "hydrograph": "Hydrograph",
@@ -264,7 +264,8 @@ def _summary(skill: xr.Dataset | None) -> list[str]:
     total = skill["n"].sum("basin")
     out.append(f"<p>Median over {skill.sizes['basin']} basin(s) of each score; lead 0 is the background "
                "discharge of the runs (simulated before the day's reading is assimilated), leads 1..L the "
-               "hindcasts. CRPSS is measured against the open loop (0 for the open loop). Deterministic "
+               "hindcasts. CRPSS is measured against the day-of-year climatology of the observations, "
+               "crpss_openloop against the open loop (0 for the open loop). Deterministic "
                f"scores use the {_e(skill.attrs.get('deterministic_reduction', 'ensemble median'))}.</p>")
     out += _skill_table(median, total, metrics, _units(skill))
     notes = skill.attrs.get("notes", "none")

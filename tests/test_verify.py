@@ -64,6 +64,23 @@ def test_crps_nan_forecasts_are_missing():
     assert np.isfinite(np.delete(c.ravel(), [5, 40 + 6])).all()
 
 
+def test_crps_skipping_nan_members_matches_scoringrules_on_finite_members():
+    """Reference library: scoringrules.crps_ensemble on the finite members of each forecast
+    alone (samples of varying size)."""
+    obs, ens = _ensembles_with_ties(seed=5, shape=(2, 30), members=12)
+    rng = np.random.default_rng(5)
+    ens[rng.random(ens.shape) < 0.3] = np.nan
+    ens[0, 0] = np.nan  # no member at all
+    ours = v.crps_ensemble(obs, ens, skip_nan_members=True)
+    assert np.isnan(ours[0, 0])
+    for idx in np.ndindex(obs.shape):
+        members = ens[idx][np.isfinite(ens[idx])]
+        if members.size:
+            assert ours[idx] == pytest.approx(float(scoringrules.crps_ensemble(obs[idx], members, estimator="nrg")),
+                                              abs=1e-10)
+    assert np.isnan(v.crps_ensemble(obs, ens)).sum() > np.isnan(ours).sum()
+
+
 def test_crpss_against_hand_computation():
     """Hand computation: CRPSS = 1 - mean(CRPS) / mean(CRPS_ref) over pairs both scored."""
     crps = np.array([[1.0, 2.0, np.nan, 1.0]])
@@ -410,8 +427,10 @@ def test_verify_results_writes_tidy_csv_and_counts_usable_readings(tmp_path):
         np.testing.assert_array_equal(ds["n"].sel(experiment="assimilation", lead=lead, metric="rmse").values,
                                       expected_n)
     # CRPSS of the open loop against itself is 0; the sharper assimilation has positive skill
-    np.testing.assert_allclose(ds["skill"].sel(experiment="openloop", metric="crpss").values, 0.0, atol=1e-12)
-    assert np.all(ds["skill"].sel(experiment="assimilation", metric="crpss", lead=0).values > 0.3)
+    np.testing.assert_allclose(ds["skill"].sel(experiment="openloop", metric="crpss_openloop").values, 0.0,
+                               atol=1e-12)
+    assert np.all(ds["skill"].sel(experiment="assimilation", metric="crpss_openloop", lead=0).values > 0.3)
+    assert np.isfinite(ds["skill"].sel(metric="crpss").values).all()
     # birch has no "major" level: no Brier score for it
     assert ds["n"].sel(basin="birch", metric="brier_major").values.sum() == 0
     assert np.isfinite(ds["skill"].sel(basin="alder", metric="brier_major").values).all()
@@ -483,3 +502,22 @@ def test_verify_results_on_quantile_products(tmp_path):
     assert ds["n"].sel(experiment="assimilation", metric="crps").values.min() > 0
     table = pd.read_csv(cfg["results"] + "/skill.csv")
     assert not ((table.experiment == "openloop") & (table.metric == "crps")).any()
+
+
+def test_climatology_crps_against_hand_built_sample():
+    """Reference library: properscoring.crps_ensemble of the sample of every usable value
+    within 15 days of the day of year (all years), built by hand with pandas."""
+    from assim.verify.results import climatology_crps
+
+    rng = np.random.default_rng(13)
+    days = pd.date_range("2001-01-01", "2004-12-31", freq="D")
+    values = rng.gamma(2.0, 3.0, size=(2, len(days)))
+    values[0, 100:130] = np.nan
+    got = climatology_crps(values, days.values, half_window=15)
+    doy = days.day_of_year.to_numpy() - 1
+    for b, t in [(0, 5), (1, 400), (0, 1000), (1, 1460), (0, 131)]:
+        dist = np.abs(doy - doy[t])
+        near = np.minimum(dist, 366 - dist) <= 15
+        sample = values[b, near & np.isfinite(values[b])]
+        assert got[b, t] == pytest.approx(float(properscoring.crps_ensemble(values[b, t], sample)), rel=1e-10)
+    assert np.isnan(got[0, 110])

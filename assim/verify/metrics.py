@@ -247,7 +247,7 @@ def mean_score(score) -> np.ndarray:
     return _nan_where(value, n >= 1)
 
 
-def crps_ensemble(obs, ens, *, fair: bool = False) -> np.ndarray:
+def crps_ensemble(obs, ens, *, fair: bool = False, skip_nan_members: bool = False) -> np.ndarray:
     """Continuous ranked probability score of an ensemble, one value per forecast.
 
     Exact for the empirical distribution of the members, from the sorted members in
@@ -261,25 +261,39 @@ def crps_ensemble(obs, ens, *, fair: bool = False) -> np.ndarray:
     obs : (...) float, e.g. m3 s-1
     ens : (..., member) float, same unit
     fair : bool
+    skip_nan_members : bool
+        False (default): a forecast with a NaN member is missing. True: NaN members are
+        left out and each forecast is scored on its finite members (a sample of varying
+        size, e.g. a climatology); N is then the number of finite members.
 
     Returns
     -------
-    (...) float64, unit of the input; NaN where obs or any member is NaN (and for
-    ``fair=True`` with one member).
+    (...) float64, unit of the input; NaN where obs is NaN, where a member is NaN (unless
+    ``skip_nan_members``), where no member is finite, and for ``fair=True`` with one member.
     """
-    y, x, valid = _ens_pairs(obs, ens)
-    x = np.sort(x, axis=-1)
-    m = x.shape[-1]
-    rank = np.arange(1, m + 1, dtype=float)
-    spread = (x * (2.0 * rank - m - 1.0)).sum(axis=-1)  # = (1/2) sum_i sum_j |x_i - x_j|
-    distance = np.abs(x - y[..., None]).mean(axis=-1)
-    if fair:
-        if m < 2:
-            return np.full(valid.shape, np.nan)
-        value = distance - spread / (m * (m - 1.0))  # Ferro (2014), fair CRPS
-    else:
-        value = distance - spread / m**2  # Gneiting & Raftery (2007), eq. 21
-    return _nan_where(value, valid)
+    obs = np.asarray(obs, dtype=float)
+    ens = np.asarray(ens, dtype=float)
+    shape = np.broadcast_shapes(obs.shape, ens.shape[:-1])
+    y = np.broadcast_to(obs, shape)
+    ens = np.broadcast_to(ens, shape + ens.shape[-1:])
+    member_ok = np.isfinite(ens)
+    if not skip_nan_members:
+        member_ok = np.broadcast_to(np.all(member_ok, axis=-1, keepdims=True), ens.shape)
+    # Missing members sort last, so the finite ones hold ranks 1..N of each forecast.
+    x = np.sort(np.where(member_ok, ens, np.inf), axis=-1)
+    ok = np.isfinite(x)
+    n = ok.sum(axis=-1)
+    x = np.where(ok, x, 0.0)
+    y0 = np.where(np.isfinite(y), y, 0.0)
+    rank = np.arange(1, x.shape[-1] + 1, dtype=float)
+    spread = (x * (2.0 * rank - n[..., None] - 1.0) * ok).sum(axis=-1)  # = (1/2) sum_i sum_j |x_i - x_j|
+    with np.errstate(invalid="ignore", divide="ignore"):
+        distance = (np.abs(x - y0[..., None]) * ok).sum(axis=-1) / n
+        if fair:
+            value = distance - spread / (n * (n - 1.0))  # Ferro (2014), fair CRPS
+        else:
+            value = distance - spread / n**2  # Gneiting & Raftery (2007), eq. 21
+    return _nan_where(value, np.isfinite(y) & (n >= (2 if fair else 1)))
 
 
 def crpss(crps, crps_ref) -> np.ndarray:

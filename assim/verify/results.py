@@ -37,7 +37,7 @@ from assim.verify import metrics as m
 EXPERIMENTS = ("openloop", "assimilation")
 RUN_MODES = {"openloop": "openloop", "assimilation": "assimilate"}
 DETERMINISTIC = ("nse", "nse_log", "kge", "kge_modified", "pbias", "rmse")
-PROBABILISTIC = ("crps", "crps_fair", "crpss", "spread_skill")
+PROBABILISTIC = ("crps", "crps_fair", "crpss", "crpss_openloop", "spread_skill")
 UNITS = {"pbias": "%", "rmse": "m3 s-1", "crps": "m3 s-1", "crps_fair": "m3 s-1"}
 LONG_NAMES = {
     "nse": "Nash-Sutcliffe efficiency of the ensemble median",
@@ -48,10 +48,13 @@ LONG_NAMES = {
     "rmse": "root mean square error of the ensemble median",
     "crps": "mean continuous ranked probability score of the ensemble",
     "crps_fair": "mean fair CRPS (Ferro 2014)",
-    "crpss": "CRPS skill score against the open loop",
+    "crpss": "CRPS skill score against the day-of-year climatology of the observations",
+    "crpss_openloop": "CRPS skill score against the open loop",
     "spread_skill": "spread-skill ratio with the finite-ensemble correction (Fortin et al. 2014)",
 }
 RELIABILITY_BINS = 10
+CLIMATOLOGY_HALF_WINDOW_DAYS = 15
+CLIMATOLOGY_MIN_VALUES = 10
 
 
 def verify_results(cfg: Mapping) -> xr.Dataset:
@@ -149,23 +152,27 @@ def _verify(cfg, runs, hindcast, observed, thresholds, notes) -> xr.Dataset:
         block = basins[start:start + chunk]
         sl = slice(start, start + len(block))
         obs_block = observed.reindex(basin=block)
+        clim_block = obs_block.copy(data=climatology_crps(obs_block.values, obs_block["time"].values))
+        ref_block = xr.concat([obs_block, clim_block], dim="kind")
         thr = None
         if thresholds is not None:
             thr = thresholds.reindex(basin=block).transpose("basin", "threshold").values.astype(float)
             thr_values[sl] = thr
         groups = []  # (lead slice, {experiment: (obs, ens, det)})
         if runs:
-            groups.append((slice(0, 1), {e: _lead0(ds, block, obs_block, run_time) for e, ds in runs.items()}))
+            groups.append((slice(0, 1), {e: _lead0(ds, block, ref_block, run_time) for e, ds in runs.items()}))
         if hindcast is not None:
             hc_exps = [str(e) for e in hindcast["experiment"].values]
             groups.append(
-                (slice(1, nl), {e: _hindcast(hindcast, e, block, obs_block) for e in EXPERIMENTS if e in hc_exps})
+                (slice(1, nl), {e: _hindcast(hindcast, e, block, ref_block) for e in EXPERIMENTS if e in hc_exps})
             )
         for lead_sl, by_exp in groups:
             crps_by_exp = {}
-            for exp, (obs, ens, det) in by_exp.items():
+            for exp, (obs, clim, ens, det) in by_exp.items():
                 e = EXPERIMENTS.index(exp)
                 scores, crps, rank, rel = _score(obs, ens, det, thr, thr_names)
+                if crps is not None:
+                    scores["crpss"] = (m.crpss(crps, clim), (np.isfinite(crps) & np.isfinite(clim)).sum(axis=-1))
                 for j, name in enumerate(metric_names):
                     if name in scores:
                         skill[sl, e, lead_sl, j], count[sl, e, lead_sl, j] = scores[name]
@@ -175,8 +182,8 @@ def _verify(cfg, runs, hindcast, observed, thresholds, notes) -> xr.Dataset:
                     rel_p[sl, e, lead_sl], rel_o[sl, e, lead_sl], rel_n[sl, e, lead_sl] = rel
                 if crps is not None:
                     crps_by_exp[exp] = crps
-            _crpss(crps_by_exp, skill, count, sl, lead_sl, metric_names.index("crpss"))
-    if not count[..., metric_names.index("crpss")].any():
+            _crpss_openloop(crps_by_exp, skill, count, sl, lead_sl, metric_names.index("crpss_openloop"))
+    if not count[..., metric_names.index("crpss_openloop")].any():
         notes.append("no open-loop ensemble to compare with: CRPSS not computed")
 
     ds = xr.Dataset(
@@ -219,7 +226,9 @@ def _verify(cfg, runs, hindcast, observed, thresholds, notes) -> xr.Dataset:
         attrs=global_attributes(
             "verification scores of the open-loop and assimilation experiments",
             deterministic_reduction="ensemble median",
-            crpss_reference="openloop (0 for the open loop by definition)",
+            crpss_reference=(f"climatology: every usable observation within {CLIMATOLOGY_HALF_WINDOW_DAYS} days of "
+                             "the day of year, all years of observations.nc (the verified day included)"),
+            crpss_openloop_reference="openloop (0 for the open loop by definition)",
             lead_0="background discharge of openloop.nc / analysis.nc (no same-day reading used)",
             exceedance="strictly above the threshold",
             notes="; ".join(notes) if notes else "none",
@@ -264,30 +273,35 @@ def _median_of_quantiles(ds: xr.Dataset, name: str) -> xr.DataArray | None:
     return q.isel(quantile=int(hit[0]))
 
 
-def _lead0(ds: xr.Dataset, block: Sequence[str], obs_block: xr.DataArray, time: np.ndarray):
-    """(obs, ens, det) with a lead axis of length 1: (basin, 1, time), (basin, 1, time, member)."""
-    obs = obs_block.reindex(time=time).transpose("basin", "time").values[:, None, :]
+def _lead0(ds: xr.Dataset, block: Sequence[str], ref: xr.DataArray, time: np.ndarray):
+    """(obs, clim, ens, det) with a lead axis of length 1: obs and clim (basin, 1, time),
+    ens (basin, 1, time, member) or det (basin, 1, time).
+
+    ``ref`` stacks the usable observations and the climatology's CRPS on (kind, basin, time).
+    """
+    obs, clim = ref.reindex(time=time).transpose("kind", "basin", "time").values[:, :, None, :]
     where = {"basin": list(block), "time": time}
     if "discharge" in ds:
         ens = ds["discharge"].reindex(where).transpose("basin", "time", "member").values
-        return obs, ens.astype(float)[:, None], None
+        return obs, clim, ens.astype(float)[:, None], None
     med = _median_of_quantiles(ds, "discharge_quantile")
     det = None if med is None else med.reindex(where).transpose("basin", "time").values[:, None]
-    return obs, None, det
+    return obs, clim, None, det
 
 
-def _hindcast(ds: xr.Dataset, exp: str, block: Sequence[str], obs_block: xr.DataArray):
-    """(obs, ens, None): (basin, lead, issue), (basin, lead, issue, member) at the valid days."""
+def _hindcast(ds: xr.Dataset, exp: str, block: Sequence[str], ref: xr.DataArray):
+    """(obs, clim, ens, None): obs and clim (basin, lead, issue), ens (basin, lead, issue,
+    member), at the valid days issue_time + lead."""
     da = ds["discharge"].sel(experiment=exp).reindex(basin=list(block))
     ens = da.transpose("basin", "lead", "issue_time", "member").values.astype(float)
     issue = pd.DatetimeIndex(ds["issue_time"].values)
     leads = np.asarray(ds["lead"].values, dtype=np.int64)
     valid = issue.values[None, :] + leads[:, None] * np.timedelta64(1, "D")  # (lead, issue)
-    obs_index = pd.DatetimeIndex(obs_block["time"].values)
+    obs_index = pd.DatetimeIndex(ref["time"].values)
     pos = obs_index.get_indexer(valid.ravel()).reshape(valid.shape)
-    values = obs_block.transpose("basin", "time").values.astype(float)
-    obs = np.where(pos >= 0, values[:, np.clip(pos, 0, None)], np.nan)  # (basin, lead, issue)
-    return obs, ens, None
+    values = ref.transpose("kind", "basin", "time").values.astype(float)
+    obs, clim = np.where(pos >= 0, values[:, :, np.clip(pos, 0, None)], np.nan)  # (basin, lead, issue) each
+    return obs, clim, ens, None
 
 
 def _score(obs, ens, det, thr, thr_names):
@@ -327,7 +341,7 @@ def _score(obs, ens, det, thr, thr_names):
     return scores, crps, rank, rel
 
 
-def _crpss(crps_by_exp, skill, count, sl, lead_sl, j) -> None:
+def _crpss_openloop(crps_by_exp, skill, count, sl, lead_sl, j) -> None:
     """CRPSS of each experiment against the open loop, over the pairs both scored."""
     ref = crps_by_exp.get("openloop")
     if ref is None:
@@ -336,3 +350,41 @@ def _crpss(crps_by_exp, skill, count, sl, lead_sl, j) -> None:
         e = EXPERIMENTS.index(exp)
         skill[sl, e, lead_sl, j] = m.crpss(crps, ref)
         count[sl, e, lead_sl, j] = (np.isfinite(crps) & np.isfinite(ref)).sum(axis=-1)
+
+
+def climatology_crps(values: np.ndarray, days, *, half_window: int = CLIMATOLOGY_HALF_WINDOW_DAYS,
+                     min_values: int = CLIMATOLOGY_MIN_VALUES) -> np.ndarray:
+    """CRPS of the observed day-of-year climatology, the reference of ``crpss``.
+
+    The climatological forecast of a day is the sample of every usable observation whose
+    day of year lies within ``half_window`` days of it (circularly), over all years of the
+    record, the verified day included (in-sample climatology).
+
+    Parameters
+    ----------
+    values : (basin, time) float64, m3 s-1, usable observations (NaN where missing)
+    days : (time,) datetime64, consecutive days
+    half_window : days either side of the day of year
+    min_values : fewer values than this in the sample give NaN
+
+    Returns
+    -------
+    (basin, time) float64, m3 s-1; NaN where the observation is missing.
+    """
+    t = pd.DatetimeIndex(days)
+    out = np.full(values.shape, np.nan)
+    if len(t) == 0:
+        return out
+    doy = t.day_of_year.to_numpy() - 1
+    year = t.year.to_numpy() - t.year.min()
+    grid = np.full((values.shape[0], int(year.max()) + 1, 366), np.nan)
+    grid[:, year, doy] = values
+    offsets = np.arange(-half_window, half_window + 1)
+    # One step per day of the year, each vectorised over basins and years.
+    for k in np.unique(doy):
+        sample = grid[:, :, (k + offsets) % 366].reshape(values.shape[0], -1)  # (basin, years * window)
+        idx = np.flatnonzero(doy == k)
+        crps = m.crps_ensemble(values[:, idx], sample[:, None, :], skip_nan_members=True)
+        enough = np.isfinite(sample).sum(axis=-1) >= min_values
+        out[:, idx] = np.where(enough[:, None], crps, np.nan)
+    return out
