@@ -254,13 +254,14 @@ _N_WORK = 6  # scratch rows per block
 
 
 def _block(S, R, U1, U2, p, e, x1, x3, ix1, px1, ix3, cx, o1, o2,
-           S_out, R_out, V1, V2, f_pn, f_ae, f_perc, f_ex, f_qr, f_qd, f_q, zero, one, w):
+           S_out, Z1, Z2, f_pn, f_ae, f_perc, f_ex, f_qr, f_qd, f_q, zero, one, w, clear):
     """Advance one block of b elements (every argument is a view of the caller's arrays).
 
     S, R : (b,) start-of-day stores; U1, U2 : (b, k - 1) unit-hydrograph slots in use;
     p, e : (b,) forcing; x1 .. cx : (b,) prepared parameters; o1, o2 : (b, k) ordinates;
-    S_out .. V2 : the new state; f_* : (b,) fluxes; zero, one : (b,) constant arrays
-    (faster than scalar operands in numpy); w : (_N_WORK, b) scratch.
+    S_out : (b,) and Z1, Z2 : (b, k) the new state from column 1 and from the last UH1
+    column on; f_* : (b,) fluxes; zero, one : (b,) constant arrays (faster than scalar
+    operands in numpy); w : (_N_WORK, b) scratch; clear : whether Z2[:, 0] must end as 0.
 
     Written as in-place numpy calls with positional outputs: at small batch the cost is the
     number of calls, at large batch the number of passes over the block.
@@ -311,24 +312,32 @@ def _block(S, R, U1, U2, p, e, x1, x3, ix1, px1, ix3, cx, o1, o2,
     pr = sub(pn, ps, w4)
     add(pr, perc, pr)  # Perrin et al. (2003), appendix: Pr = Perc + (Pn - Ps)
 
-    # Unit hydrographs: today's share leaves now, the rest moves one day closer.
-    q9 = mul(o1[:, 0], pr, w0)
-    q1 = mul(o2[:, 0], pr, w1)
-    if V1.shape[1]:
-        add(q9, U1[:, 0], q9)
-        mul(o1[:, 1:], pr[:, None], V1)
-        add(V1[:, :-1], U1[:, 1:], V1[:, :-1])
-    if V2.shape[1]:
-        add(q1, U2[:, 0], q1)
-        mul(o2[:, 1:], pr[:, None], V2)
-        add(V2[:, :-1], U2[:, 1:], V2[:, :-1])
-
     # Groundwater exchange from the routing store level at the start of the day.
     f = sqrt(R, w2)
     mul(f, R, f)
     mul(f, R, f)
     mul(f, R, f)
     mul(f, cx, f)  # Perrin et al. (2003), appendix: F = X2 (R/X3)^(7/2)
+
+    # Unit hydrographs: today's share leaves now, the rest moves one day closer. Z[:, 0] is
+    # the day's output and Z[:, 1:] the new slots; Z1[:, 0] is the routing-store column and
+    # Z2[:, 0] the last UH1 column of the new state, used as scratch until overwritten.
+    mul(o2, pr[:, None], Z2)
+    if U2.shape[1]:
+        add(Z2[:, :-1], U2, Z2[:, :-1])
+    q1 = Z2[:, 0]
+
+    # Direct branch.
+    qd = add(q1, f, f_qd)
+    vmax(qd, zero, out=qd)  # Perrin et al. (2003), appendix: Qd = max(0, Q1 + F)
+    fd = sub(qd, q1, w1)  # exchange actually applied to the direct branch
+    if clear:
+        Z2[:, 0] = zero  # a UH1 slot beyond every time base of the batch
+
+    mul(o1, pr[:, None], Z1)
+    if U1.shape[1]:
+        add(Z1[:, :-1], U1, Z1[:, :-1])
+    q9 = Z1[:, 0]
 
     # Routing store.
     rq = add(R, q9, w0)
@@ -341,14 +350,9 @@ def _block(S, R, U1, U2, p, e, x1, x3, ix1, px1, ix3, cx, o1, o2,
     add(t, one, t)
     sqrt(t, t)
     sqrt(t, t)
-    div(r1, t, R_out)
+    R_out = div(r1, t, Z1[:, 0])
     vmin(R_out, x3, out=R_out)  # R_end < X3 holds exactly; keep it so under rounding
     qr = sub(r1, R_out, f_qr)  # Perrin et al. (2003), appendix: Qr = R (1 - (1 + (R/X3)^4)^(-1/4))
-
-    # Direct branch.
-    qd = add(q1, f, f_qd)
-    vmax(qd, zero, out=qd)  # Perrin et al. (2003), appendix: Qd = max(0, Q1 + F)
-    fd = sub(qd, q1, w1)  # exchange actually applied to the direct branch
     add(fr, fd, f_ex)
     add(qr, qd, f_q)  # Perrin et al. (2003), appendix: Q = Qr + Qd
 
@@ -387,24 +391,25 @@ def step(
     e = _as_batch(forcing["pet"], n)
     state = np.asarray(state, dtype=np.float64)
     out = np.empty((n, N_STATE), order="F")
-    if m1 < N_SLOT1:
-        out[:, _C1 + m1:_C2] = 0.0  # slots no element of this batch can fill
+    if m1 < N_SLOT1 - 1:
+        out[:, _C1 + m1:_C2 - 1] = 0.0  # slots no element of this batch can fill
     if m2 < N_SLOT2:
         out[:, _C2 + m2:] = 0.0
     fluxes = np.empty((len(FLUXES) - 2, n))
     arrays = (
         state[:, 0], state[:, 1], state[:, _C1:_C1 + m1], state[:, _C2:_C2 + m2], p, e,
         *(q[k] for k in _PREPARED_ROWS), o1, o2,
-        out[:, 0], out[:, 1], out[:, _C1:_C1 + m1], out[:, _C2:_C2 + m2],
+        out[:, 0], out[:, 1:2 + m1], out[:, _C2 - 1:_C2 + m2],
         *fluxes, q["_zero"], q["_one"],
     )
+    clear = m1 < N_SLOT1
     if n <= BLOCK:
-        _block(*arrays, np.empty((_N_WORK, n)))
+        _block(*arrays, np.empty((_N_WORK, n)), clear)
     else:
         w = np.empty((_N_WORK, BLOCK))
         for i0 in range(0, n, BLOCK):
             i1 = min(i0 + BLOCK, n)
-            _block(*(a[i0:i1] for a in arrays), w[:, : i1 - i0])
+            _block(*(a[i0:i1] for a in arrays), w[:, : i1 - i0], clear)
     return out, {"precipitation": p, "pet": e, **dict(zip(FLUXES[2:], fluxes, strict=True))}
 
 
