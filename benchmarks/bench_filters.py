@@ -49,8 +49,9 @@ def time_analysis(method, basins, members, n_state=10, n_obs=1, repeat=5, **opti
     states, predicted, observed, variance, noise = _problem(basins, members, n_state, n_obs)
     extra = {"obs_noise": noise} if method == "enkf" else {}
     return _best_of(
-        lambda: ensemble_update(states, predicted, observed, variance, method=method,
-                                **extra, **options),
+        lambda: ensemble_update(
+            states, predicted, observed, variance, method=method, **extra, **options
+        ),
         repeat,
     )
 

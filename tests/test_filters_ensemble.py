@@ -212,8 +212,10 @@ def _cycle(method, N, days=365, seed=0):
     truth = x + np.sqrt(P) * rng.standard_normal(B)
     out = {key: [] for key in ("mean", "var", "kf_mean", "kf_var", "gain", "a", "h", "pf")}
     for day in range(days):
-        forcing_b = {"precipitation": rng.exponential(3.0, B) * (rng.random(B) < 0.4),
-                     "pet": rng.uniform(0.5, 4.0, B)}
+        forcing_b = {
+            "precipitation": rng.exponential(3.0, B) * (rng.random(B) < 0.4),
+            "pet": rng.uniform(0.5, 4.0, B),
+        }
         forcing = {name: np.repeat(v, N) for name, v in forcing_b.items()}
         a, b = transition(forcing_b, params_b)
         h = observation(forcing_b, params_b)
@@ -226,11 +228,13 @@ def _cycle(method, N, days=365, seed=0):
         y = h * truth + np.sqrt(r) * rng.standard_normal(B)
         if day % 11 == 5:
             y[day % 3] = np.nan
-        xs, Ps = kalman_predict(x[:, None], P[:, None, None], a[:, None, None],
-                                (a * a * q)[:, None, None], u=b[:, None])
+        xs, Ps = kalman_predict(
+            x[:, None], P[:, None, None], a[:, None, None], (a * a * q)[:, None, None], u=b[:, None]
+        )
         pf = Ps[:, 0, 0]
-        an = ensemble_update(S[:, :, None], predicted[:, :, None], y[:, None], r[:, None],
-                             method=method, rng=rng)
+        an = ensemble_update(
+            S[:, :, None], predicted[:, :, None], y[:, None], r[:, None], method=method, rng=rng
+        )
         xs, Ps = kalman_update(xs, Ps, h[:, None, None], y[:, None], r[:, None, None])
         x, P = xs[:, 0], Ps[:, 0, 0]
         S = an.states[:, :, 0]
@@ -303,7 +307,15 @@ def test_basins_without_usable_observation_are_returned_bit_for_bit(method):
     y[1] = np.nan
     y[3] = Y[3].mean(axis=0) + 1e3  # both readings far outside the gate
     a = ensemble_update(
-        X, Y, y, r, method=method, rng=rng, gate_sigma=4.0, lower=-1e9, upper=1e9,
+        X,
+        Y,
+        y,
+        r,
+        method=method,
+        rng=rng,
+        gate_sigma=4.0,
+        lower=-1e9,
+        upper=1e9,
         inflation=Inflation(multiplicative=1.3, rtps=0.5),
     )
     for b in (1, 3):
@@ -388,8 +400,9 @@ def test_update_mask_leaves_other_columns_bit_for_bit():
     mask = np.array([True, False, True, False])
     for method in ("enkf", "etkf", "eakf"):
         full = ensemble_update(X, Y, y, r, method=method, obs_noise=np.ones(Y.shape))
-        part = ensemble_update(X, Y, y, r, method=method, obs_noise=np.ones(Y.shape),
-                               update_mask=mask)
+        part = ensemble_update(
+            X, Y, y, r, method=method, obs_noise=np.ones(Y.shape), update_mask=mask
+        )
         np.testing.assert_array_equal(_bits(part.states[..., ~mask]), _bits(X[..., ~mask]))
         np.testing.assert_allclose(part.states[..., mask], full.states[..., mask], rtol=1e-12)
         np.testing.assert_allclose(part.spread_before, full.spread_before, rtol=1e-12)
@@ -408,12 +421,21 @@ def test_nan_never_leaks_into_states():
     X[2, 7, 2] = np.nan
     mask = np.array([True, True, False])
     for method in ("enkf", "etkf", "eakf"):
-        a = ensemble_update(X, Y, y, r, method=method, rng=rng, update_mask=mask,
-                            transform=Transform("log", offset=1.0))
+        a = ensemble_update(
+            X,
+            Y,
+            y,
+            r,
+            method=method,
+            rng=rng,
+            update_mask=mask,
+            transform=Transform("log", offset=1.0),
+        )
         finite = np.isfinite(X)
         assert np.all(np.isfinite(a.states[finite]))
-        np.testing.assert_array_equal(a.invalid, [[False, True], [True, False], [False, False],
-                                                  [False, False]])
+        np.testing.assert_array_equal(
+            a.invalid, [[False, True], [True, False], [False, False], [False, False]]
+        )
         assert a.used[2].all()
 
 
@@ -461,8 +483,9 @@ def test_spreads_stay_exact_when_sums_of_squares_would_cancel(method):
     Y = np.einsum("bmn,bin->bim", H, X)
     y[1] = Y[1].mean(axis=0) - 3 * np.sign(H[1, 0, 1]) * Y[1].std(axis=0)  # ... and is pushed below
     for infl in (None, Inflation(rtps=0.5)):
-        a = ensemble_update(X, Y, y, r, method=method, rng=rng, lower=np.array([-np.inf, 0.0, 0.0]),
-                            inflation=infl)
+        a = ensemble_update(
+            X, Y, y, r, method=method, rng=rng, lower=np.array([-np.inf, 0.0, 0.0]), inflation=infl
+        )
         np.testing.assert_allclose(a.spread_before, X.std(axis=1, ddof=1), rtol=1e-9)
         np.testing.assert_allclose(a.spread_after, a.states.std(axis=1, ddof=1), rtol=1e-9)
         assert a.clipped[1, 1] > 0
@@ -519,13 +542,22 @@ def test_property_shapes_and_unchanged_when_missing(batch, N, n, m, method, seed
 def test_bad_input_raises_input_error_naming_the_variable(change, variable):
     """Bad shapes and values raise assim.errors.InputError naming the variable."""
     args = dict(
-        states=np.zeros((3, 4, 2)), predicted=np.zeros((3, 4, 1)), observed=np.zeros((3, 1)),
-        obs_variance=np.ones((3, 1)), method="enkf", rng=np.random.default_rng(0),
+        states=np.zeros((3, 4, 2)),
+        predicted=np.zeros((3, 4, 1)),
+        observed=np.zeros((3, 1)),
+        obs_variance=np.ones((3, 1)),
+        method="enkf",
+        rng=np.random.default_rng(0),
     )
     args.update(change)
     with pytest.raises(InputError) as info:
-        ensemble_update(args.pop("states"), args.pop("predicted"), args.pop("observed"),
-                        args.pop("obs_variance"), **args)
+        ensemble_update(
+            args.pop("states"),
+            args.pop("predicted"),
+            args.pop("observed"),
+            args.pop("obs_variance"),
+            **args,
+        )
     assert info.value.variable == variable
 
 

@@ -72,8 +72,9 @@ def test_multiplicative_inflation_is_an_inflated_prior(method):
     predicted perturbations were multiplied by r (Anderson & Anderson 1999)."""
     X, H, Y, y, r = _problem(1, m=2)
     z = np.random.default_rng(2).standard_normal(Y.shape)
-    a = ensemble_update(X, Y, y, r, method=method, obs_noise=z,
-                        inflation=Inflation(multiplicative=1.4))
+    a = ensemble_update(
+        X, Y, y, r, method=method, obs_noise=z, inflation=Inflation(multiplicative=1.4)
+    )
     Xi = X.mean(axis=1, keepdims=True) + 1.4 * _perturbations(X)
     Yi = Y.mean(axis=1, keepdims=True) + 1.4 * _perturbations(Y)
     b = ensemble_update(Xi, Yi, y, r, method=method, obs_noise=z)
@@ -129,6 +130,7 @@ def test_rtps_uses_the_inflated_prior_spread():
     the inflated one, r sb (the prior that entered the update)."""
     X, H, Y, y, r = _problem(8)
     infl = ensemble_update(X, Y, y, r, method="etkf", inflation=Inflation(multiplicative=1.3))
-    both = ensemble_update(X, Y, y, r, method="etkf",
-                           inflation=Inflation(multiplicative=1.3, rtps=1.0))
+    both = ensemble_update(
+        X, Y, y, r, method="etkf", inflation=Inflation(multiplicative=1.3, rtps=1.0)
+    )
     np.testing.assert_allclose(both.spread_after, 1.3 * infl.spread_before, rtol=1e-10)

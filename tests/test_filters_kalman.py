@@ -81,7 +81,9 @@ def test_running_mean_gain_is_one_over_k():
 def test_scalar_analysis_lies_between_forecast_and_observation(x, p, y, r):
     """A scalar analysis lies between the forecast and the observation, and its variance
     below both (common practice, no published source)."""
-    xa, pa = kalman_update(np.array([x]), np.array([[p]]), np.eye(1), np.array([y]), np.array([[r]]))
+    xa, pa = kalman_update(
+        np.array([x]), np.array([[p]]), np.eye(1), np.array([y]), np.array([[r]])
+    )
     slack = 1e-9 * (1.0 + abs(x) + abs(y))
     assert min(x, y) - slack <= xa[0] <= max(x, y) + slack
     assert pa[0, 0] <= min(p, r) * (1 + 1e-9)

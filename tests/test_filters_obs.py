@@ -45,8 +45,13 @@ def test_bad_error_options_raise(kwargs, variable):
 
 @pytest.mark.parametrize(
     "transform",
-    [Transform(), Transform("log", offset=0.01), Transform("boxcox", offset=0.01, lam=0.3),
-     Transform("boxcox", offset=1.0, lam=-0.5), Transform("boxcox", offset=0.1, lam=0.0)],
+    [
+        Transform(),
+        Transform("log", offset=0.01),
+        Transform("boxcox", offset=0.01, lam=0.3),
+        Transform("boxcox", offset=1.0, lam=-0.5),
+        Transform("boxcox", offset=0.1, lam=0.0),
+    ],
 )
 @settings(max_examples=100, deadline=None)
 @given(q=st.floats(0.0, 1e4))
@@ -63,7 +68,8 @@ def test_forward_against_scipy_boxcox():
     q = np.array([0.0, 0.5, 3.0, 250.0])
     for lam in (0.3, -0.5, 1.0, 0.0):
         np.testing.assert_allclose(
-            Transform("boxcox", offset=0.1, lam=lam).forward(q), special.boxcox(q + 0.1, lam),
+            Transform("boxcox", offset=0.1, lam=lam).forward(q),
+            special.boxcox(q + 0.1, lam),
             rtol=1e-13,
         )
     np.testing.assert_allclose(Transform("log", offset=0.1).forward(q), np.log(q + 0.1), rtol=1e-15)
@@ -93,6 +99,10 @@ def test_variance_by_the_delta_method():
 
 def test_bad_transform_options_raise():
     """Unknown kind, negative offset, non-finite lambda raise ConfigError."""
-    for kwargs in (dict(kind="sqrt"), dict(kind="log", offset=-1.0), dict(kind="boxcox", lam=np.nan)):
+    for kwargs in (
+        dict(kind="sqrt"),
+        dict(kind="log", offset=-1.0),
+        dict(kind="boxcox", lam=np.nan),
+    ):
         with pytest.raises(ConfigError):
             Transform(**kwargs)

@@ -146,12 +146,18 @@ def _check(states, predicted, observed, obs_variance, method, update_mask, obs_n
     else:
         mask = np.asarray(update_mask)
         if mask.dtype != bool or mask.shape != (n,):
-            _fail(f"update_mask must be a ({n},) bool array, got {mask.dtype} {mask.shape}", "update_mask")
+            _fail(
+                f"update_mask must be a ({n},) bool array, got {mask.dtype} {mask.shape}",
+                "update_mask",
+            )
     noise = None
     if obs_noise is not None:
         noise = np.asarray(obs_noise, dtype=np.float64)
         if noise.shape != Y.shape:
-            _fail(f"obs_noise must have the shape of predicted {Y.shape}, got {noise.shape}", "obs_noise")
+            _fail(
+                f"obs_noise must have the shape of predicted {Y.shape}, got {noise.shape}",
+                "obs_noise",
+            )
     return X, Y, y, r, mask, noise
 
 
@@ -410,7 +416,11 @@ def ensemble_update(
 
     # Whitening: unused observations get weight 0, so they contribute exactly nothing.
     all_used = bool(used.all())
-    s = 1.0 / np.sqrt(r2) if all_used else np.where(used, 1.0 / np.sqrt(np.where(used, r2, 1.0)), 0.0)
+    s = (
+        1.0 / np.sqrt(r2)
+        if all_used
+        else np.where(used, 1.0 / np.sqrt(np.where(used, r2, 1.0)), 0.0)
+    )
     Ypw = V[:, 1 : 1 + m]
     if all_used:
         np.multiply(Yp, s[:, :, None], out=Ypw)
@@ -471,7 +481,7 @@ def ensemble_update(
             Xa += Xu
         else:
             Xa += (1.0 - gamma) * xbar_u[:, None, :]
-            Xa += gamma * Xu  # Anderson & Anderson (1999): prior perturbations times gamma
+            Xa += gamma * Xu  # inflation.inflate folded in: x + (g - 1) x'
         if not exact_after:
             # Analysis variance from small quantities, X'a = g X' + W'^T C^T:
             # sum X'a^2 = g^2 sum X'^2 + 2 g C.(X'^T W'^T) + C (W' W'^T) C^T.
@@ -544,7 +554,9 @@ def ensemble_update(
         redo = active
     else:
         with np.errstate(invalid="ignore"):
-            lost = ~(var_a > 1e-6 * gamma**2 * var_u) | ~(mean_a * mean_a <= _CANCELLATION_RATIO * var_a)
+            lost = ~(var_a > 1e-6 * gamma**2 * var_u) | ~(
+                mean_a * mean_a <= _CANCELLATION_RATIO * var_a
+            )
         redo |= lost.any(axis=-1) & active
         keep = active & ~redo
         if full:

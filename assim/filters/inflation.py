@@ -88,7 +88,7 @@ def inflate(perturbations: np.ndarray, factor: float) -> np.ndarray:
     -------
     (..., member, k) float64
     """
-    return factor * perturbations  # Anderson & Anderson (1999), sect. 3: x' <- r x'
+    return factor * perturbations  # Anderson & Anderson (1999): x' <- r x'
 
 
 def relax_to_prior_perturbations(
@@ -107,7 +107,8 @@ def relax_to_prior_perturbations(
     (..., member, n_state) float64, mm
         ``(1 - alpha) * X'a + alpha * X'b``.
     """
-    return (1.0 - alpha) * analysis_perturbations + alpha * prior_perturbations  # Zhang et al. (2004), eq. 5
+    # Zhang, Snyder & Sun (2004): relaxation to prior perturbations
+    return (1.0 - alpha) * analysis_perturbations + alpha * prior_perturbations
 
 
 def relax_to_prior_spread(
@@ -132,6 +133,6 @@ def relax_to_prior_spread(
         A state with no analysis spread is left as it is (nothing to rescale).
     """
     safe = np.where(analysis_spread > 0.0, analysis_spread, 1.0)
-    scale = alpha * (prior_spread - analysis_spread) / safe + 1.0  # Whitaker & Hamill (2012), eq. 3
+    scale = alpha * (prior_spread - analysis_spread) / safe + 1.0  # Whitaker & Hamill (2012): RTPS
     scale = np.where(analysis_spread > 0.0, scale, 1.0)
     return analysis_perturbations * scale[..., None, :]

@@ -42,10 +42,11 @@ def kalman_predict(x, P, F, Q, u=None):
     x = np.asarray(x, dtype=np.float64)
     P = np.asarray(P, dtype=np.float64)
     F = np.asarray(F, dtype=np.float64)
-    x_new = np.einsum("...ij,...j->...i", F, x)  # Kalman (1960), Theorem 3 (prediction)
+    x_new = np.einsum("...ij,...j->...i", F, x)  # Kalman (1960), Theorem 3 (prediction of the mean)
     if u is not None:
         x_new = x_new + np.asarray(u, dtype=np.float64)
-    P_new = F @ P @ np.swapaxes(F, -1, -2) + np.asarray(Q, dtype=np.float64)  # Kalman (1960), Theorem 3 (prediction)
+    # Kalman (1960), Theorem 3 (prediction of the covariance)
+    P_new = F @ P @ np.swapaxes(F, -1, -2) + np.asarray(Q, dtype=np.float64)
     return x_new, _symmetric(P_new)
 
 
@@ -88,8 +89,10 @@ def kalman_update(x, P, H, y, R):
     innovation = np.where(present, y - np.einsum("...ij,...j->...i", H, x), 0.0)
     PHt = P @ np.swapaxes(H, -1, -2)
     S = H @ PHt + R
-    K = np.swapaxes(np.linalg.solve(S, np.swapaxes(PHt, -1, -2)), -1, -2)  # Kalman (1960), Theorem 3 (gain)
+    # Kalman (1960), Theorem 3 (gain)
+    K = np.swapaxes(np.linalg.solve(S, np.swapaxes(PHt, -1, -2)), -1, -2)
     x_new = x + np.einsum("...ij,...j->...i", K, innovation)
     A = np.eye(x.shape[-1]) - K @ H
-    P_new = A @ P @ np.swapaxes(A, -1, -2) + K @ R @ np.swapaxes(K, -1, -2)  # Bucy & Joseph (1968), Joseph form
+    # Bucy & Joseph (1968): Joseph form of the analysis covariance
+    P_new = A @ P @ np.swapaxes(A, -1, -2) + K @ R @ np.swapaxes(K, -1, -2)
     return x_new, _symmetric(P_new)

@@ -93,7 +93,8 @@ class Transform:
     def __post_init__(self):
         if self.kind not in TRANSFORMS:
             raise ConfigError(
-                f"transform must be one of {TRANSFORMS}, got {self.kind!r}", variable="transform.kind"
+                f"transform must be one of {TRANSFORMS}, got {self.kind!r}",
+                variable="transform.kind",
             )
         if not (np.isfinite(self.offset) and self.offset >= 0):
             raise ConfigError(
@@ -101,7 +102,9 @@ class Transform:
                 variable="transform.offset",
             )
         if not np.isfinite(self.lam):
-            raise ConfigError(f"lambda must be finite, got {self.lam!r}", variable="transform.lambda")
+            raise ConfigError(
+                f"lambda must be finite, got {self.lam!r}", variable="transform.lambda"
+            )
 
     @property
     def _is_log(self) -> bool:
