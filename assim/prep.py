@@ -236,13 +236,59 @@ def _import_plugins(cfg: Mapping) -> None:
                               variable="model.plugins", place=name) from None
 
 
-def _gauge_arrays(basins: list[raw_io.Basin]):
-    nb = len(basins)
-    stage = np.array([b.gauge.kind == "stage" for b in basins])
-    r = [b.gauge.rating for b in basins]
-    def col(name):
-        return np.array([getattr(x, name) if x is not None else np.nan for x in r]).reshape(nb)
-    return stage, {k: col(k) for k in ("a", "b", "h0", "stage_min_m", "stage_max_m")}
+_RATING_FIELDS = ("a", "b", "h0", "stage_min_m", "stage_max_m")
+
+
+def _gauge_arrays(basins: list[raw_io.Basin]) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """Which basins are stage gauges, and their rating coefficients, each (basin,) (NaN
+    for discharge gauges)."""
+    stage = np.array([b.gauge.kind == "stage" for b in basins], dtype=bool)
+    ratings = [b.gauge.rating for b in basins]
+    coef = {k: np.array([np.nan if r is None else getattr(r, k) for r in ratings], dtype=float)
+            for k in _RATING_FIELDS}
+    return stage, coef
+
+
+def _daily_observations(basins: list[raw_io.Basin], readings: raw_io.Readings, dates: np.ndarray,
+                        data: Mapping):
+    """Readings -> daily discharge, flags, coverage and counts on (basin, time).
+
+    Returns
+    -------
+    (discharge, qc_flag, coverage, n_readings, n_rejected) : each (basin, time)
+    flags : (n,) int64, the flags of each reading
+    inside : (n,) bool, readings that fall on a day of ``dates``
+    """
+    area = np.array([b.area_km2 for b in basins])
+    is_stage, rating = _gauge_arrays(basins)
+    k = readings.basin
+    value = readings.value
+    q = value.copy()
+    flags = np.zeros(value.shape, dtype=np.int64)
+    st = is_stage[k]
+    if st.any():
+        q[st], flags[st] = rating_discharge(value[st], *(rating[n][k[st]] for n in _RATING_FIELDS))
+    seconds = readings.time.astype(np.int64).astype(float)
+    qc = data["qc"]
+    flags |= qc_readings(k, seconds, value, q, area[k], max_discharge_m3s=qc["max_discharge_m3s"],
+                         spike_ratio=qc["spike_ratio"], flatline_hours=qc["flatline_hours"])
+    accepted = ((flags & REJECTED) == 0) & np.isfinite(q)
+    nb, n_days = len(basins), dates.size
+    mean, coverage = daily_means(k[accepted], seconds[accepted], q[accepted], nb, dates[0], n_days,
+                                 max_gap_hours=data["max_reading_gap_hours"])
+    day = (readings.time.astype("datetime64[D]") - dates[0]).astype(np.int64)
+    inside = (day >= 0) & (day < n_days)
+    at = (k[inside], day[inside])
+    day_flag = np.zeros((nb, n_days), dtype=np.int64)
+    n_read = np.zeros((nb, n_days), dtype=np.int64)
+    n_rej = np.zeros((nb, n_days), dtype=np.int64)
+    np.bitwise_or.at(day_flag, at, flags[inside])
+    np.add.at(n_read, at, 1)
+    np.add.at(n_rej, at, (~accepted[inside]).astype(np.int64))
+    short = (coverage < data["daily_coverage"]) | (coverage <= 0)
+    day_flag[short] |= _F["insufficient_coverage"]
+    mean[short] = np.nan
+    return (mean, day_flag, coverage, n_read, n_rej), flags, inside
 
 
 def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
@@ -273,45 +319,14 @@ def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
     lon = np.array([b.longitude for b in basins])
     area = np.array([b.area_km2 for b in basins])
 
-    # gauge readings -> discharge
-    is_stage, rating = _gauge_arrays(basins)
-    k = readings.basin
-    value = readings.value
-    q = value.copy()
-    flags = np.zeros(value.shape, dtype=np.int64)
-    st = is_stage[k]
-    if st.any():
-        rq, rf = rating_discharge(value[st], *(rating[n][k[st]] for n in ("a", "b", "h0", "stage_min_m", "stage_max_m")))
-        q[st], flags[st] = rq, rf
-    seconds = readings.time.astype(np.int64).astype(float)
-    qc = data["qc"]
-    flags |= qc_readings(k, seconds, value, q, area[k], max_discharge_m3s=qc["max_discharge_m3s"],
-                         spike_ratio=qc["spike_ratio"], flatline_hours=qc["flatline_hours"])
-    accepted = ((flags & REJECTED) == 0) & np.isfinite(q)
-    n_days = weather.dates.size
-    mean, coverage = daily_means(k[accepted], seconds[accepted], q[accepted], len(ids), weather.dates[0],
-                                 n_days, max_gap_hours=data["max_reading_gap_hours"])
-    day = (readings.time.astype("datetime64[D]") - weather.dates[0]).astype(np.int64)
-    inside = (day >= 0) & (day < n_days)
-    day_flag = np.zeros((len(ids), n_days), dtype=np.int64)
-    n_read = np.zeros((len(ids), n_days), dtype=np.int64)
-    n_rej = np.zeros((len(ids), n_days), dtype=np.int64)
-    np.bitwise_or.at(day_flag, (k[inside], day[inside]), flags[inside])
-    np.add.at(n_read, (k[inside], day[inside]), 1)
-    np.add.at(n_rej, (k[inside], day[inside]), (~accepted[inside]).astype(np.int64))
-    short = coverage < data["daily_coverage"]
-    if data["daily_coverage"] == 0:
-        short = coverage <= 0
-    day_flag[short] |= _F["insufficient_coverage"]
-    mean[short] = np.nan
-
+    obs_arrays, flags, inside = _daily_observations(basins, readings, weather.dates, data)
     pet = potential_evaporation(data["pet_method"], weather, lat)
     forcing = prep_io.forcing_dataset(ids, weather.dates, weather.precipitation, pet, lat, lon,
                                       pet_method=data["pet_method"])
     settings = {"daily_coverage": data["daily_coverage"],
-                "max_reading_gap_hours": data["max_reading_gap_hours"], **qc}
-    observations = prep_io.observations_dataset(ids, weather.dates, mean, day_flag, coverage, n_read,
-                                                n_rej, lat, lon, settings=settings)
+                "max_reading_gap_hours": data["max_reading_gap_hours"], **data["qc"]}
+    observations = prep_io.observations_dataset(ids, weather.dates, *obs_arrays, lat, lon,
+                                                settings=settings)
     levels: list[str] = []
     for b in basins:
         levels += [lv for lv in b.thresholds_m3s if lv not in levels]
@@ -326,7 +341,7 @@ def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
     prep_io.check_basins(basins_ds, folder_out / prep_io.BASINS_FILE)
     stats = {
         "flags": {name: int(((flags & m) != 0).sum()) for name, m in QC_FLAGS.items() if name != "insufficient_coverage"},
-        "readings": np.bincount(k, minlength=len(ids)),
+        "readings": np.bincount(readings.basin, minlength=len(ids)),
         "outside": int((~inside).sum()),
         "basins": basins,
     }
