@@ -71,7 +71,14 @@ def write_skill(ds: xr.Dataset, nc_path: str | os.PathLike, csv_path: str | os.P
     ds : Dataset with ``skill`` and ``n`` on (basin, experiment, lead, metric)
     nc_path, csv_path : destinations; each file is written whole or not at all.
     """
-    encoding = {name: {"zlib": True, "complevel": 4} for name in ds.data_vars}
+    encoding: dict[str, dict] = {}
+    for name, var in ds.variables.items():
+        if name in ds.data_vars:
+            encoding[str(name)] = {"zlib": True, "complevel": 4}
+            if var.dtype.kind in "iu":
+                encoding[str(name)]["dtype"] = "int32"  # CF-1.8 section 2.2 has no 64-bit integers
+        elif var.dtype.kind == "f":
+            encoding[str(name)] = {"_FillValue": None}  # coordinates have no missing values
     with atomic_path(nc_path) as tmp:
         ds.to_netcdf(tmp, engine="netcdf4", encoding=encoding)
     table = skill_table(ds)

@@ -234,6 +234,7 @@ def _verify(cfg, runs, hindcast, observed, thresholds, notes) -> xr.Dataset:
             notes="; ".join(notes) if notes else "none",
         ),
     )
+    ds.attrs.pop("featureType", None)  # scores on (basin, experiment, lead, metric), not time series
     nc_path, csv_path = paths.skill(cfg, "nc"), paths.skill(cfg, "csv")
     write_skill(ds, nc_path, csv_path)
     ds.attrs["product_path"] = str(nc_path)
