@@ -477,12 +477,17 @@ def read_forcing(path: str | Path, start=None, end=None) -> xr.Dataset:
         variable, wrong units or dimensions, irregular time axis, negative precipitation,
         NaN inside [start, end], or a period outside the file.
     """
+    return _read_forcing(path, start, end)[0]
+
+
+def _read_forcing(path, start, end) -> tuple[xr.Dataset, np.ndarray]:
+    """The forcing over [start, end] and the file's whole daily axis."""
     ds = _open(path)
     check_forcing(ds, path, start, end)
     ds = _float64(ds, ("precipitation", "pet"))
     days = ds["time"].values.astype("datetime64[D]")
     lo, hi = _period_index(days, path, start, end)
-    return ds.isel(time=slice(lo, hi))
+    return ds.isel(time=slice(lo, hi)), days
 
 
 def read_observations(path: str | Path) -> xr.Dataset:
@@ -565,7 +570,7 @@ def read_prepared(folder: str | Path, start=None, end=None) -> tuple[xr.Dataset,
         the observations run outside the forcing's days.
     """
     folder = Path(folder)
-    forcing = read_forcing(folder / FORCING_FILE, start, end)
+    forcing, full = _read_forcing(folder / FORCING_FILE, start, end)
     obs = read_observations(folder / OBSERVATIONS_FILE)
     basins = read_basins(folder / BASINS_FILE)
     f_ids = forcing["basin"].values.astype(str).tolist()
@@ -579,8 +584,7 @@ def read_prepared(folder: str | Path, start=None, end=None) -> tuple[xr.Dataset,
                       f"same basins in a different order ({', '.join(ids)} against {', '.join(f_ids)})")
             raise InputError(f"basins differ from {FORCING_FILE}: {detail}", file=folder / name,
                              variable="basin")
-    full = read_forcing(folder / FORCING_FILE)["time"].values
-    o_days = obs["time"].values
+    o_days = obs["time"].values.astype("datetime64[D]")
     if o_days[0] < full[0] or o_days[-1] > full[-1]:
         raise InputError(f"observations ({_fmt_day(o_days[0])} to {_fmt_day(o_days[-1])}) run outside "
                          f"the forcing ({_fmt_day(full[0])} to {_fmt_day(full[-1])})",
