@@ -512,23 +512,39 @@ def advance(
     prepared = model.prepare(flat)
     lower, upper = model.bounds(flat)
 
-    # random numbers of the whole block in one call per stream
+    # random numbers and perturbed forcing of the whole block, one call per stream
     ck = {name: pt.counter_keys(s.seed, inputs.keys, members, stream)
           for name, stream in (("precipitation", pt.PRECIPITATION), ("pet", pt.PET))}
     log_err = {}  # (time, basin, member) AR(1) log errors of the block
+    forcing_blk = {}  # (time, basin * member) perturbed forcing, mm d-1
     for name, model_err in (("precipitation", s.precipitation), ("pet", s.pet)):
-        log_err[name] = model_err.series(state.ar1[name], pt.standard_normal(ck[name], days))
+        e = model_err.series(state.ar1[name], pt.standard_normal(ck[name], days))
+        log_err[name] = e
+        w = model_err.multiplier(e)
+        w *= getattr(inputs, name)[:, t0:t1].T[:, :, None]
+        forcing_blk[name] = w.reshape(nt, nb * nm)
     end_ar1 = {n: (e[-1].copy() if nt else state.ar1[n]) for n, e in log_err.items()}
     noise = pt.StateNoise.from_names(s.state_noise, list(model.state_names))
     noise_keys = [pt.counter_keys(s.seed, inputs.keys, members, k) for k in noise.streams]
-    obs_keys = pt.counter_keys(s.seed, inputs.keys, members, pt.OBSERVATION) if assim and s.method == "enkf" else None
     kernel_keys = [pt.counter_keys(s.seed, inputs.keys, members, pt.stream_id("kernel:" + p)) for p in est]
+    if assim:
+        obs_blk = inputs.observed[:, t0:t1]
+        has_blk = np.isfinite(obs_blk)
+        any_blk = has_blk.any(axis=0)
+        var_blk = s.obs_error.variance(obs_blk)
+        sd_blk = np.sqrt(np.where(has_blk, var_blk, np.inf))
+        status_blk = np.where(inputs.rejected[:, t0:t1], OBS_REJECTED, OBS_MISSING).astype(np.int8)
+        obs_noise_blk = None
+        if s.method == "enkf":
+            okeys = pt.counter_keys(s.seed, inputs.keys, members, pt.OBSERVATION)
+            obs_noise_blk = pt.standard_normal(okeys, days)  # (time, basin, member)
 
     area = inputs.area_km2[:, None] / SECONDS_PER_DAY_OVER_1000  # (basin, 1)
     out_idx = [k for k in range(nt) if t0 + k >= first_output]
     n_out = len(out_idx) if collect else 0
     k_out0 = out_idx[0] if out_idx else nt
     odt = np.float32 if s.float32 else np.float64
+    write_cols = [(n, model.state_index(n)) for n in s.write_states]
     arrays: dict[str, np.ndarray] = {}
     if n_out:
         ens = (nb, n_out, nm)
@@ -540,11 +556,11 @@ def advance(
         if assim:
             for p in est:
                 arrays[p] = np.empty(ens, dtype=odt)
-            for n in ("observed_discharge", "innovation", "innovation_variance", "spread_before",
-                      "spread_after"):
+            for n in ("innovation", "innovation_variance", "spread_before", "spread_after"):
                 arrays[n] = np.full((nb, n_out), np.nan)
+            arrays["observed_discharge"] = obs_blk[:, k_out0:].copy()
             arrays["clipped_water"] = np.zeros((nb, n_out))
-            arrays["obs_status"] = np.full((nb, n_out), OBS_MISSING, dtype=np.int8)
+            arrays["obs_status"] = status_blk[:, k_out0:].copy()
         if noise:  # per member here; the ensemble mean is taken after the chunks are joined
             arrays["state_noise_water"] = np.zeros((nb, n_out, nm))
     n_used = np.zeros(nb, dtype=np.int64)
@@ -554,15 +570,14 @@ def advance(
     issues = set() if issue_index is None else {int(i) for i in issue_index}
     snaps = []
 
+    def updated_bounds():
+        return lower.reshape(nb, nm, ns)[..., upd], upper.reshape(nb, nm, ns)[..., upd]
+
+    lo3, hi3 = updated_bounds()
     for k in range(nt):
         t = t0 + k
         day = int(days[k])
-        forcing = {
-            "precipitation": (inputs.precipitation[:, t, None]
-                              * s.precipitation.multiplier(log_err["precipitation"][k])).reshape(-1),
-            "pet": (inputs.pet[:, t, None] * s.pet.multiplier(log_err["pet"][k])).reshape(-1),
-        }
-        x, fluxes = model.step(x, forcing, prepared)
+        x, fluxes = model.step(x, {n: forcing_blk[n][k] for n in FORCINGS}, prepared)
         added = None
         if noise:
             z = [pt.standard_normal(kk, day).reshape(-1) for kk in noise_keys]
@@ -571,54 +586,52 @@ def advance(
         qa = q
         k_o = k - k_out0
         record = collect and k >= k_out0
-        if assim and t >= first_analysis:
-            obs = inputs.observed[:, t]
-            has = np.isfinite(obs)
-            status = np.where(inputs.rejected[:, t], OBS_REJECTED, OBS_MISSING).astype(np.int8)
+        if assim and t >= first_analysis and any_blk[k]:
+            has = has_blk[:, k]
+            x3 = x.reshape(nb, nm, ns)
+            theta = None
+            if est:
+                theta = np.stack([params[p] for p in est], axis=-1)
+                zk = np.stack([pt.standard_normal(kk, day) for kk in kernel_keys], axis=-1)
+                theta = liu_west_shrink(theta, s.shrinkage, zk, th_lo, th_hi)
+            on = None if obs_noise_blk is None else obs_noise_blk[k]
+            xs, qa, theta_new, a = analyse(x3[..., upd], q, theta, obs_blk[:, k], var_blk[:, k], lo3, hi3,
+                                           th_lo, th_hi, on, s)
+            x3 = x3.copy()
+            x3[..., upd] = xs
+            x = x3.reshape(nb * nm, ns)
+            if est:
+                for j, p in enumerate(est):
+                    params[p] = np.ascontiguousarray(theta_new[..., j])
+                flat = {kk: v.reshape(-1) for kk, v in params.items()}
+                prepared = model.prepare(flat)
+                lower, upper = model.bounds(flat)
+                lo3, hi3 = updated_bounds()
+            used = np.asarray(a.used).reshape(nb)
+            gated = np.asarray(a.gated).reshape(nb)
+            n_used += used
+            n_gated += gated
+            nu = len(upd)
+            # spreads computed here, row by row, so that they do not depend on the chunk size
             spread_b = q.std(axis=1, ddof=1)
-            obs_var = s.obs_error.variance(obs)
-            if has.any():
-                x3 = x.reshape(nb, nm, ns)
-                theta = None
-                if est:
-                    theta = np.stack([params[p] for p in est], axis=-1)
-                    zk = np.stack([pt.standard_normal(kk, day) for kk in kernel_keys], axis=-1)
-                    theta = liu_west_shrink(theta, s.shrinkage, zk, th_lo, th_hi)
-                on = pt.standard_normal(obs_keys, day) if obs_keys is not None else None
-                lo3 = lower.reshape(nb, nm, ns)[..., upd]
-                hi3 = upper.reshape(nb, nm, ns)[..., upd]
-                before = x3[..., upd]
-                xs, qa, theta_new, a = analyse(before, q, theta, obs, obs_var, lo3, hi3, th_lo, th_hi, on, s)
-                x3 = x3.copy()
-                x3[..., upd] = xs
-                x = x3.reshape(nb * nm, ns)
-                if est:
-                    for j, p in enumerate(est):
-                        params[p] = np.ascontiguousarray(theta_new[..., j])
-                    flat = {kk: v.reshape(-1) for kk, v in params.items()}
-                    prepared = model.prepare(flat)
-                    lower, upper = model.bounds(flat)
-                used = np.asarray(a.used).reshape(nb)
-                gated = np.asarray(a.gated).reshape(nb)
-                status = np.where(used, OBS_USED, np.where(gated, OBS_GATED, status)).astype(np.int8)
-                n_used += used
-                n_gated += gated
-                if record:
-                    arrays["innovation"][:, k_o] = np.where(has, np.asarray(a.innovation).reshape(nb), np.nan)
-                    arrays["innovation_variance"][:, k_o] = np.where(
-                        has, np.asarray(a.innovation_variance).reshape(nb), np.nan)
-                    arrays["clipped_water"][:, k_o] = _clipped_water(a, nb, nm, len(upd))
             # collapse: spread of the predicted discharge far below the obs error, many days
-            low_spread = has & (spread_b < s.collapse_ratio * np.sqrt(np.nan_to_num(obs_var, nan=np.inf)))
+            low_spread = has & (spread_b < s.collapse_ratio * sd_blk[:, k])
             collapse = np.where(has, np.where(low_spread, collapse + 1, 0), collapse)
             hit = (collapse == s.collapse_days) & (collapse_first < 0)
             collapse_first = np.where(hit, day, collapse_first)
             if record:
-                arrays["observed_discharge"][:, k_o] = obs
-                arrays["obs_status"][:, k_o] = status
+                arrays["obs_status"][:, k_o] = np.where(used, OBS_USED, np.where(gated, OBS_GATED,
+                                                                                 status_blk[:, k]))
+                arrays["innovation"][:, k_o] = np.asarray(a.innovation).reshape(nb)
+                arrays["innovation_variance"][:, k_o] = np.asarray(a.innovation_variance).reshape(nb)
+                arrays["clipped_water"][:, k_o] = _clipped_water(a, nb, nm, nu)
                 arrays["spread_before"][:, k_o] = spread_b
                 arrays["spread_after"][:, k_o] = qa.std(axis=1, ddof=1)
-        if not np.isfinite(x).all():
+        elif assim and record:
+            sb = q.std(axis=1, ddof=1)
+            arrays["spread_before"][:, k_o] = sb
+            arrays["spread_after"][:, k_o] = sb
+        if not np.isfinite(x.sum()):
             bad = np.flatnonzero(~np.isfinite(x).all(axis=1))[0]
             col = int(np.flatnonzero(~np.isfinite(x[bad]))[0])
             return BlockResult({}, state, None, n_used, n_gated, collapse_first,
@@ -630,8 +643,8 @@ def advance(
                 for p in est:
                     arrays[p][:, k_o] = params[p]
             x3v = x.reshape(nb, nm, ns)
-            for n in s.write_states:
-                arrays[n][:, k_o] = x3v[..., model.state_index(n)]
+            for n, col in write_cols:
+                arrays[n][:, k_o] = x3v[..., col]
             if added is not None:
                 arrays["state_noise_water"][:, k_o] = added.reshape(nb, nm)
         if t in issues:
