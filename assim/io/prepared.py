@@ -229,12 +229,14 @@ def _write(ds: xr.Dataset, path: str | Path) -> Path:
     ds = _labels_to_file(ds)
     encoding: dict[str, dict] = {}
     for name, var in ds.variables.items():
-        if var.dtype.kind == "f":
-            encoding[str(name)] = {"_FillValue": np.nan if name not in ("time_bnds",) else None}
+        if var.dtype.kind == "f" and var.ndim == 2 and name != "time_bnds":
+            encoding[str(name)] = {"_FillValue": np.nan, "zlib": True, "complevel": 4}
+        elif var.dtype.kind == "f":
+            encoding[str(name)] = {"_FillValue": np.nan if name != "time_bnds" else None}
         elif var.dtype.kind in "OUS":
             encoding[str(name)] = {"dtype": str}
         elif var.dtype.kind in "iu":
-            encoding[str(name)] = {"_FillValue": None}
+            encoding[str(name)] = {"_FillValue": None, **({"zlib": True} if var.ndim == 2 else {})}
     for name in ("latitude", "longitude"):
         if name in ds.variables:
             encoding[name] = {"_FillValue": None}
