@@ -467,16 +467,15 @@ def ensemble_update(
         y_w = np.where(used, y2, 0.0) * s
         Xa = _eakf_serial(Xu, xbar_u, Ypw, ybar_w, y_w, used, gamma)
     else:
-        # Cross-covariance from the raw states: Y' sums to zero over members, so X^T Y'
-        # equals X'^T Y'; the second term removes what rounding leaves of that sum.
-        XY = np.swapaxes(sums[:, 1 : 1 + m], 1, 2)
-        C = (XY - xbar[:, :, None] * Ypw.sum(axis=2)[:, None, :]) / (N - 1)
+        # Cross-covariance C^T (B, n_obs, n_u) from the raw states: Y' sums to zero over
+        # members, so Y'^T X equals Y'^T X'; the second term removes what rounding leaves.
+        Ct = (sums[:, 1 : 1 + m] - Ypw.sum(axis=2)[:, :, None] * xbar[:, None, :]) / (N - 1)
         if not full:
-            C = C[:, cols]
+            Ct = Ct[:, :, cols]
         if m == 1:
-            Xa = np.einsum("bi,bn->bin", w, C[:, :, 0])
+            Xa = np.einsum("bi,bn->bin", w, Ct[:, 0])
         else:
-            Xa = np.einsum("bmi,bnm->bin", W, C)
+            Xa = np.einsum("bmi,bmn->bin", W, Ct)
         if gamma == 1.0:
             Xa += Xu
         else:
@@ -484,23 +483,22 @@ def ensemble_update(
             Xa += gamma * Xu  # inflation.inflate folded in: x + (g - 1) x'
         if not exact_after:
             # Analysis variance from small quantities, X'a = g X' + W'^T C^T:
-            # sum X'a^2 = g^2 sum X'^2 + 2 g C.(X'^T W'^T) + C (W' W'^T) C^T.
+            # sum X'a^2 = g^2 sum X'^2 + 2 g C.(W' X') + C (W' W'^T) C^T.
             if method == "enkf":
-                XW = np.swapaxes(sums[:, 1 + m :], 1, 2)
-                XW = XW - xbar[:, :, None] * Wc.sum(axis=2)[:, None, :]
+                WX = sums[:, 1 + m :] - Wc.sum(axis=2)[:, :, None] * xbar[:, None, :]
                 if not full:
-                    XW = XW[:, cols]
+                    WX = WX[:, :, cols]
             elif m == 1:
-                XW = (N - 1) * p[:, None, None] * C
+                WX = (N - 1) * p[:, None, None] * Ct
             else:
-                XW = (N - 1) * (C @ P)
+                WX = (N - 1) * (P @ Ct)
             WtW = np.einsum("bmi,bki->bmk", Wc, Wc)
             var_a = (
                 gamma**2 * (N - 1) * var_u
-                + 2.0 * gamma * np.einsum("bnm,bnm->bn", C, XW)
-                + np.einsum("bnm,bmk,bnk->bn", C, WtW, C)
+                + 2.0 * gamma * np.einsum("bmn,bmn->bn", Ct, WX)
+                + np.einsum("bmn,bmk,bkn->bn", Ct, WtW, Ct)
             ) / (N - 1)
-            mean_a = xbar_u + np.einsum("bm,bnm->bn", wbar, C)
+            mean_a = xbar_u + np.einsum("bm,bmn->bn", wbar, Ct)
 
     if infl.rtpp > 0.0 or infl.rtps > 0.0:
         xa_bar = _sum(Xa) / N
