@@ -235,6 +235,20 @@ def test_storages_stay_within_bounds_for_any_nonnegative_forcing(unit, fill, day
         assert f["runoff"][0] >= 0 and f["actual_evaporation"][0] <= e + 1e-12
 
 
+def test_bounds_hold_where_rounding_would_break_them():
+    """Perrin et al. (2003), appendix: Es <= S and R (1 + (R/X3)^4)^(-1/4) < X3 hold exactly,
+    but in floating point Es rounds above S once tanh(En/X1) rounds to 1 (here X1 = 1 mm,
+    S = 0.31 mm, PET 40 mm/d), and the stored routing level rounds above X3 for an inflow
+    of about 10^4 X3 (absurd, but the bound is declared for any forcing). Both cases were
+    found by searching the unclipped formulas."""
+    new, f = _one(_state(0.31, 0.0), 0.0, 40.0, _params(1.0, 0.0, 50.0, 0.5))
+    assert new[0, 0] >= 0.0 and f["actual_evaporation"][0] == pytest.approx(0.31, abs=1e-15)
+    x3 = 816.0377005674106
+    new, f = _one(_state(1.0, 0.0), 34526561.486427255, 0.0, _params(1.0, 0.0, x3, 0.5))
+    assert new[0, 1] <= x3
+    assert abs(new[0, 1] + f["routed_runoff"][0] - 0.9 * 34526561.486427255) < 1e-6 * 3.5e7
+
+
 def test_routing_store_can_exceed_x3_only_inside_the_step():
     """Perrin et al. (2003), appendix: a large inflow lifts R' above X3, but the stored level
     after the outflow stays below X3 (the bound declared for ``routing_store``)."""
@@ -350,3 +364,21 @@ def test_stores_recede_without_rain():
         assert (new[:, 1] <= state[:, 1]).all()
         assert (f["runoff"] <= previous_runoff).all()
         previous_runoff, state = f["runoff"], new
+
+
+def test_prepared_parameters_can_be_sliced_along_the_batch():
+    """Every prepared array has the batch as its first axis, so a chunk of a prepared dict
+    steps exactly like the chunk of the whole batch (common practice, no published source)."""
+    rng = np.random.default_rng(8)
+    n = 30
+    params = _random_params(rng, n)
+    prepared = MODEL.prepare(params)
+    assert all(np.shape(v)[0] == n for v in prepared.values())
+    state = MODEL.initial_state(params)
+    forcing = {"precipitation": rng.uniform(0, 60, n), "pet": rng.uniform(0, 5, n)}
+    whole, f_whole = MODEL.step(state, forcing, prepared)
+    idx = np.arange(3, 17)
+    chunk = {k: v[idx] for k, v in prepared.items()}
+    part, f_part = MODEL.step(state[idx], {k: v[idx] for k, v in forcing.items()}, chunk)
+    assert np.array_equal(part, whole[idx])
+    assert np.array_equal(f_part["runoff"], f_whole["runoff"][idx])
