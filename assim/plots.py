@@ -337,10 +337,13 @@ def plot_rank_histograms(skill: xr.Dataset, basin: str, path: str | Path, *,
                          names: Mapping[str, str] | None = None) -> Path:
     """Rank histograms (relative frequency) of both experiments at lead 0, 1 and the last."""
     chosen = _chosen_leads(skill["lead"].values)
-    fig, axes = _figure(2, len(chosen), (3.4 * len(chosen) + 0.6, 5.6), sharey=True)
     hist = skill["rank_histogram"].sel(basin=basin)
     ranks = skill["rank"].values
-    for i, (exp, style) in enumerate(EXPERIMENT_STYLE.items()):
+    exps = [e for e in EXPERIMENT_STYLE if np.nansum(hist.sel(experiment=e).values) > 0] or list(EXPERIMENT_STYLE)
+    fig, axes = _figure(len(exps), len(chosen), (max(8.0, 3.4 * len(chosen) + 0.6), 2.8 * len(exps) + 0.6),
+                        sharey=True)
+    for i, exp in enumerate(exps):
+        style = EXPERIMENT_STYLE[exp]
         for j, lead in enumerate(chosen):
             ax = axes[i, j]
             h = hist.sel(experiment=exp, lead=lead).values.astype(float)
@@ -364,7 +367,7 @@ def plot_reliability(skill: xr.Dataset, basin: str, threshold: str, path: str | 
                      names: Mapping[str, str] | None = None) -> Path:
     """Reliability diagram of exceeding ``threshold`` at lead 0, 1 and the last lead."""
     chosen = _chosen_leads(skill["lead"].values)
-    fig, axes = _figure(1, len(chosen), (3.7 * len(chosen) + 0.6, 4.2), sharey=True)
+    fig, axes = _figure(1, len(chosen), (max(8.0, 3.7 * len(chosen) + 0.6), 4.2), sharey=True)
     value = float(skill["threshold_value"].sel(basin=basin, threshold=threshold))
     for ax, lead in zip(axes[0], chosen, strict=True):
         ax.plot([0, 1], [0, 1], color="0.4", lw=0.8, ls="--", label="perfect reliability")
