@@ -11,8 +11,11 @@ Choices (recorded in the attributes of skill.nc):
 
 - deterministic metrics (NSE, log NSE, KGE, KGE', percent bias, RMSE) score the ensemble
   *median* (the 0.5 quantile for products written as quantiles);
-- CRPSS is the skill of each experiment's CRPS against the open loop's CRPS over the same
-  pairs, so it is 0 for the open loop by definition (kept, as the reference line);
+- ``crpss`` is the skill of each experiment's CRPS against the CRPS of the observed
+  day-of-year climatology (every usable reading within 15 days of the day of year, all
+  years; :func:`climatology_crps`), over the same pairs;
+- ``crpss_openloop`` is the skill against the open loop's CRPS over the same pairs, so it
+  is 0 for the open loop by definition (kept, as the reference line);
 - Brier scores are per named threshold of basins.nc (``brier_<name>``), exceedance meaning
   strictly above the threshold, as in the forecast products;
 - only usable readings count (missing and QC-flagged days are skipped); ``n`` is the number
