@@ -206,6 +206,39 @@ def test_daily_means_basins_apart():
     np.testing.assert_allclose(cover[:, 0], [21 / 24, 21 / 24])
 
 
+def test_daily_means_against_brute_force():
+    """The cumulative-integral implementation against a direct reading of the rule
+    (common practice, no published source): a moment of the day is covered by the nearest
+    reading if that reading is at most max_gap_hours away; the mean is the average over
+    covered moments, sampled every 10 s. Random irregular readings, three basins."""
+    rng = np.random.default_rng(7)
+    t0 = np.datetime64("2015-03-01")
+    base = float(t0.astype("datetime64[s]").astype(np.int64))
+    n_days, gap = 4, 2.5
+    basin, seconds, values = [], [], []
+    for b in range(3):
+        t = np.cumsum(rng.uniform(0.2, 9.0, 40)) - 5.0  # hours, some before the first day
+        t = t[t < 24 * n_days + 5]
+        basin += [b] * t.size
+        seconds += list(base + t * 3600.0)
+        values += list(rng.uniform(0.5, 20.0, t.size))
+    basin, seconds, values = np.array(basin), np.array(seconds), np.array(values)
+    mean, cover = prep.daily_means(basin, seconds, values, 3, t0, n_days, max_gap_hours=gap)
+    grid = base + (np.arange(n_days * 8640) + 0.5) * 10.0
+    for b in range(3):
+        tb, vb = seconds[basin == b], values[basin == b]
+        nearest = np.abs(grid[:, None] - tb[None, :]).argmin(axis=1)
+        covered = np.abs(grid - tb[nearest]) <= gap * 3600.0
+        for d in range(n_days):
+            day = slice(d * 8640, (d + 1) * 8640)
+            c = covered[day]
+            assert cover[b, d] == pytest.approx(c.mean(), abs=1e-3)
+            if c.any():
+                assert mean[b, d] == pytest.approx(vb[nearest[day]][c].mean(), rel=2e-3)
+            else:
+                assert np.isnan(mean[b, d])
+
+
 # ---------------------------------------------------------------------------------- prepare
 
 
