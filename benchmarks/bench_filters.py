@@ -25,12 +25,16 @@ METHODS = ("enkf", "etkf", "eakf")
 
 
 def _problem(basins, members, n_state, n_obs, seed=0):
+    """Stores of 50-300 mm with 5-30 mm spread, predictions linear in the stores, readings
+    within the ensemble's range: a typical day, where bounds are seldom reached."""
     rng = np.random.default_rng(seed)
-    states = rng.uniform(10.0, 300.0, (basins, members, n_state))
-    weights = rng.uniform(0.0, 0.1, (n_obs, n_state))
+    centre = rng.uniform(50.0, 300.0, (basins, 1, n_state))
+    spread = rng.uniform(5.0, 30.0, (basins, 1, n_state))
+    states = centre + spread * rng.standard_normal((basins, members, n_state))
+    weights = rng.uniform(0.0, 0.02, (n_obs, n_state))
     predicted = np.einsum("bin,mn->bim", states, weights)
-    observed = predicted.mean(axis=1) + rng.normal(0.0, 1.0, (basins, n_obs))
-    variance = np.full((basins, n_obs), 0.5)
+    observed = predicted.mean(axis=1) + predicted.std(axis=1) * rng.standard_normal((basins, n_obs))
+    variance = (0.1 * np.abs(observed)) ** 2
     noise = rng.standard_normal(predicted.shape)
     return states, predicted, observed, variance, noise
 

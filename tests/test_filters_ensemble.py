@@ -382,6 +382,23 @@ def test_bounds_are_honoured_and_the_clipped_water_reported():
     np.testing.assert_array_equal(a.states[inside], free.states[inside])
 
 
+def test_clipping_many_basins_reports_the_same_water():
+    """When most basins leave their bounds (the in-place path), the clipped water is still
+    the bounded minus the unbounded analysis, and exactly zero in columns never clipped."""
+    rng = np.random.default_rng(19)
+    B, N = 40, 16
+    X = np.stack([rng.uniform(0, 10, (B, N)), rng.uniform(40, 50, (B, N))], axis=-1)
+    Y = X[:, :, :1] + X[:, :, 1:]
+    y = np.full((B, 1), 20.0)
+    free = ensemble_update(X, Y, y, np.ones((B, 1)), method="etkf")
+    a = ensemble_update(X, Y, y, np.ones((B, 1)), method="etkf", lower=0.0)
+    assert (a.clipped[:, 0] > 0).sum() > B // 8
+    np.testing.assert_allclose(a.clipped, (a.states - free.states).sum(axis=1), atol=1e-10)
+    np.testing.assert_array_equal(a.clipped[:, 1], 0.0)
+    np.testing.assert_allclose(a.spread_after, a.states.std(axis=1, ddof=1), rtol=1e-10)
+    assert np.all(a.states >= 0.0)
+
+
 def test_bounds_broadcast_per_member():
     """Bounds may differ per basin and member (e.g. a store bounded by a member's
     parameter), broadcast to the states' shape."""

@@ -212,6 +212,14 @@ def _variance(a: np.ndarray, total: np.ndarray, squares: np.ndarray) -> np.ndarr
     return var
 
 
+def _variance_of(a: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    """Ensemble variance of the basins ``rows`` of a (B, N, k) array, (rows.sum(), k)."""
+    if rows.mean() > 0.25:
+        return _variance(a, _sum(a), np.einsum("bin,bin->bn", a, a))[rows]
+    sub = a[rows]
+    return _variance(sub, _sum(sub), np.einsum("bin,bin->bn", sub, sub))
+
+
 def _sqrt_weight(a: np.ndarray) -> np.ndarray:
     """``((1 + a)^-1/2 - 1) / a``, written so that it holds at ``a = 0`` (value -1/2)."""
     root = np.sqrt(1.0 + np.maximum(a, 0.0))
@@ -523,7 +531,9 @@ def ensemble_update(
         if hi is not None:
             outside |= np.greater(Xa, hi).any(axis=(1, 2))
         outside &= active
-        if outside.any():
+        count = int(outside.sum())
+        if 0 < count <= max(1, B // 8):
+            # Few basins out of bounds: clip just those, the clipped water exactly.
             raw = Xa[outside]
             fixed = raw
             if lo is not None:
@@ -531,10 +541,19 @@ def ensemble_update(
             if hi is not None:
                 fixed = np.minimum(fixed, hi[outside])
             Xa[outside] = fixed
-            part = np.zeros((int(outside.sum()), n))
+            part = np.zeros((count, n))
             part[:, cols] = (fixed - raw).sum(axis=1)
             clipped[outside] = part
-            redo |= outside
+        elif count:
+            # Many: clip in place; a column with nothing clipped has bitwise the same
+            # member sum before and after, so its clipped water is exactly zero.
+            before = _sum(Xa)
+            if lo is not None:
+                np.maximum(Xa, lo, out=Xa)
+            if hi is not None:
+                np.minimum(Xa, hi, out=Xa)
+            clipped[:, cols] = np.where(outside[:, None], _sum(Xa) - before, 0.0)
+        redo |= outside
 
     if full:
         out = Xa
@@ -562,7 +581,7 @@ def ensemble_update(
         else:
             var_after[np.ix_(keep, cols)] = var_a[keep]
     if redo.any():
-        var_after[redo] = _exact_variance(out[redo])
+        var_after[redo] = _variance_of(out, redo)
 
     invalid_innov = missing | ~np.isfinite(innovation)
     return Analysis(
