@@ -21,12 +21,21 @@ at the end of a step a unit hydrograph holds water for the next ``N_UH - 1`` day
 that is why there are 9 and 19 unit-hydrograph states. Slots beyond an element's own time
 base (``ceil(X4) - 1`` and ``ceil(2 X4) - 1``) are always zero, and their upper bound is 0.
 
-Performance notes. :func:`step` writes the new state into a Fortran-ordered array (each
-column contiguous) and works through the batch in blocks of ``BLOCK`` elements so that the
-temporaries of one block stay in cache; the block loop is a loop over cache-sized slices of
-the flat batch, not over members. Only the unit-hydrograph columns that the largest X4 of
-the batch needs are touched. :func:`prepare` precomputes the ordinates and reciprocals once
-per parameter set; :func:`step` accepts raw or prepared parameters.
+Parameter ranges: chosen to cover the calibrated values Perrin et al. (2003) report (80 %
+intervals, recalled from memory: X1 100-1200 mm, X2 -5 to 3 mm d-1, X3 20-300 mm, X4 1.1 to
+2.9 d) with a wide margin; the defaults are the paper's median values (350, 0, 90, 1.7).
+
+Performance notes. :func:`step` is written as in-place numpy calls with positional outputs
+(about 60 calls per step, each one pass over a block): at small batch the cost is the number
+of calls, at large batch the memory traffic. It works through the batch in blocks of
+``BLOCK`` elements so that the temporaries of a block stay in cache; this loop is over
+cache-sized slices of the flat batch, not over members. The new state is Fortran-ordered
+(each column contiguous); the unit-hydrograph columns are computed only as far as the
+largest X4 of the batch needs, the rest is zero. :func:`prepare` precomputes the ordinates
+and reciprocals once per parameter set; :func:`step` accepts raw or prepared parameters.
+Only correctly rounded operations (+, -, *, /, sqrt) and one tanh are used, so an element
+gives bit-identical results whatever the batch around it. ``benchmarks/bench_models.py``
+measures the speed.
 """
 
 from __future__ import annotations
@@ -45,7 +54,7 @@ N_UH2 = math.ceil(2 * X4_MAX)  # ordinates of UH2
 N_SLOT1 = N_UH1 - 1  # UH1 water still in transit at the end of a step
 N_SLOT2 = N_UH2 - 1
 UH1_SHARE = 0.9  # Perrin et al. (2003), appendix: 90 % of Pr goes through UH1
-BLOCK = 4096  # batch elements per block inside step (cache-sized)
+BLOCK = 16384  # batch elements per block inside step (the fastest measured, see module notes)
 
 _C1 = 2  # first UH1 column
 _C2 = 2 + N_SLOT1  # first UH2 column
