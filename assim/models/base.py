@@ -5,11 +5,19 @@ A model is a frozen :class:`Model` record. Its ``step`` advances a flat batch â€
 
 ``step(state, forcing, params) -> (state, fluxes)``
 
-state : (batch, n_state) float64, mm
+state : (batch, n_state) float64, mm (any memory order; ``step`` never modifies it and
+    returns a new array)
 forcing : dict of (batch,) float64, mm d-1 (``precipitation``, ``pet``)
-params : dict of (batch,) float64, one value per batch element (members may differ)
+params : dict of (batch,) float64, one value per batch element (members may differ), raw or
+    as returned by ``prepare(params)``
 fluxes : dict of (batch,) float64, mm d-1; ``runoff`` is the total streamflow and the other
     entries close the water balance as declared by ``balance``.
+
+``prepare(params)`` returns the parameters with whatever the model precomputes once per
+parameter set (call it once per run and again whenever the parameters change). Its extra
+keys start with ``_``; every value keeps the batch as its first axis, so a prepared dict can
+be sliced like the raw one (``{k: v[idx] for k, v in prepared.items()}``). The default
+returns a plain copy.
 
 This module imports numpy only.
 """
@@ -72,7 +80,30 @@ class WaterBalance:
 
 @dataclass(frozen=True)
 class Model:
-    """A vectorised rainfall-runoff model (see the module docstring for the protocol)."""
+    """A vectorised rainfall-runoff model (see the module docstring for the protocol).
+
+    Attributes
+    ----------
+    name : str
+        The key of :func:`get` and of ``model`` in ``basins.yaml``.
+    description, reference : str
+        One line each: what the model is, and its published source.
+    states : tuple of StateVariable
+        One per column of the state array, in column order.
+    parameters : tuple of Parameter
+        The keys of the parameter dict, with valid ranges and defaults.
+    step : callable ``(state, forcing, params) -> (state, fluxes)``
+    initial_state : callable ``params -> (batch, n_state) float64``
+        A starting state for spin-up.
+    balance : WaterBalance
+        Which fluxes close the water balance of a step.
+    forcings : tuple of str
+        Keys of the forcing dict (mm d-1).
+    fluxes : tuple of str
+        Keys of the fluxes dict; always includes ``runoff`` (mm d-1).
+    prepare : callable ``params -> dict``
+        Precomputation once per parameter set (default: a plain copy).
+    """
 
     name: str
     description: str
