@@ -38,12 +38,20 @@ def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
     tmp_path = Path(tmp)
     try:
         yield tmp_path
+        # mkstemp makes the file private (0600); give it the mode an ordinary write would.
+        os.chmod(tmp_path, 0o666 & ~_umask())
         os.replace(tmp_path, path)
     except OSError as exc:
         raise RunError(f"cannot write ({exc.strerror}); earlier output left as it was", file=path) from None
     finally:
         with contextlib.suppress(FileNotFoundError):
             tmp_path.unlink()
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def global_attributes(title: str, *, product: bool = True, **extra: str) -> dict[str, str]:
