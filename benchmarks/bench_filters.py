@@ -25,11 +25,11 @@ METHODS = ("enkf", "etkf", "eakf")
 
 
 def _problem(basins, members, n_state, n_obs, seed=0):
-    """Stores of 50-300 mm with 5-30 mm spread, predictions linear in the stores, readings
-    within the ensemble's range: a typical day, where bounds are seldom reached."""
+    """Stores of 50-300 mm with a spread of 2-15 % of the store, predictions linear in the
+    stores, readings within the ensemble's range: a typical day, bounds seldom reached."""
     rng = np.random.default_rng(seed)
     centre = rng.uniform(50.0, 300.0, (basins, 1, n_state))
-    spread = rng.uniform(5.0, 30.0, (basins, 1, n_state))
+    spread = centre * rng.uniform(0.02, 0.15, (basins, 1, n_state))
     states = centre + spread * rng.standard_normal((basins, members, n_state))
     weights = rng.uniform(0.0, 0.02, (n_obs, n_state))
     predicted = np.einsum("bin,mn->bim", states, weights)

@@ -232,7 +232,11 @@ def _weights_one(method, dw, yp, a, z, gamma):
     dw (B,), yp (B, N), a (B,), z (B, N) or None. Returns W (B, N) and, for the
     deterministic methods, the factor p (B,) with W - mean(W) = p yp (None for enkf)."""
     if method == "enkf":
-        return (gamma**2 / (1.0 + a))[:, None] * (dw[:, None] + z - gamma * yp), None
+        w = yp * -gamma
+        w += z
+        w += dw[:, None]
+        w *= (gamma**2 / (1.0 + a))[:, None]
+        return w, None
     mean_w = gamma**2 * dw / (1.0 + a)  # Hunt et al. (2007), eq. 20
     p = gamma**3 * _sqrt_weight(a)
     return mean_w[:, None] + p[:, None] * yp, p  # Hunt et al. (2007), eq. 24
@@ -284,7 +288,8 @@ def _eakf_serial(Xu, xbar_u, Ypw, ybar_w, y_w, used, gamma):
 
 
 def _bounds(bound, name, cols, full, shape, B):
-    """A bound broadcast to the updated columns, (B, N, n_u), without copying if it can."""
+    """A bound broadcast to the updated columns, (B, N, n_u), without copying if it can;
+    None if it is -inf (lower) or +inf (upper) everywhere: nothing to clip."""
     arr = np.asarray(bound, dtype=np.float64)
     try:
         np.broadcast_shapes(arr.shape, shape)
@@ -292,6 +297,8 @@ def _bounds(bound, name, cols, full, shape, B):
         _fail(f"must broadcast to the states' shape {shape}, got {arr.shape}", name)
     if not full and arr.ndim and arr.shape[-1] != 1:
         arr = arr[..., cols]
+    if np.all(arr == (-np.inf if name == "lower" else np.inf)):
+        return None
     return np.broadcast_to(arr, shape[:-1] + (cols.size,)).reshape(B, shape[-2], cols.size)
 
 
