@@ -7,6 +7,9 @@ Each function takes a validated :class:`assim.config.Config`, reads inputs throu
 
 from __future__ import annotations
 
+# Submodules are imported by name: `from assim import verify` would find the package-level
+# entry point of the same name (assim.__getattr__) instead of the module.
+import importlib
 from pathlib import Path
 
 import xarray as xr
@@ -16,36 +19,31 @@ from assim.config import Config
 
 def prep(cfg: Config) -> dict[str, xr.Dataset]:
     """Raw records -> prepared layer; returns {"forcing", "observations", "basins"} Datasets."""
-    from assim import prep as _prep
-
+    _prep = importlib.import_module("assim.prep")
     return _prep.prepare(cfg)
 
 
 def check(cfg: Config) -> str:
     """Validate config and inputs; return a short summary for a person."""
-    from assim import prep as _prep
-
+    _prep = importlib.import_module("assim.prep")
     return _prep.check(cfg)
 
 
 def verify(cfg: Config) -> xr.Dataset:
     """Skill of the runs and hindcasts in ``cfg['results']``; writes skill.nc and skill.csv."""
-    from assim import verify as _verify
-
+    _verify = importlib.import_module("assim.verify")
     return _verify.verify_results(cfg)
 
 
 def plot(cfg: Config, issue_date: str | None = None) -> list[Path]:
     """Every figure of the results folder (PNG); returns the written paths."""
-    from assim import plots
-
+    plots = importlib.import_module("assim.plots")
     return plots.plot_results(cfg, issue_date=issue_date)
 
 
 def report(cfg: Config) -> Path:
     """The self-contained HTML report; returns its path."""
-    from assim import report as _report
-
+    _report = importlib.import_module("assim.report")
     return _report.write_report(cfg)
 
 
