@@ -382,3 +382,12 @@ def test_prepared_parameters_can_be_sliced_along_the_batch():
     part, f_part = MODEL.step(state[idx], {k: v[idx] for k, v in forcing.items()}, chunk)
     assert np.array_equal(part, whole[idx])
     assert np.array_equal(f_part["runoff"], f_whole["runoff"][idx])
+
+
+def test_x4_beyond_the_state_layout_is_refused():
+    """The state holds 9 + 19 unit-hydrograph slots, enough for X4 <= 10 d: a longer time base
+    would drop water, so prepare refuses it (common practice, no published source)."""
+    with pytest.raises(ValueError, match="X4"):
+        MODEL.prepare(_params(350, 0, 90, 10.5))
+    with pytest.raises(ValueError, match="X1"):
+        MODEL.prepare(_params(0, 0, 90, 1.7))

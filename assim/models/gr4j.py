@@ -204,6 +204,12 @@ def prepare(params: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
     params : dict with ``x1`` (mm), ``x2`` (mm d-1), ``x3`` (mm), ``x4`` (d), each (batch,)
         float64 (scalars broadcast)
 
+    Raises
+    ------
+    ValueError
+        If X1 or X3 is not positive or X4 is outside (0, 10] d (the unit-hydrograph slots of
+        the state cover X4 <= 10 d only).
+
     Returns
     -------
     dict
@@ -217,6 +223,10 @@ def prepare(params: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
         return params  # type: ignore[return-value]
     x = np.broadcast_arrays(*(np.asarray(params[p.name], dtype=np.float64) for p in PARAMETERS))
     x1, x2, x3, x4 = (np.ascontiguousarray(v, dtype=np.float64).reshape(-1) for v in x)
+    # The state holds N_SLOT1 + N_SLOT2 unit-hydrograph slots: a longer X4 would lose water.
+    # Inputs are validated where they enter; this guards the core against a caller's bug.
+    if not ((x4 > 0) & (x4 <= X4_MAX) & (x1 > 0) & (x3 > 0)).all():
+        raise ValueError(f"gr4j needs X1 > 0, X3 > 0 and 0 < X4 <= {X4_MAX} d")
     uh1, uh2 = uh_ordinates(x4)
     x4max = float(x4.max()) if x4.size else X4_MIN
     k1 = min(max(math.ceil(x4max), 1), N_UH1)
