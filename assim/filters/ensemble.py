@@ -22,8 +22,10 @@ perturbations, whitened innovation ``d``:
   - ``enkf``: ``W_i = g^2 (A + I)^-1 (d + z_i - g Y'_i)``, ``z_i`` standard normal
     observation perturbations (Burgers et al. 1998);
   - ``etkf``: ``W_i = g^2 (A + I)^-1 d + g^3 f(A) Y'_i`` with
-    ``f(a) = ((1 + a)^-1/2 - 1) / a``, which is the symmetric square root transform of
-    Hunt et al. (2007) written in observation space;
+    ``f(a) = ((1 + a)^-1/2 - 1) / a``: the symmetric square root transform of Hunt et al.
+    (2007, eqs. 20-24), ``T = (I + S S^T)^-1/2`` in ensemble space with
+    ``S = g Y' / sqrt(N - 1)``, moved to observation space by the identity
+    ``(I + S S^T)^-1/2 = I + S f(S^T S) S^T`` (from the singular value decomposition of S);
   - ``eakf``: observations one at a time (Anderson 2001), each moving the predicted
     observation and regressing its increment onto the states and the remaining predicted
     observations (Anderson 2003). For one observation it is the ``etkf`` formula.
@@ -36,6 +38,19 @@ ensemble mean, with no sampling noise, while the centred sample covariance (divi
 keeps the expected perturbation variance equal to R. Centring uses only the members of one
 basin on one day, which one call always holds, so the numbers still depend only on the
 draws of that basin and day. ``centre_noise=False`` gives the uncentred scheme.
+
+References
+----------
+Anderson, J. L. (2001). An ensemble adjustment Kalman filter for data assimilation.
+    Mon. Wea. Rev. 129, 2884-2903.
+Anderson, J. L. (2003). A local least squares framework for ensemble filtering.
+    Mon. Wea. Rev. 131, 634-642.
+Bishop, C. H., Etherton, B. J. & Majumdar, S. J. (2001). Adaptive sampling with the ensemble
+    transform Kalman filter. Part I: Theoretical aspects. Mon. Wea. Rev. 129, 420-436.
+Burgers, G., van Leeuwen, P. J. & Evensen, G. (1998). Analysis scheme in the ensemble Kalman
+    filter. Mon. Wea. Rev. 126, 1719-1724.
+Hunt, B. R., Kostelich, E. J. & Szunyogh, I. (2007). Efficient data assimilation for
+    spatiotemporal chaos: a local ensemble transform Kalman filter. Physica D 230, 112-126.
 
 This module imports numpy only.
 """

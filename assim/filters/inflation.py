@@ -12,7 +12,20 @@ options record :class:`Inflation`:
   analysis perturbations become ``(1 - alpha) * X'a + alpha * X'b``.
 
 "Prior" in RTPS and RTPP means the prior that entered the update, i.e. after any
-multiplicative inflation. This module imports numpy only.
+multiplicative inflation.
+
+References
+----------
+Anderson, J. L. & Anderson, S. L. (1999). A Monte Carlo implementation of the nonlinear
+    filtering problem to produce ensemble assimilations and forecasts. Mon. Wea. Rev. 127,
+    2741-2758.
+Whitaker, J. S. & Hamill, T. M. (2012). Evaluating methods to account for system errors in
+    ensemble data assimilation. Mon. Wea. Rev. 140, 3078-3089.
+Zhang, F., Snyder, C. & Sun, J. (2004). Impacts of initial estimate and observation
+    availability on convective-scale data assimilation with an ensemble Kalman filter.
+    Mon. Wea. Rev. 132, 1238-1253.
+
+This module imports numpy only.
 """
 
 from __future__ import annotations

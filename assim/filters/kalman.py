@@ -2,7 +2,16 @@
 
 The reference for every ensemble method: for a linear model with Gaussian errors the
 ensemble filters must reproduce these numbers (in the mean and covariance), and the tests
-check that they do. This module imports numpy only.
+check that they do.
+
+References
+----------
+Kalman, R. E. (1960). A new approach to linear filtering and prediction problems.
+    J. Basic Eng. 82, 35-45.
+Bucy, R. S. & Joseph, P. D. (1968). Filtering for Stochastic Processes with Applications to
+    Guidance. Interscience, New York.
+
+This module imports numpy only.
 """
 
 from __future__ import annotations

@@ -6,6 +6,11 @@
   with exponent and offset), applied to observed and predicted values alike;
   :meth:`Transform.variance` carries an observation error variance into that space.
 
+References
+----------
+Box, G. E. P. & Cox, D. R. (1964). An analysis of transformations. J. R. Stat. Soc. B 26,
+    211-252.
+
 This module imports numpy only.
 """
 
