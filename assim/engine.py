@@ -345,6 +345,27 @@ def plan(inputs: Inputs, settings: Settings, state: EnsembleState | None, until_
 # ---------------------------------------------------------------- the analysis
 
 
+def augmented_bounds(lower: np.ndarray, upper: np.ndarray, theta_lower: np.ndarray,
+                     theta_upper: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Bounds of the augmented analysis vector (updated states, discharge, parameters).
+
+    Parameters
+    ----------
+    lower, upper : (basin, member, n_update) state bounds, mm
+    theta_lower, theta_upper : (n_param,) valid ranges of the estimated parameters
+
+    Returns
+    -------
+    lower, upper : (basin, member, n_update + 1 + n_param); discharge is bounded below by 0
+    """
+    nb, nm, _ = lower.shape
+    npar = len(theta_lower)
+    lo = np.concatenate([lower, np.zeros((nb, nm, 1)), np.broadcast_to(theta_lower, (nb, nm, npar))], axis=-1)
+    hi = np.concatenate([upper, np.full((nb, nm, 1), np.inf), np.broadcast_to(theta_upper, (nb, nm, npar))],
+                        axis=-1)
+    return lo, hi
+
+
 def analyse(
     states: np.ndarray,
     discharge: np.ndarray,
@@ -353,12 +374,14 @@ def analyse(
     obs_var: np.ndarray,
     lower: np.ndarray,
     upper: np.ndarray,
-    theta_lower: np.ndarray | None,
-    theta_upper: np.ndarray | None,
     obs_noise: np.ndarray | None,
     settings: Settings,
 ):
     """One analysis over all basins of a chunk.
+
+    The analysis vector of each member is (updated states, predicted discharge, estimated
+    parameters): the discharge column gives ``discharge_analysis`` and the parameter
+    columns the joint state-parameter update.
 
     Parameters
     ----------
@@ -367,8 +390,7 @@ def analyse(
     theta : (basin, member, n_param) float64 or None, estimated parameters
     observed : (basin,) float64, m3 s-1, NaN where no usable reading
     obs_var : (basin,) float64, (m3 s-1)^2, observation error variance
-    lower, upper : (basin, member, n_update) state bounds, mm
-    theta_lower, theta_upper : (n_param,) parameter ranges
+    lower, upper : (basin, member, n_update + 1 + n_param), from :func:`augmented_bounds`
     obs_noise : (basin, member) standard normals for the perturbed observations (EnKF)
 
     Returns
@@ -377,15 +399,8 @@ def analyse(
     """
     from assim import filters
 
-    nb, nm, nu = states.shape
-    cols = [states, discharge[..., None]]
-    lo = [lower, np.zeros((nb, nm, 1))]
-    hi = [upper, np.full((nb, nm, 1), np.inf)]
-    if theta is not None:
-        npar = theta.shape[-1]
-        cols.append(theta)
-        lo.append(np.broadcast_to(theta_lower, (nb, nm, npar)))
-        hi.append(np.broadcast_to(theta_upper, (nb, nm, npar)))
+    nu = states.shape[-1]
+    cols = [states, discharge[..., None]] + ([] if theta is None else [theta])
     x = np.concatenate(cols, axis=-1)
     transform = _transform(settings)
     if transform is not None:
@@ -398,8 +413,8 @@ def analyse(
         method=settings.method,
         inflation=_inflation(settings),
         gate_sigma=settings.gate_sigma if settings.gate_sigma > 0 else None,
-        lower=np.concatenate(lo, axis=-1),
-        upper=np.concatenate(hi, axis=-1),
+        lower=lower,
+        upper=upper,
         transform=transform,
         obs_noise=None if obs_noise is None else obs_noise[..., None],
     )
@@ -571,7 +586,8 @@ def advance(
     snaps = []
 
     def updated_bounds():
-        return lower.reshape(nb, nm, ns)[..., upd], upper.reshape(nb, nm, ns)[..., upd]
+        return augmented_bounds(lower[:, upd].reshape(nb, nm, len(upd)), upper[:, upd].reshape(nb, nm, len(upd)),
+                                th_lo, th_hi)
 
     lo3, hi3 = updated_bounds()
     for k in range(nt):
@@ -588,18 +604,17 @@ def advance(
         record = collect and k >= k_out0
         if assim and t >= first_analysis and any_blk[k]:
             has = has_blk[:, k]
-            x3 = x.reshape(nb, nm, ns)
             theta = None
             if est:
                 theta = np.stack([params[p] for p in est], axis=-1)
                 zk = np.stack([pt.standard_normal(kk, day) for kk in kernel_keys], axis=-1)
                 theta = liu_west_shrink(theta, s.shrinkage, zk, th_lo, th_hi)
             on = None if obs_noise_blk is None else obs_noise_blk[k]
-            xs, qa, theta_new, a = analyse(x3[..., upd], q, theta, obs_blk[:, k], var_blk[:, k], lo3, hi3,
-                                           th_lo, th_hi, on, s)
-            x3 = x3.copy()
-            x3[..., upd] = xs
-            x = x3.reshape(nb * nm, ns)
+            # x is the model's fresh output: update its columns in place (it may be Fortran-ordered,
+            # so work on the flat (batch, n_state) view, never on a reshaped copy)
+            xs, qa, theta_new, a = analyse(x[:, upd].reshape(nb, nm, len(upd)), q, theta, obs_blk[:, k],
+                                           var_blk[:, k], lo3, hi3, on, s)
+            x[:, upd] = xs.reshape(nb * nm, len(upd))
             if est:
                 for j, p in enumerate(est):
                     params[p] = np.ascontiguousarray(theta_new[..., j])
@@ -642,9 +657,8 @@ def advance(
                 arrays["discharge_analysis"][:, k_o] = qa
                 for p in est:
                     arrays[p][:, k_o] = params[p]
-            x3v = x.reshape(nb, nm, ns)
             for n, col in write_cols:
-                arrays[n][:, k_o] = x3v[..., col]
+                arrays[n][:, k_o] = x[:, col].reshape(nb, nm)
             if added is not None:
                 arrays["state_noise_water"][:, k_o] = added.reshape(nb, nm)
         if t in issues:
@@ -1018,7 +1032,7 @@ def run(
             if progress is not None:
                 progress(t - p.start, total)
     warns = health_warnings(inputs.basin_ids, n_used, n_gated, first_collapse, settings)
-    for w in warns:
+    for w in summarise_warnings(warns):
         _warnings.warn(w, RuntimeWarning, stacklevel=2)
     return RunSummary(state, warns, n_used, n_gated, first_collapse, p)
 
@@ -1038,6 +1052,18 @@ def health_warnings(basin_ids, n_used, n_gated, first_collapse, settings: Settin
         if n and n_gated[i] / n > settings.gating_warn_fraction:
             out.append(f"basin {b}: {n_gated[i]} of {n} readings ({n_gated[i] / n:.0%}) were gated; the "
                        "ensemble may be biased or its spread too small")
+    return out
+
+
+def summarise_warnings(warns: Sequence[str], most: int = 5) -> list[str]:
+    """At most ``most`` lines per kind of warning; the rest are counted."""
+    out = []
+    for kind in ("ensemble collapse", "were gated"):
+        lines = [w for w in warns if kind in w]
+        out += lines[:most]
+        if len(lines) > most:
+            out.append(f"... and {len(lines) - most} more basins with {kind.removeprefix('were ')} readings"
+                       if kind == "were gated" else f"... and {len(lines) - most} more basins with {kind}")
     return out
 
 

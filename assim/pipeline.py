@@ -259,7 +259,7 @@ def run(cfg: Config, mode: str = "assimilate", restart_from=None, until=None) ->
             writer.set_attributes(**_health_attrs(summary, inputs))
     finally:
         bar.close()
-    for w in summary.warnings:
+    for w in engine.summarise_warnings(summary.warnings):
         print(f"warning: {w}", file=sys.stderr)
     write_restart(paths.restart(cfg, mode), _to_restart(summary.state, model, inputs, identity))
     return open_product(path)
