@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 import assim.models as models
-from assim.models import Model, Parameter, StateVariable, WaterBalance
+from assim.models import Model, Parameter, StateVariable, WaterBalance, base
 
 
 def _bucket_step(state, forcing, params):
@@ -39,9 +39,11 @@ def test_unknown_model_names_the_known_ones():
         models.get("gr5x")
 
 
-def test_a_user_model_registers_and_runs_through_the_protocol():
+def test_a_user_model_registers_and_runs_through_the_protocol(monkeypatch):
     """DESIGN.md: a user model that follows the protocol works like a built-in one."""
+    monkeypatch.setattr(base, "_REGISTRY", dict(base._REGISTRY))  # leave no trace
     models.register(BUCKET)
+    assert "test_bucket" in models.available()
     m = models.get("test_bucket")
     params = m.prepare({"k": np.array([0.5, 0.25])})
     state = m.initial_state(params)
