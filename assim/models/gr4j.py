@@ -344,7 +344,7 @@ def _block(S, R, U1, U2, p, e, x1, x3, ix1, px1, ix3, cx, o1, o2,
     mul(o2, pr[:, None], Z2)
     if U2.shape[1]:
         add(Z2[:, :-1], U2, Z2[:, :-1])
-    q1 = Z2[:, 0]
+    q1 = Z2[:, 0]  # Perrin et al. (2003), appendix: Q1 = 0.1 sum_k UH2(k) Pr(t - k + 1)
 
     # Direct branch.
     qd = add(q1, f, f_qd)
@@ -356,7 +356,7 @@ def _block(S, R, U1, U2, p, e, x1, x3, ix1, px1, ix3, cx, o1, o2,
     mul(o1, pr[:, None], Z1)
     if U1.shape[1]:
         add(Z1[:, :-1], U1, Z1[:, :-1])
-    q9 = Z1[:, 0]
+    q9 = Z1[:, 0]  # Perrin et al. (2003), appendix: Q9 = 0.9 sum_k UH1(k) Pr(t - k + 1)
 
     # Routing store.
     rq = add(R, q9, w0)
