@@ -413,12 +413,19 @@ def ensemble_update(
     cols = np.flatnonzero(mask)
     full = cols.size == n
 
-    # Observation space, kept transposed (basin, n_obs, member) so that the member axis is
-    # the fast one; these arrays are small beside the states.
-    Yt = np.ascontiguousarray(np.swapaxes(Y2, 1, 2))
+    serial = method == "eakf" and m > 1
+    exact_after = infl.rtpp > 0.0 or infl.rtps > 0.0 or serial
+    # The vectors contracted with the states in one pass, V (basin, k, member): ones (member
+    # sums), the whitened predicted perturbations Y' and, for enkf, the centred weights W'.
+    # Observation space is kept transposed, the member axis the fast one.
+    k = 1 + m + (m if method == "enkf" and not exact_after else 0)
+    V = np.empty((B, k, N))
+    V[:, 0] = 1.0
+    Ypw = V[:, 1 : 1 + m]
+    Yt = np.swapaxes(Y2, 1, 2)
     ybar = Yt.mean(axis=2)
-    Yp = Yt - ybar[:, :, None]
-    var_y = np.einsum("bmi,bmi->bm", Yp, Yp) / (N - 1)
+    np.subtract(Yt, ybar[:, :, None], out=Ypw)
+    var_y = np.einsum("bmi,bmi->bm", Ypw, Ypw) / (N - 1)
     innovation = y2 - ybar
     innovation_variance = gamma**2 * var_y + r2
 
@@ -436,26 +443,14 @@ def ensemble_update(
     used = usable & ~gated
     active = used.any(axis=-1)
 
-    serial = method == "eakf" and m > 1
-    exact_after = infl.rtpp > 0.0 or infl.rtps > 0.0 or serial
-    # The vectors contracted with the states in one pass: ones (member sums), the whitened
-    # predicted perturbations Y' and, for enkf, the centred weights W'.
-    k = 1 + m + (m if method == "enkf" and not exact_after else 0)
-    V = np.empty((B, k, N))
-    V[:, 0] = 1.0
-
     # Whitening: unused observations get weight 0, so they contribute exactly nothing.
     all_used = bool(used.all())
-    s = (
-        1.0 / np.sqrt(r2)
-        if all_used
-        else np.where(used, 1.0 / np.sqrt(np.where(used, r2, 1.0)), 0.0)
-    )
-    Ypw = V[:, 1 : 1 + m]
     if all_used:
-        np.multiply(Yp, s[:, :, None], out=Ypw)
+        s = 1.0 / np.sqrt(r2)
     else:
-        np.multiply(np.where(used[:, :, None], Yp, 0.0), s[:, :, None], out=Ypw)
+        s = np.where(used, 1.0 / np.sqrt(np.where(used, r2, 1.0)), 0.0)
+        Ypw[~used] = 0.0
+    Ypw *= s[:, :, None]
     dw = np.where(used, innovation, 0.0) * s
     A = gamma**2 * np.einsum("bmi,bki->bmk", Ypw, Ypw) / (N - 1)
 
