@@ -317,6 +317,43 @@ def _bounds(bound, name, cols, full, shape, B):
     return np.broadcast_to(arr, shape[:-1] + (cols.size,)).reshape(B, shape[-2], cols.size)
 
 
+def _clip(Xa, lo, hi, active):
+    """Clip the analysis (B, N, n_u) in place to its bounds, basins ``active`` only.
+
+    Returns the clipped water (B, n_u), mm summed over members (positive where members were
+    raised to a lower bound), and which basins had any member outside (B,) bool."""
+    B = Xa.shape[0]
+    outside = np.zeros(B, bool)
+    if lo is not None:
+        outside |= np.less(Xa, lo).any(axis=(1, 2))
+    if hi is not None:
+        outside |= np.greater(Xa, hi).any(axis=(1, 2))
+    outside &= active
+    clipped = np.zeros((B, Xa.shape[2]))
+    count = int(outside.sum())
+    if 0 < count <= max(1, B // 8):
+        # Few basins out of bounds: clip just those, the clipped water exactly.
+        raw = Xa[outside]
+        fixed = raw
+        if lo is not None:
+            fixed = np.maximum(fixed, lo[outside])
+        if hi is not None:
+            fixed = np.minimum(fixed, hi[outside])
+        Xa[outside] = fixed
+        clipped[outside] = (fixed - raw).sum(axis=1)
+    elif count:
+        # Many: clip in place; a column with nothing clipped has bitwise the same member
+        # sum before and after, so its clipped water is exactly zero. Inactive basins are
+        # restored by the caller.
+        before = _sum(Xa)
+        if lo is not None:
+            np.maximum(Xa, lo, out=Xa)
+        if hi is not None:
+            np.minimum(Xa, hi, out=Xa)
+        clipped = np.where(outside[:, None], _sum(Xa) - before, 0.0)
+    return clipped, outside
+
+
 def ensemble_update(
     states,
     predicted,
@@ -538,39 +575,11 @@ def ensemble_update(
         Xa = xa_bar[:, None, :] + Xap
 
     clipped = np.zeros((B, n))
-    redo = np.zeros(B, bool)  # basins whose spread after is recomputed from deviations
+    outside = np.zeros(B, bool)
     if lower is not None or upper is not None:
         lo = None if lower is None else _bounds(lower, "lower", cols, full, X.shape, B)
         hi = None if upper is None else _bounds(upper, "upper", cols, full, X.shape, B)
-        outside = np.zeros(B, bool)
-        if lo is not None:
-            outside |= np.less(Xa, lo).any(axis=(1, 2))
-        if hi is not None:
-            outside |= np.greater(Xa, hi).any(axis=(1, 2))
-        outside &= active
-        count = int(outside.sum())
-        if 0 < count <= max(1, B // 8):
-            # Few basins out of bounds: clip just those, the clipped water exactly.
-            raw = Xa[outside]
-            fixed = raw
-            if lo is not None:
-                fixed = np.maximum(fixed, lo[outside])
-            if hi is not None:
-                fixed = np.minimum(fixed, hi[outside])
-            Xa[outside] = fixed
-            part = np.zeros((count, n))
-            part[:, cols] = (fixed - raw).sum(axis=1)
-            clipped[outside] = part
-        elif count:
-            # Many: clip in place; a column with nothing clipped has bitwise the same
-            # member sum before and after, so its clipped water is exactly zero.
-            before = _sum(Xa)
-            if lo is not None:
-                np.maximum(Xa, lo, out=Xa)
-            if hi is not None:
-                np.minimum(Xa, hi, out=Xa)
-            clipped[:, cols] = np.where(outside[:, None], _sum(Xa) - before, 0.0)
-        redo |= outside
+        clipped[:, cols], outside = _clip(Xa, lo, hi, active)
 
     if full:
         out = Xa
@@ -584,6 +593,7 @@ def ensemble_update(
     # come from the small-quantity formula unless clipping, relaxation, the serial path or
     # cancellation call for the two-pass computation.
     var_after = var_b.copy()
+    redo = outside.copy()  # basins whose spread after is recomputed from the states
     if exact_after:
         redo = active
     else:
