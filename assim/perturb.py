@@ -55,13 +55,22 @@ MAX_LOGIT_SD = 1.0
 
 def _mix(x: np.ndarray) -> np.ndarray:
     """splitmix64 finaliser of Steele, Lea & Flood (2014), applied elementwise to uint64."""
-    x = np.asarray(x, dtype=np.uint64)
+    shape = np.shape(x)
+    return _mix_inplace(np.array(x, dtype=np.uint64, ndmin=1)).reshape(shape)
+
+
+def _mix_inplace(x: np.ndarray) -> np.ndarray:
+    """:func:`_mix` overwriting ``x`` (a uint64 array), with one temporary."""
     with np.errstate(over="ignore"):
-        x = x ^ (x >> _S30)
-        x = x * _M1
-        x = x ^ (x >> _S27)
-        x = x * _M2
-        return x ^ (x >> _S31)
+        t = x >> _S30
+        x ^= t
+        x *= _M1
+        np.right_shift(x, _S27, out=t)
+        x ^= t
+        x *= _M2
+        np.right_shift(x, _S31, out=t)
+        x ^= t
+    return x
 
 
 def _stable_hash(text: str) -> np.uint64:
@@ -125,9 +134,13 @@ def standard_normal(ckeys: np.ndarray, days) -> np.ndarray:
     with np.errstate(over="ignore"):
         dh = _mix((d + np.uint64(0x632BE59BD9B4E019)) * _GOLDEN)
     dh = dh.reshape(dh.shape + (1,) * np.ndim(ckeys))
-    h = _mix(ckeys ^ dh)
-    u = ((h >> _S11).astype(np.float64) + 0.5) * _TWO_M53  # in (0, 1), never 0 or 1
-    return ndtri(u)
+    h = _mix_inplace(np.array(ckeys ^ dh, dtype=np.uint64, ndmin=1))
+    h >>= _S11
+    u = h.astype(np.float64)
+    del h
+    u += 0.5
+    u *= _TWO_M53  # in (0, 1), never 0 or 1
+    return ndtri(u, out=u).reshape(np.shape(dh)[: np.ndim(d)] + np.shape(ckeys))
 
 
 # ---------------------------------------------------------------- multiplicative AR(1) error
