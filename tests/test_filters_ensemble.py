@@ -522,8 +522,9 @@ def test_spreads_stay_exact_when_sums_of_squares_would_cancel(method):
     missing_fraction=st.floats(0, 1),
 )
 def test_property_shapes_and_unchanged_when_missing(batch, N, n, m, method, seed, missing_fraction):
-    """Any batch shape, N >= 2, any n_state and n_obs: output shapes follow the input and a
-    basin with every reading missing is returned bit for bit (DESIGN.md, Filters)."""
+    """Any batch shape, N >= 2, any n_state and n_obs: output shapes follow the input, a
+    basin with every reading missing is returned bit for bit (DESIGN.md, Filters) and the
+    reported spreads are those of the states (numpy.std, ddof = 1)."""
     rng = np.random.default_rng(seed)
     X = rng.normal(size=batch + (N, n))
     Y = X[..., :1] * rng.normal(size=(m,)) + rng.normal(size=batch + (N, m))
@@ -536,6 +537,8 @@ def test_property_shapes_and_unchanged_when_missing(batch, N, n, m, method, seed
     assert a.updated.shape == batch
     none = np.isnan(y).all(axis=-1)
     np.testing.assert_array_equal(_bits(a.states[none]), _bits(X[none]))
+    np.testing.assert_allclose(a.spread_before, X.std(axis=-2, ddof=1), rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(a.spread_after, a.states.std(axis=-2, ddof=1), rtol=1e-8, atol=1e-10)
     assert np.all(np.isfinite(a.states))
     np.testing.assert_array_equal(a.updated, ~none)
 
