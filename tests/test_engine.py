@@ -369,3 +369,33 @@ def test_climatology_index_cycles_past_years():
     assert list(got[0]) == ["2003-03-01", "2002-03-01", "2001-03-01", "2003-03-01", "2002-03-01"]
     with pytest.raises(RunError):
         engine.climatology_index(days[:300], np.array([days[10]]), 3, np.arange(2))
+
+
+def test_forecast_issue_forcings():
+    """Operational forecast from an end state: with observed forcing it continues the open
+    loop exactly; with a forcing file member m takes file member m mod n; with climatology
+    member m takes the weather of a past year (:func:`engine.climatology_index`)."""
+    rng = np.random.default_rng(6)
+    nt = 3 * 365
+    p, e = synthetic_weather(rng, 2, nt)
+    params = {"x1": [300.0, 420.0], "x2": [0.0, 0.3], "x3": [80.0, 100.0], "x4": [1.5, 2.0]}
+    inputs = make_inputs(GR4J, params, p, e, day0=11000)
+    st = engine.Settings(mode="openloop", members=6, seed=2, float32=False, scheduler="synchronous")
+    whole = Collect()
+    engine.run(GR4J, inputs, st, whole)
+    issue = int(inputs.days[800])
+    part = engine.run(GR4J, inputs, st, None, until_day=issue)
+    q = engine.forecast_issue(GR4J, inputs, st, part.state, 7, "observed")
+    np.testing.assert_array_equal(q, whole.get("discharge")[:, 801:808])
+    # identical members (no perturbation), so that members sharing forcing agree
+    st0 = dataclasses.replace(st, precipitation=pt.LognormalAR1(0.0, 0.5), pet=pt.LognormalAR1(0.0, 0.5))
+    same = engine.run(GR4J, inputs, st0, None, until_day=issue).state
+    ff = {"precipitation": rng.gamma(1.0, 5.0, (2, 7, 4)), "pet": np.full((2, 7, 4), 2.0)}
+    qf = engine.forecast_issue(GR4J, inputs, st0, same, 7, "file", ff)
+    np.testing.assert_array_equal(qf[..., 1], qf[..., 5])  # members 1 and 5 take file member 1
+    assert not np.array_equal(qf[..., 0], qf[..., 1])
+    clim = dataclasses.replace(inputs, climatology=engine.Climatology(inputs.days, p, e))
+    qc = engine.forecast_issue(GR4J, clim, st0, same, 7, "climatology")
+    assert qc.shape == (2, 7, 6)
+    np.testing.assert_array_equal(qc[..., 0], qc[..., 2])  # two past years in the record: cycled
+    assert not np.array_equal(qc[..., 0], qc[..., 1])
