@@ -71,6 +71,7 @@ def test_one_step_rain_day_by_hand():
     Qd = max(0, Q1 + F) = 0.2031392973; Q = Qr + Qd = 0.7634946459; exchange = 2F.
     """
     new, f = _one(_state(50.0, 25.0), 10.0, 2.0, _params(100, 1, 50, 1.0))
+    assert tuple(f) == MODEL.fluxes  # every declared flux, nothing else
     expected_state = {0: 55.70498100687396, 1: 26.593550092889878, C2: 0.11475094965630209}
     for col, value in expected_state.items():
         assert new[0, col] == pytest.approx(value, rel=1e-12)

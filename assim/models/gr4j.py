@@ -414,12 +414,13 @@ def step(
         out[:, _C1 + m1:_C2 - 1] = 0.0  # slots no element of this batch can fill
     if m2 < N_SLOT2:
         out[:, _C2 + m2:] = 0.0
-    fluxes = np.empty((len(FLUXES) - 2, n))
+    fl = np.empty((len(FLUXES) - 2, n))
+    f_pn, f_ae, f_perc, f_ex, f_qr, f_qd, f_q = fl
     arrays = (
         state[:, 0], state[:, 1], state[:, _C1:_C1 + m1], state[:, _C2:_C2 + m2], p, e,
         *(q[k] for k in _PREPARED_ROWS), o1, o2,
         out[:, 0], out[:, 1:2 + m1], out[:, _C2 - 1:_C2 + m2],
-        *fluxes, q["_zero"], q["_one"],
+        f_pn, f_ae, f_perc, f_ex, f_qr, f_qd, f_q, q["_zero"], q["_one"],
     )
     clear = m1 < N_SLOT1
     if n <= BLOCK:
@@ -429,7 +430,17 @@ def step(
         for i0 in range(0, n, BLOCK):
             i1 = min(i0 + BLOCK, n)
             _block(*(a[i0:i1] for a in arrays), w[:, : i1 - i0], clear)
-    return out, {"precipitation": p, "pet": e, **dict(zip(FLUXES[2:], fluxes, strict=True))}
+    return out, {
+        "precipitation": p,
+        "pet": e,
+        "net_rainfall": f_pn,
+        "actual_evaporation": f_ae,
+        "percolation": f_perc,
+        "exchange": f_ex,
+        "routed_runoff": f_qr,
+        "direct_runoff": f_qd,
+        "runoff": f_q,
+    }
 
 
 def _as_batch(x, n: int) -> np.ndarray:
