@@ -75,11 +75,13 @@ def test_general_path_equals_one_observation_path():
     dw = rng.normal(size=(B, 1))
     z = rng.normal(size=(B, 1, N))
     for method in ("enkf", "etkf"):
-        general, P = ens._weights(method, dw, Ypw, A, z, g)
-        one, p = ens._weights_one(method, dw[:, 0], Ypw[:, 0], A[:, 0, 0], z[:, 0], g)
+        general, P, mean_w = ens._weights(method, dw, Ypw, A, z, g)
+        one, p, mean_one = ens._weights_one(method, dw[:, 0], Ypw[:, 0], A[:, 0, 0], z[:, 0], g)
         np.testing.assert_allclose(general[:, 0], one, rtol=1e-12, atol=1e-14)
         if method == "etkf":
             np.testing.assert_allclose(P[:, 0, 0], p, rtol=1e-12)
+            np.testing.assert_allclose(mean_w[:, 0], mean_one, rtol=1e-12)
+            np.testing.assert_allclose(one.mean(axis=1), mean_one, rtol=1e-12, atol=1e-14)
 
     X, H, Y, y, r = _linear_problem(rng, 5, 12, 3, 1)
     fast = ensemble_update(X, Y, y, r, method="eakf", inflation=Inflation(multiplicative=g))

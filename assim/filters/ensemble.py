@@ -245,32 +245,36 @@ def _weights_one(method, dw, yp, a, z, gamma):
     """Member weights for one observation: the general formulas with n_obs = 1.
 
     dw (B,), yp (B, N), a (B,), z (B, N) or None. Returns W (B, N) and, for the
-    deterministic methods, the factor p (B,) with W - mean(W) = p yp (None for enkf)."""
+    deterministic methods, the factor p (B,) with W = mean_w + p yp, and mean_w (B,)
+    (both None for enkf)."""
     if method == "enkf":
         w = yp * -gamma
         w += z
         w += dw[:, None]
         w *= (gamma**2 / (1.0 + a))[:, None]
-        return w, None
+        return w, None, None
     mean_w = gamma**2 * dw / (1.0 + a)  # Hunt et al. (2007), eq. 20
     p = gamma**3 * _sqrt_weight(a)
-    return mean_w[:, None] + p[:, None] * yp, p  # Hunt et al. (2007), eq. 24
+    w = yp * p[:, None]  # Hunt et al. (2007), eq. 24
+    w += mean_w[:, None]
+    return w, p, mean_w
 
 
 def _weights(method, dw, Ypw, A, z, gamma):
     """Member weights for n_obs observations, transposed: W (B, n_obs, N).
 
     dw (B, m), Ypw (B, m, N), A (B, m, m), z (B, m, N) or None. For the deterministic
-    methods also returns P (B, m, m), symmetric, with W - mean(W) = P Ypw (None for enkf)."""
+    methods also returns P (B, m, m), symmetric, and mean_w (B, m) with
+    W = mean_w + P Ypw (both None for enkf)."""
     m = A.shape[-1]
     if method == "enkf":
         rhs = dw[:, :, None] + z - gamma * Ypw
-        return gamma**2 * np.linalg.solve(A + np.eye(m), rhs), None  # Burgers et al. (1998)
+        return gamma**2 * np.linalg.solve(A + np.eye(m), rhs), None, None  # Burgers et al. (1998)
     lam, V = np.linalg.eigh(A)
     inv = np.einsum("bjk,bk,blk->bjl", V, 1.0 / (1.0 + lam), V)
     mean_w = gamma**2 * np.einsum("bjl,bl->bj", inv, dw)  # Hunt et al. (2007), eq. 20
     P = gamma**3 * np.einsum("bjk,bk,blk->bjl", V, _sqrt_weight(lam), V)
-    return mean_w[:, :, None] + P @ Ypw, P  # Hunt et al. (2007), eq. 24
+    return mean_w[:, :, None] + P @ Ypw, P, mean_w  # Hunt et al. (2007), eq. 24
 
 
 def _eakf_serial(Xu, xbar_u, Ypw, ybar_w, y_w, used, gamma):
@@ -502,18 +506,18 @@ def ensemble_update(
             if not all_used:
                 z = np.where(used[:, :, None], z, 0.0)
         if m == 1:
-            w, p = _weights_one(
-                method, dw[:, 0], Ypw[:, 0], A[:, 0, 0], None if z is None else z[:, 0], gamma
-            )
+            zj = None if z is None else z[:, 0]
+            w, p, wbar = _weights_one(method, dw[:, 0], Ypw[:, 0], A[:, 0, 0], zj, gamma)
             W = w[:, None, :]
+            P = None if p is None else p[:, None, None]
         else:
-            W, P = _weights(method, dw, Ypw, A, z, gamma)
-        wbar = W.mean(axis=2)
-        if k > 1 + m:
-            Wc = V[:, 1 + m :]
+            W, P, wbar = _weights(method, dw, Ypw, A, z, gamma)
+        if method == "enkf":
+            wbar = W.mean(axis=2)
+            Wc = W - wbar[:, :, None] if exact_after else V[:, 1 + m :]
             np.subtract(W, wbar[:, :, None], out=Wc)
         else:
-            Wc = W - wbar[:, :, None]
+            wbar = wbar.reshape(B, m)
 
     # One pass over the prior states for the member sums, X^T Y' and (enkf) X^T W'.
     sums = _cross(X2, V)
@@ -550,11 +554,11 @@ def ensemble_update(
                 WX = sums[:, 1 + m :] - Wc.sum(axis=2)[:, :, None] * xbar[:, None, :]
                 if not full:
                     WX = WX[:, :, cols]
-            elif m == 1:
-                WX = (N - 1) * p[:, None, None] * Ct
+                WtW = np.einsum("bmi,bki->bmk", Wc, Wc)
             else:
+                # W' = P Y', so W' X' = (N - 1) P C^T and W' W'^T = (N - 1) P A P / g^2.
                 WX = (N - 1) * (P @ Ct)
-            WtW = np.einsum("bmi,bki->bmk", Wc, Wc)
+                WtW = ((N - 1) / gamma**2) * (P @ A @ P)
             var_a = (
                 gamma**2 * (N - 1) * var_u
                 + 2.0 * gamma * np.einsum("bmn,bmn->bn", Ct, WX)
