@@ -106,12 +106,14 @@ def executor(scheduler: str = "threads", workers: int = 0) -> Iterator[_Executor
 
 
 class ProgressBar:
-    """A one-line progress bar on ``stream``, drawn only when it is a terminal.
+    """A one-line progress bar on ``stream``, drawn only when it is a terminal and the run
+    has lasted ``delay`` seconds (short runs stay quiet).
 
     Call the instance with (done, total); :meth:`close` ends the line.
     """
 
-    def __init__(self, label: str, stream=None, width: int = 30, min_interval: float = 0.2):
+    def __init__(self, label: str, stream=None, width: int = 30, min_interval: float = 0.2,
+                 delay: float = 2.0):
         self.label = label
         self.stream = sys.stderr if stream is None else stream
         self.width = width
@@ -120,11 +122,14 @@ class ProgressBar:
         self._t0 = time.monotonic()
         self._last = 0.0
         self._drawn = False
+        self.delay = delay
 
     def __call__(self, done: int, total: int) -> None:
         if not self.enabled:
             return
         now = time.monotonic()
+        if now - self._t0 < self.delay and not self._drawn:
+            return
         if done < total and now - self._last < self.min_interval:
             return
         self._last = now

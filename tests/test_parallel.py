@@ -129,8 +129,13 @@ def test_progress_bar_quiet_unless_terminal():
         def isatty(self):
             return True
 
+    short = Tty()
+    bar = parallel.ProgressBar("run", stream=short)  # a run shorter than the 2 s delay
+    bar(10, 10)
+    bar.close()
+    assert short.getvalue() == ""
     loud = Tty()
-    bar = parallel.ProgressBar("run", stream=loud, min_interval=0.0)
+    bar = parallel.ProgressBar("run", stream=loud, min_interval=0.0, delay=0.0)
     bar(5, 10)
     bar(10, 10)
     bar.close()
