@@ -501,10 +501,11 @@ def ensemble_update(
         if method == "enkf":
             z = noise.reshape(B, N, m) if noise is not None else rng.standard_normal((B, N, m))
             z = np.swapaxes(z, 1, 2)
-            if centre_noise:
-                z = z - z.mean(axis=2, keepdims=True)
-            if not all_used:
+            if not all_used and m > 1:  # (with one observation unused basins are restored)
                 z = np.where(used[:, :, None], z, 0.0)
+            if centre_noise:
+                # Centring z_i - mean(z) is folded into the innovation: d - mean(z) + z_i.
+                dw = dw - z.mean(axis=2)
         if m == 1:
             zj = None if z is None else z[:, 0]
             w, p, wbar = _weights_one(method, dw[:, 0], Ypw[:, 0], A[:, 0, 0], zj, gamma)
