@@ -222,7 +222,9 @@ def _variance(a: np.ndarray, total: np.ndarray, squares: np.ndarray) -> np.ndarr
     with np.errstate(invalid="ignore"):
         redo = ~(mean * mean <= _CANCELLATION_RATIO * var)
     redo = redo.any(axis=-1) & np.isfinite(squares).all(axis=-1)
-    if redo.any():
+    if redo.mean() > 0.25:
+        var[redo] = _exact_variance(a)[redo]
+    elif redo.any():
         var[redo] = _exact_variance(a[redo])
     return var
 
