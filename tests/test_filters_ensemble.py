@@ -1,5 +1,7 @@
 """Tests of assim.filters.ensemble: one ensemble Kalman analysis for many basins."""
 
+import itertools
+
 import numpy as np
 import pytest
 from hypothesis import given, settings
@@ -496,16 +498,19 @@ def test_spreads_stay_exact_when_sums_of_squares_would_cancel(method):
     basin and an RTPS run: spread_before and spread_after still equal the two-pass
     numpy.std (ddof = 1) to 1e-9."""
     rng = np.random.default_rng(16)
-    X, H, Y, y, r = _linear_problem(rng, 4, 20, 3, 1)
-    X[:, :, 2] = 1e4 + 1e-2 * rng.standard_normal((4, 20))
+    X, H, Y, y, r = _linear_problem(rng, 8, 20, 3, 1)
+    X[:6, :, 2] = 1e4 + 1e-2 * rng.standard_normal((6, 20))  # most basins: whole-batch path
     X[1, :, 1] -= X[1, :, 1].min() + 1.0  # basin 1 sits near the lower bound of 0 ...
     Y = np.einsum("bmn,bin->bim", H, X)
     y[1] = Y[1].mean(axis=0) - 3 * np.sign(H[1, 0, 1]) * Y[1].std(axis=0)  # ... and is pushed below
-    for infl in (None, Inflation(rtps=0.5)):
+    for infl, few in itertools.product((None, Inflation(rtps=0.5)), (False, True)):
+        Xi = X.copy()
+        if few:  # one collapsed basin only: the gathered path
+            Xi[[0, 2, 3, 4, 5], :, 2] = rng.normal(50, 5, (5, 20))
         a = ensemble_update(
-            X, Y, y, r, method=method, rng=rng, lower=np.array([-np.inf, 0.0, 0.0]), inflation=infl
+            Xi, Y, y, r, method=method, rng=rng, lower=np.array([-np.inf, 0.0, 0.0]), inflation=infl
         )
-        np.testing.assert_allclose(a.spread_before, X.std(axis=1, ddof=1), rtol=1e-9)
+        np.testing.assert_allclose(a.spread_before, Xi.std(axis=1, ddof=1), rtol=1e-9)
         np.testing.assert_allclose(a.spread_after, a.states.std(axis=1, ddof=1), rtol=1e-9)
         assert a.clipped[1, 1] > 0
 
