@@ -71,7 +71,7 @@ __all__ = ["METHODS", "Analysis", "ensemble_update"]
 METHODS = ("enkf", "etkf", "eakf")
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Analysis:
     """Result of one :func:`ensemble_update`.
 
