@@ -20,12 +20,11 @@ from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
 
+import baseline_loop as loop
 import numpy as np
 from filterpy.kalman import EnsembleKalmanFilter
 
 from assim import perturb
-
-import baseline_loop as loop
 
 
 class _Members:
@@ -81,7 +80,8 @@ def run(
     n_basin, n_day = precipitation.shape
     keys = perturb.basin_keys(basin_ids)
     ids = np.arange(members)
-    np.random.seed(seed % 2**32)  # filterpy draws its perturbations from the global generator
+    # filterpy draws its perturbations from numpy's global generator: seed it for a repeatable run
+    np.random.seed(seed % 2**32)  # noqa: NPY002
     discharge = np.empty((n_basin, n_day, members))
     analysis = np.empty((n_basin, n_day, members))
     end = np.empty((n_basin, members, loop.N_STATE))

@@ -1,0 +1,461 @@
+"""The benchmark suite behind ``make bench``: one run, one table, assim against its baselines.
+
+``python benchmarks/run.py`` measures, in this order and in this one process (engine cases in
+fresh subprocesses, for their own peak memory):
+
+1. GR4J member-steps per second at batch 100 and 100,000 (``bench_models.run``), against the
+   per-member Python loop of ``baseline_loop.gr4j_step``;
+2. one analysis of 10,000 basins x 128 members x 10 states x 1 observation for enkf, eakf and
+   etkf (``bench_filters.run``), and the stochastic EnKF against the member loop of
+   ``baseline_loop.enkf_update`` on the same arrays;
+3. the engine (``bench_engine.run``): one basin of 100 members over 20 years, and the
+   1,000-basin x 128-member x 3-year run (rate and peak memory), plus the same run on one
+   worker and on two processes for the dask scaling;
+4. whole assimilation runs against the baselines in the same configuration (stochastic EnKF,
+   no innovation gate, one core): one basin of 100 members over 20 years and 100 basins of
+   100 members over one year, for assim, ``baseline_loop.run`` and ``baseline_filterpy.run``;
+5. the demo workflow: ``snakemake`` on a copy of ``config/config.yaml`` in a temporary folder
+   (raw data from the repository's ``sample_basin``), package installation excluded.
+
+It prints the machine and one table, and writes the table to ``benchmarks/out/latest.md``
+and every figure to ``benchmarks/out/latest.json``. ``--quick`` runs small sizes (a smoke
+test of the suite, under a minute, without the demo unless ``--demo``; its figures are not
+for quoting). Threads of the BLAS
+libraries are pinned to one: every "one core" figure runs in one thread, and the two-worker
+figures use exactly two.
+"""
+
+from __future__ import annotations
+
+import os
+
+for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ[_var] = "1"
+
+import argparse  # noqa: E402
+import json  # noqa: E402
+import platform  # noqa: E402
+import subprocess  # noqa: E402
+import sys  # noqa: E402
+import tempfile  # noqa: E402
+import time  # noqa: E402
+import warnings  # noqa: E402
+from dataclasses import asdict, dataclass  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+HERE = Path(__file__).resolve().parent
+REPO = HERE.parent
+sys.path.insert(0, str(HERE))
+sys.path.insert(1, str(REPO))
+
+import baseline_filterpy  # noqa: E402
+import baseline_loop  # noqa: E402
+import bench_engine  # noqa: E402
+import bench_filters  # noqa: E402
+import bench_models  # noqa: E402
+import numpy as np  # noqa: E402
+import yaml  # noqa: E402
+
+from assim import engine, models  # noqa: E402
+from assim import perturb as pt  # noqa: E402
+from assim.filters import ensemble_update  # noqa: E402
+
+OUT = HERE / "out"
+
+
+# ---------------------------------------------------------------- the table
+
+
+@dataclass
+class Row:
+    """One line of the table. ``ratio`` is assim time / baseline time for the same work."""
+
+    measure: str
+    configuration: str
+    assim: str
+    baseline: str = ""
+    ratio: float | None = None
+    target: str = ""
+    met: bool | None = None
+
+    def cells(self) -> list[str]:
+        ratio = speedup = "-"
+        if self.ratio is not None:
+            x = 1.0 / self.ratio
+            ratio = f"{self.ratio:.3g}"
+            speedup = f"{x:,.0f}x" if x >= 10 else f"{x:.2g}x"
+        status = "-" if self.met is None else ("met" if self.met else "MISSED")
+        return [self.measure, self.configuration, self.assim, self.baseline or "-", ratio, speedup,
+                self.target or "-", status]
+
+
+HEADER = ["measure", "configuration", "assim", "baseline", "assim/baseline time", "speed-up",
+          "target", "status"]
+
+
+def markdown(rows: list[Row]) -> str:
+    lines = ["| " + " | ".join(HEADER) + " |", "|" + "---|" * len(HEADER)]
+    lines += ["| " + " | ".join(r.cells()) + " |" for r in rows]
+    return "\n".join(lines)
+
+
+def machine() -> dict[str, str]:
+    """CPU model, usable cores, memory, Python and numpy versions, commit and date."""
+    cpu = "unknown"
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    try:
+        kb = int(next(ln for ln in Path("/proc/meminfo").read_text().splitlines()
+                      if ln.startswith("MemTotal")).split()[1])
+        memory = f"{kb / 1024**2:.1f} GiB"
+    except (OSError, StopIteration):
+        memory = "unknown"
+    try:
+        commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=REPO, capture_output=True,
+                                text=True, check=True).stdout.strip()
+    except (OSError, subprocess.CalledProcessError):
+        commit = "unknown"
+    return {
+        "cpu": cpu,
+        "cores": str(len(os.sched_getaffinity(0))),
+        "memory": memory,
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "os": platform.platform(),
+        "commit": commit,
+        "date": time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime()),
+    }
+
+
+def _rate(x: float) -> str:
+    return f"{x / 1e6:.3g} M member-steps/s" if x >= 1e5 else f"{x / 1e3:.3g} k member-steps/s"
+
+
+def _log(msg: str) -> None:
+    print(f"[{time.strftime('%H:%M:%S')}] {msg}", file=sys.stderr, flush=True)
+
+
+# ---------------------------------------------------------------- 1. GR4J
+
+
+def loop_gr4j_rate(members: int, n_days: int, seed: int = 1) -> float:
+    """Member-steps per second of the per-member loop GR4J (one thread, CPU time)."""
+    m = models.get("gr4j")
+    rng = np.random.default_rng(seed)
+    params = [[rng.uniform(p.low, p.high) for p in m.parameters] for _ in range(members)]
+    p, e = bench_models._forcing(rng, n_days, members)
+    p, e = p.tolist(), e.tolist()
+    members_uh = [baseline_loop.uh_ordinates(x4) for *_, x4 in params]
+    states = [baseline_loop.initial_state(x1, x3) for x1, _, x3, _ in params]
+    start = time.process_time()
+    for t in range(n_days):
+        pt_, et = p[t], e[t]
+        for i in range(members):
+            x1, x2, x3, _ = params[i]
+            states[i], _ = baseline_loop.gr4j_step(states[i], pt_[i], et[i], x1, x2, x3, *members_uh[i])
+    return members * n_days / (time.process_time() - start)
+
+
+def gr4j_rows(quick: bool, figures: dict) -> list[Row]:
+    _log("GR4J (bench_models)")
+    f = bench_models.run(quick=quick)
+    loop_days = 60 if quick else 365
+    loop = loop_gr4j_rate(100, loop_days)
+    figures["gr4j"] = {**f, "loop_member_steps_per_s": loop}
+    rows = []
+    for batch, target in bench_models.TARGETS.items():
+        rate = f[f"gr4j_batch_{batch}"]
+        rows.append(Row(f"GR4J step, batch {batch:,}", f"{f'{batch:,}'} members stepped together; "
+                        f"loop: 100 members x {loop_days} d, one member at a time; one core, CPU time",
+                        _rate(rate), f"loop {_rate(loop)}", loop / rate,
+                        f">= {target / 1e6:g} M member-steps/s", rate >= target))
+    return rows
+
+
+# ---------------------------------------------------------------- 2. the analysis
+
+
+def _best(fn, repeat: int) -> float:
+    best = np.inf
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        fn()
+        best = min(best, time.perf_counter() - t0)
+    return best
+
+
+def analysis_rows(quick: bool, figures: dict) -> list[Row]:
+    _log("ensemble analysis (bench_filters)")
+    if quick:
+        f = {"target": {m: bench_filters.time_analysis(m, 10_000, 128, repeat=2) for m in bench_filters.METHODS}}
+    else:
+        f = bench_filters.run(quick=False)
+    rows = []
+    for method in ("enkf", "eakf", "etkf"):
+        t = f["target"][method]
+        wall, cpu = (t["wall_ms"], t["cpu_ms"]) if isinstance(t, dict) else (t, None)
+        has_target = method in ("enkf", "eakf")
+        rows.append(Row(f"analysis, {method}", "10,000 basins x 128 members x 10 states x 1 obs, one core",
+                        f"{wall:.1f} ms wall" + ("" if cpu is None else f" ({cpu:.1f} ms CPU)"),
+                        target="<= 50 ms" if has_target else "", met=(wall <= 50.0) if has_target else None))
+    # The stochastic EnKF against the member loop, same arrays (the loop costs the same per basin,
+    # so the quick run uses fewer basins for both).
+    n_basin = 1_000 if quick else 10_000
+    _log(f"EnKF analysis against the member loop, {n_basin} basins")
+    states, predicted, observed, variance, noise = bench_filters._problem(n_basin, 128, 10, 1)
+    t_assim = _best(lambda: ensemble_update(states, predicted, observed, variance, method="enkf",
+                                            obs_noise=noise), 3)
+    t_loop = _best(lambda: baseline_loop.enkf_update(states, predicted, observed, variance, noise), 1)
+    figures["analysis"] = {**f, "loop_compare": {"basins": n_basin, "assim_s": t_assim, "loop_s": t_loop}}
+    rows.append(Row("EnKF analysis vs member loop", f"{n_basin:,} basins x 128 x 10 x 1, same arrays and "
+                    "perturbations; loop: basin by basin, member by member", f"{1e3 * t_assim:.1f} ms",
+                    f"loop {t_loop:.2f} s", t_assim / t_loop))
+    return rows
+
+
+# ---------------------------------------------------------------- 3. the engine
+
+
+def engine_rows(quick: bool, figures: dict) -> list[Row]:
+    _log("engine (bench_engine): single basin, scale run, scaling")
+    big = (20, 64, 0.25) if quick else (1000, 128, 3)
+    scale_kw = dict(n_basin=big[0], members=big[1], years=big[2], basin_chunk=125 if not quick else 10,
+                    block_days=30, write=False, states=False)
+    if quick:
+        years = 1
+        single = [bench_engine._in_subprocess(n_basin=1, members=100, years=years, scheduler="synchronous",
+                                              workers=1, basin_chunk=1, block_days=365 * years + 1, write=w,
+                                              states=True) for w in (False, True)]
+        many = [bench_engine._in_subprocess(scheduler="threads", workers=2, **dict(scale_kw, write=w))
+                for w in (False, True)]
+        f = {"single_basin": single, "many_basins": many}
+    else:
+        f = bench_engine.run(quick=False)
+    _log("dask scaling: 1 thread, 2 processes")
+    one = bench_engine._in_subprocess(scheduler="threads", workers=1, **scale_kw)
+    try:
+        procs = bench_engine._in_subprocess(scheduler="processes", workers=2, **scale_kw)
+    except subprocess.CalledProcessError as exc:
+        procs = {"error": (exc.stderr or "")[-300:]}
+    figures["engine"] = {**f, "threads_1": one, "processes_2": procs}
+
+    rows = []
+    for r in f["single_basin"]:
+        what = "with analysis.nc (states)" if r["write"] else "no file"
+        rows.append(Row(f"single basin, {what}", f"1 basin x {r['members']} members x {r['days']} d, daily "
+                        "readings, enkf; synchronous, one core", f"{r['wall_s']:.2f} s wall "
+                        f"({r['cpu_s']:.2f} s CPU)", target=f"<= {bench_engine.TARGET_SINGLE_S} s",
+                        met=r["wall_s"] <= bench_engine.TARGET_SINGLE_S))
+    labels = ["no file", "analysis.nc streamed (ensemble discharge)", "analysis.nc with states",
+              "analysis.nc as quantiles"]  # the order of bench_engine's cases
+    for label, r in zip(labels, f["many_basins"], strict=False):
+        size = f", {r['file_mb']:.0f} MB" if r["write"] else ""
+        cfg = f"{r['basins']:,} basins x {r['members']} members x {r['days']} d, daily readings, threads, 2 workers"
+        rows.append(Row(f"scale run, {label}{size}", cfg,
+                        f"{_rate(r['member_steps_per_s'])}, {r['wall_s']:.1f} s wall",
+                        target=">= 10 M member-steps/s", met=r["member_steps_per_s"] >= bench_engine.TARGET_RATE))
+    two = f["many_basins"][0]
+    peak = max(r["peak_rss_mb"] for r in f["many_basins"])
+    rows.append(Row("scale run, peak memory", "largest of the scale runs above (maximum resident set)",
+                    f"{peak:,.0f} MB", target="<= 2,000 MB", met=peak <= bench_engine.TARGET_MEMORY_MB))
+    speed = one["wall_s"] / two["wall_s"]
+    rows.append(Row("dask scaling, threads 1 -> 2 workers", f"scale run without file: "
+                    f"{one['wall_s']:.1f} s on 1 worker, {two['wall_s']:.1f} s on 2",
+                    f"speed-up {speed:.2f}x", target="2 cores (ideal 2x)"))
+    if "wall_s" in procs:
+        rows.append(Row("dask scaling, processes, 2 workers", f"same run: {procs['wall_s']:.1f} s on 2 processes",
+                        f"speed-up {one['wall_s'] / procs['wall_s']:.2f}x over 1 thread",
+                        target="2 cores (ideal 2x)"))
+    else:
+        last = (procs["error"].strip().splitlines() or ["no message"])[-1][:80]
+        rows.append(Row("dask scaling, processes, 2 workers", "same run", f"failed: {last}", met=False))
+    return rows
+
+
+# ---------------------------------------------------------------- 4. whole runs against the baselines
+
+
+def synthetic(n_basin: int, n_days: int, seed: int = 0):
+    """Invented basins: random daily rain, seasonal PET, a reading every day from an
+    unperturbed GR4J run with 10 % noise. Returns the arrays and the engine's Inputs."""
+    m = models.get("gr4j")
+    rng = np.random.default_rng(seed)
+    p = np.where(rng.random((n_basin, n_days)) < 0.35, rng.gamma(0.8, 9.0, (n_basin, n_days)), 0.0)
+    day = np.arange(n_days)
+    e = np.clip(2.5 + 2.0 * np.sin(2 * np.pi * (day - 100) / 365.25), 0.3, None)[None].repeat(n_basin, 0)
+    params = {"x1": rng.uniform(200, 600, n_basin), "x2": rng.uniform(-1, 1, n_basin),
+              "x3": rng.uniform(50, 150, n_basin), "x4": rng.uniform(1.2, 3.0, n_basin)}
+    area = rng.uniform(100, 2000, n_basin)
+    x, prepared = m.initial_state(params), m.prepare(params)
+    obs = np.empty((n_basin, n_days))
+    for t in range(n_days):
+        x, f = m.step(x, {"precipitation": p[:, t], "pet": e[:, t]}, prepared)
+        obs[:, t] = f["runoff"] * area / 86.4
+    obs = np.maximum(obs * (1 + 0.1 * rng.standard_normal(obs.shape)), 0.0)
+    ids = tuple(f"basin-{i:04d}" for i in range(n_basin))
+    days = np.arange(n_days, dtype=np.int64) + 10957
+    arrays = (p, e, obs, area, params, ids, days)
+    inputs = engine.Inputs(ids, pt.basin_keys(ids), area, days, p, e, obs, np.zeros(obs.shape, bool), params)
+    return arrays, inputs
+
+
+class _Discard:
+    """A sink that receives every block (the engine builds its outputs) and keeps nothing."""
+
+    def write_block(self, start, arrays):
+        pass
+
+
+MEMBERS, SEED = 100, 1
+
+
+def _assim_run(inputs) -> float:
+    m = models.get("gr4j")
+    settings = engine.Settings(mode="assimilate", members=MEMBERS, seed=SEED, gate_sigma=0.0,
+                               update_states=m.default_updated_states(), scheduler="synchronous",
+                               basin_chunk=inputs.n_basin, time_block_days=365)
+    t0 = time.perf_counter()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        engine.run(m, inputs, settings, _Discard())
+    return time.perf_counter() - t0
+
+
+def _timed(fn, arrays, **kw) -> float:
+    t0 = time.perf_counter()
+    fn(*arrays, members=MEMBERS, seed=SEED, **kw)
+    return time.perf_counter() - t0
+
+
+def baseline_rows(quick: bool, figures: dict) -> list[Row]:
+    cases = ((1, 365) if quick else (1, 365 * 20)), ((10, 90) if quick else (100, 365))
+    targets = {1: 20.0, 100: 200.0}
+    rows, out = [], []
+    for n_basin, n_days in cases:
+        arrays, inputs = synthetic(n_basin, n_days)
+        steps = n_basin * MEMBERS * n_days
+        _log(f"whole runs, {n_basin} basin(s) x {MEMBERS} members x {n_days} d: assim, loop, filterpy")
+        t_assim = min(_assim_run(inputs) for _ in range(2))
+        t_loop = _timed(baseline_loop.run, arrays, gate_sigma=None)
+        t_fp = _timed(baseline_filterpy.run, arrays)
+        out.append({"basins": n_basin, "members": MEMBERS, "days": n_days, "assim_s": t_assim,
+                    "loop_s": t_loop, "filterpy_s": t_fp})
+        period = f"{n_days // 365} y" if n_days % 365 == 0 else f"{n_days} d"
+        cfg = (f"{n_basin} basin{'s' if n_basin > 1 else ''} x {MEMBERS} members x {period}, daily readings, "
+               "stochastic EnKF, no gate; one core (assim: synchronous scheduler)")
+        assim_txt = f"{t_assim:.2f} s, {_rate(steps / t_assim)}"
+        rows.append(Row("whole run vs member loop", cfg, assim_txt, f"loop {t_loop:.1f} s, {_rate(steps / t_loop)}",
+                        t_assim / t_loop))
+        target = targets.get(n_basin)
+        rows.append(Row("whole run vs filterpy EnKF", cfg + "; filterpy: one EnsembleKalmanFilter per basin",
+                        assim_txt, f"filterpy {t_fp:.1f} s, {_rate(steps / t_fp)}", t_assim / t_fp,
+                        f">= {target:g}x faster" if target else "",
+                        (t_fp / t_assim >= target) if target else None))
+    figures["baselines"] = out
+    return rows
+
+
+# ---------------------------------------------------------------- 5. the demo workflow
+
+
+def demo_rows(quick: bool, figures: dict, shortened: bool = False) -> list[Row]:
+    """The demo workflow's wall time; skipped by ``--quick`` (snakemake alone starts nine
+    jobs, half a minute even on a shortened period) unless ``shortened`` asks for a short
+    period (``--quick --demo``)."""
+    if quick and not shortened:
+        return [Row("demo workflow end to end", "skipped by --quick (add --demo for a shortened run)", "-")]
+    quick = quick or shortened
+    _log("demo workflow (snakemake)" + (", shortened" if quick else ""))
+    with tempfile.TemporaryDirectory(prefix="assim-bench-") as tmp:
+        root = Path(tmp)
+        cfg = yaml.safe_load((REPO / "config" / "config.yaml").read_text())
+        cfg["data"]["raw"] = str(REPO / "sample_basin")
+        if quick:
+            cfg["period"] = {"start": "2012-01-01", "end": "2012-12-31", "spinup_days": 90}
+            cfg["ensemble"]["members"] = 8
+            cfg["hindcast"] = {"every_days": 30, "leads": 3, "forcing": "observed"}
+            cfg["forecast"]["leads"] = 3
+        (root / "config").mkdir()
+        for f in (REPO / "config").rglob("*"):
+            if f.is_file():
+                dest = root / "config" / f.relative_to(REPO / "config")
+                dest.parent.mkdir(parents=True, exist_ok=True)
+                dest.write_bytes(f.read_bytes())
+        (root / "config" / "config.yaml").write_text(yaml.safe_dump(cfg, sort_keys=False))
+        cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(REPO / "workflow" / "Snakefile"),
+               "--directory", str(root), "--cores", "2", "--quiet"]
+        env = dict(os.environ)
+        for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+            env.pop(var, None)  # the demo runs as a user would run it
+        t0 = time.perf_counter()
+        r = subprocess.run(cmd, capture_output=True, text=True, env=env)
+        wall = time.perf_counter() - t0
+        n_products = len(list((root / "results").rglob("*.nc")))
+    figures["demo"] = {"wall_s": wall, "returncode": r.returncode, "netcdf_files": n_products,
+                       "stderr_tail": r.stderr[-500:] if r.returncode else ""}
+    members = cfg["ensemble"]["members"]
+    what = (f"snakemake --cores 2 on config/config.yaml ({cfg['period']['start'][:4]}-"
+            f"{cfg['period']['end'][:4]}, {members} members, 3 sample basins, every stage), "
+            "temporary folder, installation excluded")
+    result = f"{wall:.0f} s, {n_products} NetCDF files" if r.returncode == 0 else f"FAILED (exit {r.returncode})"
+    return [Row("demo workflow end to end", what, result, met=None if r.returncode == 0 else False)]
+
+
+# ---------------------------------------------------------------- main
+
+
+def run(quick: bool = False, demo: bool = False) -> tuple[dict, list[Row]]:
+    """Every measurement of the suite; returns the raw figures and the table's rows.
+
+    ``quick``: small sizes, demo skipped unless ``demo`` (then on a shortened period)."""
+    figures: dict = {"quick": quick, "machine": machine()}
+    rows: list[Row] = []
+    for section in (gr4j_rows, analysis_rows, engine_rows, baseline_rows):
+        rows += section(quick, figures)
+    rows += demo_rows(quick, figures, shortened=quick and demo)
+    figures["rows"] = [asdict(r) for r in rows]
+    return figures, rows
+
+
+def report(figures: dict, rows: list[Row]) -> str:
+    mc = figures["machine"]
+    head = [
+        "# assim benchmarks" + (" (quick smoke run: small sizes, not for quoting)" if figures["quick"] else ""),
+        "",
+        f"Machine: {mc['cpu']}, {mc['cores']} cores, {mc['memory']} memory; Python {mc['python']}, "
+        f"numpy {mc['numpy']}; {mc['os']}; commit {mc['commit']}; {mc['date']}.",
+        "",
+        "Every figure is from the same run of `benchmarks/run.py`. Speed-up = baseline time / assim "
+        "time for the same work (baselines: `benchmarks/baseline_loop.py`, a per-member Python loop "
+        "checked against assim by `tests/test_baselines.py`, and `benchmarks/baseline_filterpy.py`, "
+        "filterpy's EnsembleKalmanFilter driving the same GR4J). \"one core\": BLAS threads pinned to 1, "
+        "one thread.",
+        "",
+    ]
+    return "\n".join(head) + markdown(rows) + "\n"
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="small sizes: a smoke run under a minute")
+    parser.add_argument("--demo", action="store_true", help="with --quick: also time a shortened demo")
+    args = parser.parse_args(argv)
+    t0 = time.perf_counter()
+    figures, rows = run(quick=args.quick, demo=args.demo)
+    figures["total_s"] = time.perf_counter() - t0
+    text = report(figures, rows)
+    print(text)
+    print(f"(benchmark suite took {figures['total_s']:.0f} s)")
+    OUT.mkdir(exist_ok=True)
+    (OUT / "latest.md").write_text(text)
+    (OUT / "latest.json").write_text(json.dumps(figures, indent=1, default=str))
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
