@@ -85,13 +85,37 @@ def test_general_path_equals_one_observation_path():
             np.testing.assert_allclose(mean_w[:, 0], mean_one, rtol=1e-12)
             np.testing.assert_allclose(one.mean(axis=1), mean_one, rtol=1e-12, atol=1e-14)
 
-    X, H, Y, y, r = _linear_problem(rng, 5, 12, 3, 1)
-    fast = ensemble_update(X, Y, y, r, method="eakf", inflation=Inflation(multiplicative=g))
-    s = 1.0 / np.sqrt(r)
-    ybar = Y.mean(axis=1)
-    Ypw_t = np.swapaxes((Y - ybar[:, None, :]) * s[:, None, :], 1, 2)
-    serial = ens._eakf_serial(X, X.mean(axis=1), Ypw_t, ybar * s, y * s, np.ones((5, 1), bool), g)
-    np.testing.assert_allclose(fast.states, serial, rtol=1e-12, atol=1e-12)
+    for m in (1, 3):
+        X, H, Y, y, r = _linear_problem(rng, 5, 12, 3, m)
+        y[2, 0] = np.nan
+        fast = ensemble_update(X, Y, y, r, method="eakf", inflation=Inflation(multiplicative=g))
+        reference = _sequential_eakf(X, Y, y, r, g)
+        np.testing.assert_allclose(fast.states, reference, rtol=1e-11, atol=1e-11)
+
+
+def _sequential_eakf(X, Y, y, r, gamma):
+    """The serial ensemble adjustment written out plainly, one observation at a time and
+    the states updated at each (Anderson 2001, scalar adjustment; Anderson 2003, linear
+    regression onto the states and the remaining predicted observations)."""
+    N = X.shape[1]
+    g = np.where(np.isnan(y).all(axis=1), 1.0, gamma)[:, None, None]  # no reading: as is
+    X = np.where(
+        g == 1.0, X, X.mean(axis=1, keepdims=True) + g * (X - X.mean(axis=1, keepdims=True))
+    )
+    Y = Y.mean(axis=1, keepdims=True) + g * (Y - Y.mean(axis=1, keepdims=True))
+    for b in range(X.shape[0]):
+        for j in range(Y.shape[2]):
+            if np.isnan(y[b, j]):
+                continue
+            yj = Y[b, :, j].copy()
+            mean, var = yj.mean(), yj.var(ddof=1)
+            post_var = 1.0 / (1.0 / var + 1.0 / r[b, j])
+            post_mean = post_var * (mean / var + y[b, j] / r[b, j])
+            dy = post_mean + np.sqrt(post_var / var) * (yj - mean) - yj
+            dev = yj - mean
+            X[b] += np.outer(dy, dev @ (X[b] - X[b].mean(axis=0)) / (N - 1) / var)
+            Y[b] += np.outer(dy, dev @ (Y[b] - Y[b].mean(axis=0)) / (N - 1) / var)
+    return X
 
 
 def test_etkf_and_serial_eakf_agree_on_moments_with_many_observations():

@@ -28,7 +28,9 @@ perturbations, whitened innovation ``d``:
     ``(I + S S^T)^-1/2 = I + S f(S^T S) S^T`` (from the singular value decomposition of S);
   - ``eakf``: observations one at a time (Anderson 2001), each moving the predicted
     observation and regressing its increment onto the states and the remaining predicted
-    observations (Anderson 2003). For one observation it is the ``etkf`` formula.
+    observations (Anderson 2003). The sequence runs in observation space; the states'
+    regression coefficients follow from one pass over the states, so the states are read
+    once for all observations. For one observation it is the ``etkf`` formula.
 
 Costs are O(N n_state n_obs) per basin plus O(n_obs^3) for the ``etkf`` eigenproblem. With
 one observation the states are read three times (sums of squares; one contraction with the
@@ -284,33 +286,53 @@ def _weights(method, dw, Ypw, A, z, gamma):
     return mean_w[:, :, None] + P @ Ypw, P, mean_w  # Hunt et al. (2007), eq. 24
 
 
-def _eakf_serial(Xu, xbar_u, Ypw, ybar_w, y_w, used, gamma):
-    """Serial ensemble adjustment, one observation at a time; returns the updated states.
+def _eakf_observation_space(Ypw, ybar_w, y_w, used, gamma):
+    """Serial ensemble adjustment in observation space, one observation at a time.
 
-    Xu (B, N, n), xbar_u (B, n); Ypw (B, m, N) whitened predicted perturbations;
-    ybar_w, y_w, used (B, m) whitened predicted mean, whitened reading, use flag."""
-    N = Xu.shape[1]
-    X = Xu + (gamma - 1.0) * (Xu - xbar_u[:, None, :]) if gamma != 1.0 else Xu.copy()
+    Ypw (B, m, N) whitened predicted perturbations; ybar_w, y_w, used (B, m) whitened
+    predicted mean, whitened reading, use flag; gamma the inflation factor. Returns, for
+    each observation at its turn, the increments of its predicted members DY (B, m, N), its
+    centred predicted members YP (B, m, N) and 1 / their variance (B, m; 0 if none). The
+    states follow by regression on YP (see :func:`_eakf_regression`), so they are read once
+    for all observations instead of once per observation."""
+    B, m, N = Ypw.shape
     Y = ybar_w[:, :, None] + gamma * Ypw
-    for j in range(Y.shape[1]):
+    DY = np.zeros((B, m, N))
+    YP = np.empty((B, m, N))
+    inv_var = np.zeros((B, m))
+    for j in range(m):
         yj = Y[:, j]
         ym = yj.mean(axis=1)
-        yp = yj - ym[:, None]
+        yp = np.subtract(yj, ym[:, None], out=YP[:, j])
         var = np.einsum("bi,bi->b", yp, yp) / (N - 1)
         # Anderson (2001): the scalar posterior (R = 1 after whitening) and the members
         # shifted to its mean and shrunk to its spread.
         shift = var / (1.0 + var) * (y_w[:, j] - ym)
         dy = shift[:, None] + (1.0 / np.sqrt(1.0 + var) - 1.0)[:, None] * yp
-        dy = np.where(used[:, j, None], dy, 0.0)
-        inv_var = np.where(var > 0.0, 1.0 / np.where(var > 0.0, var, 1.0), 0.0)
-        # Anderson (2003): the increment regressed onto each state and remaining prediction.
-        bx = _vm(yp, X) * (inv_var / (N - 1))[:, None]
-        X += dy[:, :, None] * bx[:, None, :]
-        if j + 1 < Y.shape[1]:
+        DY[:, j] = np.where(used[:, j, None], dy, 0.0)
+        inv_var[:, j] = np.where(var > 0.0, 1.0 / np.where(var > 0.0, var, 1.0), 0.0)
+        if j + 1 < m:
+            # Anderson (2003): the increment regressed onto the remaining predictions.
             rest = Y[:, j + 1 :]
-            by = np.einsum("bki,bi->bk", rest, yp) * (inv_var / (N - 1))[:, None]
-            rest += by[:, :, None] * dy[:, None, :]
-    return X
+            by = np.einsum("bki,bi->bk", rest, yp) * (inv_var[:, j] / (N - 1))[:, None]
+            rest += by[:, :, None] * DY[:, j][:, None, :]
+    return DY, YP, inv_var
+
+
+def _eakf_regression(G, DY, YP, inv_var):
+    """Regression coefficients (B, m, n) of the serial adjustment's state increments.
+
+    At its turn, observation j moves the states by ``DY_j b_j`` with
+    ``b_j = cov(X_j, YP_j) / var_j`` (Anderson 2003), ``X_j`` the states after the earlier
+    observations: ``cov(X_j, YP_j) = G_j + sum_k<j b_k cov(DY_k, YP_j)``, with
+    ``G_j = cov(X_1, YP_j)`` (B, m, n) from the prior states."""
+    N = DY.shape[2]
+    Q = np.einsum("bki,bji->bkj", DY, YP) / (N - 1)
+    b = np.empty_like(G)
+    for j in range(G.shape[1]):
+        cov = G[:, j] + np.einsum("bk,bkn->bn", Q[:, :j, j], b[:, :j])
+        b[:, j] = cov * inv_var[:, j, None]
+    return b
 
 
 def _bounds(bound, name, cols, full, shape, B):
@@ -462,11 +484,12 @@ def ensemble_update(
     full = cols.size == n
 
     serial = method == "eakf" and m > 1
-    exact_after = infl.rtpp > 0.0 or infl.rtps > 0.0 or serial
+    exact_after = infl.rtpp > 0.0 or infl.rtps > 0.0
     # The vectors contracted with the states in one pass, V (basin, k, member): ones (member
-    # sums), the whitened predicted perturbations Y' and, for enkf, the centred weights W'.
-    # Observation space is kept transposed, the member axis the fast one.
-    k = 1 + m + (m if method == "enkf" and not exact_after else 0)
+    # sums), the whitened predicted perturbations Y' (for the serial adjustment, those of
+    # each observation at its turn) and, for enkf and the serial adjustment, the centred
+    # weights W'. Observation space is kept transposed, the member axis the fast one.
+    k = 1 + m + (m if (method == "enkf" or serial) and not exact_after else 0)
     V = np.empty((B, k, N))
     V[:, 0] = 1.0
     Ypw = V[:, 1 : 1 + m]
@@ -503,7 +526,15 @@ def ensemble_update(
     A = gamma**2 * np.einsum("bmi,bki->bmk", Ypw, Ypw) / (N - 1)
 
     W = P = p = None
-    if not serial:
+    if serial:
+        ybar_w = np.where(used, ybar, 0.0) * s
+        y_w = np.where(used, y2, 0.0) * s
+        W, YP, inv_var = _eakf_observation_space(Ypw, ybar_w, y_w, used, gamma)
+        Ypw[...] = YP
+        wbar = W.mean(axis=2)
+        Wc = W - wbar[:, :, None] if exact_after else V[:, 1 + m :]
+        np.subtract(W, wbar[:, :, None], out=Wc)
+    else:
         z = None
         if method == "enkf":
             z = noise.reshape(B, N, m) if noise is not None else rng.standard_normal((B, N, m))
@@ -527,7 +558,7 @@ def ensemble_update(
         else:
             wbar = wbar.reshape(B, m)
 
-    # One pass over the prior states for the member sums, X^T Y' and (enkf) X^T W'.
+    # One pass over the prior states for the member sums, X^T Y' and (enkf, serial) X^T W'.
     sums = _cross(X2, V)
     xsum = sums[:, 0]
     xbar = xsum / N
@@ -536,43 +567,42 @@ def ensemble_update(
     Xu = X2 if full else X2[:, :, cols]
     xbar_u = xbar if full else xbar[:, cols]
     var_u = var_b if full else var_b[:, cols]
+    # Cross-covariance C^T (B, n_obs, n_u) from the raw states: Y' sums to zero over
+    # members, so Y'^T X equals Y'^T X'; the second term removes what rounding leaves.
+    Ct = (sums[:, 1 : 1 + m] - Ypw.sum(axis=2)[:, :, None] * xbar[:, None, :]) / (N - 1)
+    if not full:
+        Ct = Ct[:, :, cols]
     if serial:
-        ybar_w = np.where(used, ybar, 0.0) * s
-        y_w = np.where(used, y2, 0.0) * s
-        Xa = _eakf_serial(Xu, xbar_u, Ypw, ybar_w, y_w, used, gamma)
+        # The increment's "cross-covariance" is the regression coefficients; the prior
+        # states enter inflated, X_1 = xbar + g X'.
+        Ct = _eakf_regression(gamma * Ct, W, Ypw, inv_var)
+    if m == 1:
+        Xa = np.einsum("bi,bn->bin", w, Ct[:, 0])
     else:
-        # Cross-covariance C^T (B, n_obs, n_u) from the raw states: Y' sums to zero over
-        # members, so Y'^T X equals Y'^T X'; the second term removes what rounding leaves.
-        Ct = (sums[:, 1 : 1 + m] - Ypw.sum(axis=2)[:, :, None] * xbar[:, None, :]) / (N - 1)
-        if not full:
-            Ct = Ct[:, :, cols]
-        if m == 1:
-            Xa = np.einsum("bi,bn->bin", w, Ct[:, 0])
+        Xa = np.einsum("bmi,bmn->bin", W, Ct)
+    if gamma == 1.0:
+        Xa += Xu
+    else:
+        Xa += (1.0 - gamma) * xbar_u[:, None, :]
+        Xa += gamma * Xu  # inflation.inflate folded in: x + (g - 1) x'
+    if not exact_after:
+        # Analysis variance from small quantities, X'a = g X' + W'^T C^T:
+        # sum X'a^2 = g^2 sum X'^2 + 2 g C.(W' X') + C (W' W'^T) C^T.
+        if method == "enkf" or serial:
+            WX = sums[:, 1 + m :] - Wc.sum(axis=2)[:, :, None] * xbar[:, None, :]
+            if not full:
+                WX = WX[:, :, cols]
+            WtW = np.einsum("bmi,bki->bmk", Wc, Wc)
         else:
-            Xa = np.einsum("bmi,bmn->bin", W, Ct)
-        if gamma == 1.0:
-            Xa += Xu
-        else:
-            Xa += (1.0 - gamma) * xbar_u[:, None, :]
-            Xa += gamma * Xu  # inflation.inflate folded in: x + (g - 1) x'
-        if not exact_after:
-            # Analysis variance from small quantities, X'a = g X' + W'^T C^T:
-            # sum X'a^2 = g^2 sum X'^2 + 2 g C.(W' X') + C (W' W'^T) C^T.
-            if method == "enkf":
-                WX = sums[:, 1 + m :] - Wc.sum(axis=2)[:, :, None] * xbar[:, None, :]
-                if not full:
-                    WX = WX[:, :, cols]
-                WtW = np.einsum("bmi,bki->bmk", Wc, Wc)
-            else:
-                # W' = P Y', so W' X' = (N - 1) P C^T and W' W'^T = (N - 1) P A P / g^2.
-                WX = (N - 1) * (P @ Ct)
-                WtW = ((N - 1) / gamma**2) * (P @ A @ P)
-            var_a = (
-                gamma**2 * (N - 1) * var_u
-                + 2.0 * gamma * np.einsum("bmn,bmn->bn", Ct, WX)
-                + np.einsum("bmn,bmk,bkn->bn", Ct, WtW, Ct)
-            ) / (N - 1)
-            mean_a = xbar_u + np.einsum("bm,bmn->bn", wbar, Ct)
+            # W' = P Y', so W' X' = (N - 1) P C^T and W' W'^T = (N - 1) P A P / g^2.
+            WX = (N - 1) * (P @ Ct)
+            WtW = ((N - 1) / gamma**2) * (P @ A @ P)
+        var_a = (
+            gamma**2 * (N - 1) * var_u
+            + 2.0 * gamma * np.einsum("bmn,bmn->bn", Ct, WX)
+            + np.einsum("bmn,bmk,bkn->bn", Ct, WtW, Ct)
+        ) / (N - 1)
+        mean_a = xbar_u + np.einsum("bm,bmn->bn", wbar, Ct)
 
     if infl.rtpp > 0.0 or infl.rtps > 0.0:
         xa_bar = _sum(Xa) / N
