@@ -579,7 +579,7 @@ def ensemble_update(
     if m == 1:
         Xa = np.einsum("bi,bn->bin", w, Ct[:, 0])
     else:
-        Xa = np.einsum("bmi,bmn->bin", W, Ct)
+        Xa = np.einsum("bmi,bmn->bin", W, Ct, optimize=True)
     if gamma == 1.0:
         Xa += Xu
     else:
