@@ -280,9 +280,10 @@ def _weights(method, dw, Ypw, A, z, gamma):
         rhs = dw[:, :, None] + z - gamma * Ypw
         return gamma**2 * np.linalg.solve(A + np.eye(m), rhs), None, None  # Burgers et al. (1998)
     lam, V = np.linalg.eigh(A)
-    inv = np.einsum("bjk,bk,blk->bjl", V, 1.0 / (1.0 + lam), V)
+    Vt = np.swapaxes(V, 1, 2)
+    inv = (V / (1.0 + lam)[:, None, :]) @ Vt
     mean_w = gamma**2 * np.einsum("bjl,bl->bj", inv, dw)  # Hunt et al. (2007), eq. 20
-    P = gamma**3 * np.einsum("bjk,bk,blk->bjl", V, _sqrt_weight(lam), V)
+    P = gamma**3 * ((V * _sqrt_weight(lam)[:, None, :]) @ Vt)
     return mean_w[:, :, None] + P @ Ypw, P, mean_w  # Hunt et al. (2007), eq. 24
 
 
@@ -493,9 +494,8 @@ def ensemble_update(
     V = np.empty((B, k, N))
     V[:, 0] = 1.0
     Ypw = V[:, 1 : 1 + m]
-    Yt = np.swapaxes(Y2, 1, 2)
-    ybar = Yt.mean(axis=2)
-    np.subtract(Yt, ybar[:, :, None], out=Ypw)
+    ybar = _sum(Y2) / N
+    np.subtract(np.swapaxes(Y2, 1, 2), ybar[:, :, None], out=Ypw)
     var_y = np.einsum("bmi,bmi->bm", Ypw, Ypw) / (N - 1)
     innovation = y2 - ybar
     innovation_variance = gamma**2 * var_y + r2
@@ -579,7 +579,7 @@ def ensemble_update(
     if m == 1:
         Xa = np.einsum("bi,bn->bin", w, Ct[:, 0])
     else:
-        Xa = np.einsum("bmi,bmn->bin", W, Ct, optimize=True)
+        Xa = np.matmul(np.ascontiguousarray(np.swapaxes(W, 1, 2)), Ct)
     if gamma == 1.0:
         Xa += Xu
     else:
