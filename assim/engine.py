@@ -991,21 +991,23 @@ def run(
     total = p.stop + 1 - p.start
     out0 = max(p.start, p.first_output)
     issue_done = 0
+    def start_block(ex, t, state):
+        """Submit the tasks of the block starting at day index t; returns (future, t, t1)."""
+        t1 = min(t + settings.time_block_days, p.stop + 1)
+        kwargs = dict(first_output=p.first_output, first_analysis=p.first_analysis,
+                      collect=hindcast is None and sink is not None)
+        if issues is not None:
+            blk = issues[(issues >= t) & (issues < t1)]
+            kwargs.update(issue_index=blk, leads=hindcast[1], forecast_forcing=hindcast[2])
+        tasks = [(model, sub_inputs[bi], state.subset(b, m), settings, t, t1, dict(kwargs, members=members[m]))
+                 for bi, b in enumerate(b_chunks) for m in m_chunks]
+        return ex.submit(_run_task, tasks), t, t1
+
     with parallel.executor(settings.scheduler, settings.workers) as ex:
-        t = p.start
-        while t <= p.stop:
-            t1 = min(t + settings.time_block_days, p.stop + 1)
-            kwargs = dict(first_output=p.first_output, first_analysis=p.first_analysis,
-                          collect=hindcast is None and sink is not None)
-            if issues is not None:
-                blk = issues[(issues >= t) & (issues < t1)]
-                kwargs.update(issue_index=blk, leads=hindcast[1], forecast_forcing=hindcast[2])
-            tasks = []
-            for bi, b in enumerate(b_chunks):
-                for m in m_chunks:
-                    tasks.append((model, sub_inputs[bi], state.subset(b, m), settings, t, t1,
-                                  dict(kwargs, members=members[m])))
-            flat_results = ex.map(_run_task, tasks)
+        pending = start_block(ex, p.start, state) if p.start <= p.stop else None
+        while pending is not None:
+            future, t, t1 = pending
+            flat_results = future.result()
             bad = [r.first_bad for r in flat_results if r.first_bad is not None]
             if bad:
                 basin, day, var = min(bad, key=lambda x: x[1])
@@ -1014,6 +1016,9 @@ def run(
                                place=f"basin {basin}, {np.datetime64('1970-01-01', 'D') + day}")
             grid = [flat_results[i * len(m_chunks):(i + 1) * len(m_chunks)] for i in range(len(b_chunks))]
             merged = _merge(grid, len(b_chunks), len(m_chunks), state)
+            state = merged.state
+            # the next block computes while this one is written
+            pending = start_block(ex, t1, state) if t1 <= p.stop else None
             if "state_noise_water" in merged.arrays:
                 merged.arrays["state_noise_water"] = merged.arrays["state_noise_water"].mean(axis=2)
             if settings.quantiles is not None and merged.arrays:
@@ -1027,10 +1032,8 @@ def run(
             n_gated += merged.n_gated
             first_collapse = np.where((first_collapse < 0) & (merged.collapse_first >= 0),
                                       merged.collapse_first, first_collapse)
-            state = merged.state
-            t = t1
             if progress is not None:
-                progress(t - p.start, total)
+                progress(t1 - p.start, total)
     warns = health_warnings(inputs.basin_ids, n_used, n_gated, first_collapse, settings)
     for w in summarise_warnings(warns):
         _warnings.warn(w, RuntimeWarning, stacklevel=2)

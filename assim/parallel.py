@@ -22,7 +22,7 @@ import os
 import sys
 import time
 from collections.abc import Callable, Iterator, Sequence
-from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
+from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
 
 import dask
 
@@ -49,6 +49,25 @@ class _Executor:
         self.pool = pool
         self.client = client
         self.workers = workers
+        self._background: ThreadPoolExecutor | None = None
+
+    def submit(self, fn: Callable, items: Sequence) -> Future:
+        """Start :meth:`map` in the background; the Future's result is its list.
+
+        The caller can meanwhile write the previous block, so that writing overlaps the
+        computation (fully with the process and distributed schedulers)."""
+        if self.scheduler == "synchronous":
+            done: Future = Future()
+            done.set_result(self.map(fn, items))
+            return done
+        if self._background is None:
+            self._background = ThreadPoolExecutor(1)
+        return self._background.submit(self.map, fn, items)
+
+    def close(self) -> None:
+        if self._background is not None:
+            self._background.shutdown(wait=True)
+            self._background = None
 
     def map(self, fn: Callable, items: Sequence) -> list:
         """``[fn(item) for item in items]``, one dask task per item, results in order."""
@@ -73,6 +92,14 @@ def executor(scheduler: str = "threads", workers: int = 0) -> Iterator[_Executor
         when a dask.distributed scheduler cannot be reached.
     """
     w = n_workers(workers)
+    with contextlib.ExitStack() as stack:
+        ex = stack.enter_context(_open(scheduler, w))
+        stack.callback(ex.close)
+        yield ex
+
+
+@contextlib.contextmanager
+def _open(scheduler: str, w: int) -> Iterator[_Executor]:
     if scheduler == "synchronous":
         yield _Executor("synchronous")
     elif scheduler == "threads":
