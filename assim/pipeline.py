@@ -210,8 +210,10 @@ def run(cfg: Config, mode: str = "assimilate", restart_from=None, until=None) ->
     ----------
     cfg : validated config
     mode : "openloop" or "assimilate"
-    restart_from : restart file to continue from (its valid time + 1 is the first day run);
-        the product then holds the continued days only
+    restart_from : restart file to continue from (its valid time + 1 is the first day run).
+        When the existing product was written by the run being continued (same config,
+        ending on the restart's day), the new file holds its days followed by the continued
+        ones, equal to an uninterrupted run; otherwise only the continued days.
     until : last day to run, "YYYY-MM-DD" (default: period.end); the restart is valid then
 
     Returns
@@ -242,6 +244,7 @@ def run(cfg: Config, mode: str = "assimilate", restart_from=None, until=None) ->
     plan = engine.plan(inputs, settings, state, until_day)
     out_days = inputs.days[plan.output_slice]
     path = paths.run_product(cfg, mode)
+    earlier = None if state is None else _continued_product(path, cfg, inputs, settings, state.day)
     bar = _progress(cfg, mode)
     writer = RunWriter(
         path, basins=inputs.basin_ids, days=out_days, members=settings.members, mode=mode,
@@ -250,7 +253,7 @@ def run(cfg: Config, mode: str = "assimilate", restart_from=None, until=None) ->
         parameter_names=settings.estimate if mode == "assimilate" else (),
         quantiles=settings.quantiles, float32=settings.float32,
         time_chunk=min(settings.time_block_days, 365), state_noise=bool(settings.state_noise),
-        attrs=_attrs(cfg, model, settings),
+        earlier=earlier, attrs=_attrs(cfg, model, settings),
     )
     try:
         with writer:
@@ -263,6 +266,30 @@ def run(cfg: Config, mode: str = "assimilate", restart_from=None, until=None) ->
         print(f"warning: {w}", file=sys.stderr)
     write_restart(paths.restart(cfg, mode), _to_restart(summary.state, model, inputs, identity))
     return open_product(path)
+
+
+def _continued_product(path, cfg: Config, inputs, settings, restart_day: int):
+    """The existing product ``path`` if the run being restarted wrote it: same config, same
+    basins and members, last day the restart's valid day. Its days are then kept in front
+    of the continuation, so that a run split by a restart gives the uninterrupted run's file.
+    Anything else is None (the continuation is written alone)."""
+    import numpy as np
+
+    if not Path(path).exists():
+        return None
+    try:
+        with xr.open_dataset(path, decode_times=False) as ds:
+            same = (
+                ds.attrs.get("config_digest") == cfg.digest()
+                and [str(b) for b in ds["basin"].values] == list(inputs.basin_ids)
+                and ds.sizes.get("member", ds.sizes.get("quantile")) is not None
+                and ds.sizes.get("member", settings.members) == settings.members
+                and ds.sizes["time"] > 0
+                and int(np.asarray(ds["time"].values[-1])) == int(restart_day)
+            )
+    except (OSError, KeyError, ValueError):
+        return None
+    return path if same else None
 
 
 class _HindcastSink:

@@ -160,7 +160,22 @@ def test_restarted_run_equals_the_whole_run(prepared, tmp_path, runs, until):
         first = pipeline.run(cfg, mode="assimilate", until=until).load()
         shutil.copy(tmp_path / "restart.nc", tmp_path / "restart-first.nc")
         second = pipeline.run(cfg, mode="assimilate", restart_from=tmp_path / "restart-first.nc").load()
-    joined = xr.concat([first, second], dim="time") if first.sizes["time"] else second
+    # the second run keeps the first run's days in front: the file equals the whole run
+    assert second.sizes["time"] == whole.sizes["time"] > first.sizes["time"]
+    for v in ("discharge", "discharge_analysis", "routing_store", "innovation", "obs_status", "spread_after"):
+        np.testing.assert_array_equal(second[v].values, whole[v].values, err_msg=v)
+    np.testing.assert_array_equal(second["time"].values, whole["time"].values)
+
+
+def test_restart_without_the_earlier_product_writes_the_continuation(prepared, tmp_path, runs):
+    whole = runs[2]
+    cfg = _cfg(prepared, tmp_path)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        first = pipeline.run(cfg, mode="assimilate", until="2002-04-10").load()
+        (tmp_path / "analysis.nc").unlink()
+        second = pipeline.run(cfg, mode="assimilate", restart_from=tmp_path / "restart.nc").load()
+    joined = xr.concat([first, second], dim="time")
     for v in ("discharge", "discharge_analysis", "routing_store", "innovation", "obs_status"):
         np.testing.assert_array_equal(joined[v].values, whole[v].values, err_msg=v)
 

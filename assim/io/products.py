@@ -133,6 +133,9 @@ class RunWriter(_StreamedFile):
     float32 : float32 and zlib compression for ensemble values
     time_chunk : days per NetCDF chunk along time
     state_noise : write ``state_noise_water`` (basin, time), mm (runs with additive state noise)
+    earlier : a product of the same run ending the day before ``days[0]`` (a run being
+        continued from its restart); its days are copied in front, block by block, and
+        ``write_block`` indices count from the first of ``days``
     attrs : extra global attributes
 
     ``write_block(start, arrays)`` writes arrays covering output days
@@ -156,10 +159,19 @@ class RunWriter(_StreamedFile):
         float32: bool = True,
         time_chunk: int = 365,
         state_noise: bool = False,
+        earlier: str | os.PathLike | None = None,
         attrs: Mapping[str, str] | None = None,
     ):
         super().__init__(path, float32=float32)
         self.state_noise = bool(state_noise)
+        self.earlier = None if earlier is None else Path(earlier)
+        self.offset = 0
+        if self.earlier is not None:
+            # xarray, not a second netCDF4 handle: xarray may hold this file open already
+            with xr.open_dataset(self.earlier, decode_times=False, mask_and_scale=False) as old:
+                before = np.asarray(old["time"].values, dtype=np.int64)
+            days = np.concatenate([before, np.asarray(days, dtype=np.int64)])
+            self.offset = len(before)
         self.basins = list(basins)
         self.days = np.asarray(days, dtype=np.int64)
         self.members = int(members)
@@ -248,9 +260,23 @@ class RunWriter(_StreamedFile):
             self._float_var("state_noise_water", ("basin", "time"), diag_chunks,
                             {"units": "mm", "long_name": "water added by the additive state noise, ensemble mean"},
                             ensemble=False)
+        if self.earlier is not None:
+            self._copy_earlier()
+
+    def _copy_earlier(self):
+        with xr.open_dataset(self.earlier, decode_times=False, mask_and_scale=False) as old:
+            names = [n for n, v in self.nc.variables.items() if "time" in v.dimensions and n != "time"
+                     and n in old.variables]
+            step = self.time_chunk
+            for name in names:
+                src, dst = old[name], self.nc.variables[name]
+                for t in range(0, self.offset, step):
+                    sl = slice(t, min(t + step, self.offset))
+                    dst[:, sl, ...] = np.asarray(src[:, sl].values)
 
     def write_block(self, start: int, arrays: Mapping[str, np.ndarray]) -> None:
         """Write output days ``start .. start + n - 1`` (see the class docstring)."""
+        start += self.offset
         n = None
         for name, values in arrays.items():
             if name not in self.nc.variables:
