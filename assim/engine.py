@@ -80,6 +80,12 @@ class Inputs:
     def n_basin(self) -> int:
         return len(self.basin_ids)
 
+    def days_slice(self, a: int, b: int) -> Inputs:
+        """The inputs of day indices ``a .. b - 1`` (what one task of a block needs)."""
+        t = slice(a, b)
+        return replace(self, days=self.days[t], precipitation=self.precipitation[:, t], pet=self.pet[:, t],
+                       observed=self.observed[:, t], rejected=self.rejected[:, t])
+
     def subset(self, b: slice) -> Inputs:
         """The inputs of the basins ``b`` (a slice)."""
         return replace(
@@ -994,12 +1000,15 @@ def run(
     def start_block(ex, t, state):
         """Submit the tasks of the block starting at day index t; returns (future, t, t1)."""
         t1 = min(t + settings.time_block_days, p.stop + 1)
-        kwargs = dict(first_output=p.first_output, first_analysis=p.first_analysis,
+        # each task gets the days of its block only (and the leads after it), indices shifted
+        end = min(len(inputs.days), t1 + (hindcast[1] if hindcast is not None else 0))
+        kwargs = dict(first_output=p.first_output - t, first_analysis=p.first_analysis - t,
                       collect=hindcast is None and sink is not None)
         if issues is not None:
             blk = issues[(issues >= t) & (issues < t1)]
-            kwargs.update(issue_index=blk, leads=hindcast[1], forecast_forcing=hindcast[2])
-        tasks = [(model, sub_inputs[bi], state.subset(b, m), settings, t, t1, dict(kwargs, members=members[m]))
+            kwargs.update(issue_index=blk - t, leads=hindcast[1], forecast_forcing=hindcast[2])
+        tasks = [(model, sub_inputs[bi].days_slice(t, end), state.subset(b, m), settings, 0, t1 - t,
+                  dict(kwargs, members=members[m]))
                  for bi, b in enumerate(b_chunks) for m in m_chunks]
         return ex.submit(_run_task, tasks), t, t1
 
