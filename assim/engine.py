@@ -163,7 +163,18 @@ class ObsError:
 
 @dataclass(frozen=True)
 class Settings:
-    """Settings of one engine run (built from the config by :func:`settings_from_config`)."""
+    """Settings of one engine run (built from the config by :func:`settings_from_config`).
+
+    The fields mirror the config: ``mode`` ("openloop" or "assimilate"), ``members``,
+    ``seed``, ``spinup_days`` (``period``); the forcing error models ``precipitation`` and
+    ``pet``, ``parameter_sd`` (relative sd by parameter name) and ``state_noise`` (sd in mm
+    by state name) (``perturbation``); ``method``, ``update_states``, ``obs_error``,
+    ``transform*``, ``gate_sigma``, ``inflation``/``rtps``/``rtpp``, ``estimate`` and
+    ``shrinkage`` (the Liu & West factor a), ``collapse_*`` and ``gating_warn_fraction``
+    (``filter``); ``quantiles`` (None = members), ``write_states``, ``float32``
+    (``outputs``); ``basin_chunk``, ``member_chunk``, ``time_block_days``, ``scheduler``,
+    ``workers`` (``ensemble``; they never change the numbers).
+    """
 
     mode: str = "assimilate"
     members: int = 64
@@ -896,7 +907,7 @@ class RunSummary:
     plan: Plan
 
 
-def _merge(results: list[list[BlockResult]], nb_chunks, nm_chunks, state_template) -> BlockResult:
+def _merge(results: list[list[BlockResult]]) -> BlockResult:
     """Concatenate the tasks of one block (rows: basin chunks, columns: member chunks)."""
     rows = []
     for row in results:
@@ -1024,7 +1035,7 @@ def run(
                                "parameters and the filter settings", variable=var,
                                place=f"basin {basin}, {np.datetime64('1970-01-01', 'D') + day}")
             grid = [flat_results[i * len(m_chunks):(i + 1) * len(m_chunks)] for i in range(len(b_chunks))]
-            merged = _merge(grid, len(b_chunks), len(m_chunks), state)
+            merged = _merge(grid)
             state = merged.state
             # the next block computes while this one is written
             pending = start_block(ex, t1, state) if t1 <= p.stop else None
