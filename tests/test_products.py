@@ -19,6 +19,7 @@ from assim.io.products import (
     RunWriter,
     exceedance_probability,
     forecast_lock,
+    open_product,
     read_forcing_forecast,
     write_forecast,
 )
@@ -53,7 +54,9 @@ def test_run_writer_streams_blocks_into_one_cf_file(tmp_path):
     rng = np.random.default_rng(0)
     blocks = [_block(rng, 7), _block(rng, 13)]
     _write(tmp_path / "analysis.nc", blocks)
-    with xr.open_dataset(tmp_path / "analysis.nc") as ds:
+    with xr.open_dataset(tmp_path / "analysis.nc") as raw:  # on disk, time last (CF-1.8 section 2.4)
+        assert raw["discharge"].dims == ("basin", "member", "time")
+    with open_product(tmp_path / "analysis.nc") as ds:  # read back in the contract's order
         want = np.concatenate([b["discharge"] for b in blocks], axis=1).astype(np.float32)
         np.testing.assert_array_equal(ds["discharge"].values, want)
         assert ds["discharge"].dims == ("basin", "time", "member")
@@ -67,7 +70,8 @@ def test_run_writer_streams_blocks_into_one_cf_file(tmp_path):
 
 
 def test_run_writer_passes_the_cf_checker(tmp_path):
-    """compliance-checker (reference library), CF-1.8: no high-priority failure."""
+    """compliance-checker (reference library), CF-1.8, normal criteria: no failure at high
+    or medium priority (time is the last dimension on disk, section 2.4)."""
     from compliance_checker.runner import CheckSuite, ComplianceChecker
 
     _write(tmp_path / "analysis.nc", [_block(np.random.default_rng(1), 20)])
@@ -76,7 +80,29 @@ def test_run_writer_passes_the_cf_checker(tmp_path):
     ComplianceChecker.run_checker(str(tmp_path / "analysis.nc"), ["cf:1.8"], 0, "normal",
                                   output_filename=str(out), output_format="json")
     report = next(iter(json.loads(out.read_text()).values()))
-    assert [m for m in report["high_priorities"] if m["msgs"]] == []
+    assert [m for p in ("high_priorities", "medium_priorities") for m in report[p] if m["msgs"]] == []
+
+
+def test_forecast_and_hindcast_pass_the_cf_checker(tmp_path):
+    """compliance-checker (reference library), CF-1.8, normal criteria: no failure at high
+    or medium priority."""
+    from compliance_checker.runner import CheckSuite, ComplianceChecker
+
+    rng = np.random.default_rng(7)
+    write_forecast(tmp_path / "forecast-2020-01-05.nc", basins=["a", "b"], issue_day=int(DAYS[4]),
+                   discharge=rng.gamma(2.0, 3.0, (2, 4, 8)), quantiles=[0.1, 0.5],
+                   thresholds={"minor": np.array([5.0, np.nan])}, analysis="performed")
+    with HindcastWriter(tmp_path / "hindcast.nc", basins=["a", "b"], issue_days=DAYS[::5], leads=3, members=4) as w:
+        for exp in ("openloop", "assimilation"):
+            w.write_block(exp, 0, rng.gamma(2.0, 1.0, (2, 4, 3, 4)))
+    CheckSuite().load_all_available_checkers()
+    for name in ("forecast-2020-01-05.nc", "hindcast.nc"):
+        out = tmp_path / f"{name}.json"
+        passed, _ = ComplianceChecker.run_checker(str(tmp_path / name), ["cf:1.8"], 0, "normal",
+                                                  output_filename=str(out), output_format="json")
+        report = next(iter(json.loads(out.read_text()).values()))
+        bad = [m for p in ("high_priorities", "medium_priorities") for m in report[p] if m["msgs"]]
+        assert passed and bad == [], (name, bad)
 
 
 def test_interrupted_write_keeps_the_previous_file(tmp_path):
@@ -99,7 +125,7 @@ def test_quantile_and_open_loop_layout(tmp_path):
     with RunWriter(tmp_path / "openloop.nc", basins=["a", "b"], days=DAYS, members=4, mode="openloop",
                    quantiles=(0.1, 0.5, 0.9), float32=False) as w:
         w.write_block(0, {"discharge_quantile": q})
-    with xr.open_dataset(tmp_path / "openloop.nc") as ds:
+    with open_product(tmp_path / "openloop.nc") as ds:
         assert ds["discharge_quantile"].dims == ("basin", "time", "quantile")
         assert ds["quantile"].values.tolist() == [0.1, 0.5, 0.9]
         assert "discharge" not in ds and "member" not in ds.dims and "obs_status" not in ds
@@ -113,7 +139,15 @@ def test_hindcast_writer_layout(tmp_path):
         for exp in ("openloop", "assimilation"):
             w.write_block(exp, 0, rng.gamma(2.0, 1.0, (2, 2, 3, 4)))
             w.write_block(exp, 2, rng.gamma(2.0, 1.0, (2, 2, 3, 4)))
-    with xr.open_dataset(tmp_path / "hindcast.nc") as ds:
+    written = {}
+    with HindcastWriter(tmp_path / "hindcast2.nc", basins=["a", "b"], issue_days=issues, leads=3, members=4) as w:
+        for exp in ("openloop", "assimilation"):
+            written[exp] = rng.gamma(2.0, 1.0, (2, 4, 3, 4))
+            w.write_block(exp, 0, written[exp])
+    with open_product(tmp_path / "hindcast2.nc") as ds:
+        np.testing.assert_array_equal(ds["discharge"].sel(experiment="assimilation").values,
+                                      written["assimilation"].astype(np.float32))
+    with open_product(tmp_path / "hindcast.nc") as ds:
         assert ds["discharge"].dims == ("experiment", "basin", "issue_time", "lead", "member")
         assert ds["experiment"].values.tolist() == ["openloop", "assimilation"]
         assert ds["lead"].values.tolist() == [1, 2, 3]

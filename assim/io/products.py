@@ -202,8 +202,8 @@ class RunWriter(_StreamedFile):
         if self.quantiles is None:
             nc.createDimension("member", self.members)
             self._int_coord("member", np.arange(self.members), long_name="ensemble member")
-            ens_dims = ("basin", "time", "member")
-            chunks = (1, self.time_chunk, self.members)
+            ens_dims = ("basin", "member", "time")  # on disk: time last (CF-1.8 section 2.4)
+            chunks = (1, self.members, self.time_chunk)
             self._float_var(
                 "discharge",
                 ens_dims,
@@ -229,12 +229,12 @@ class RunWriter(_StreamedFile):
             v = nc.createVariable("quantile", "f8", ("quantile",))
             v[:] = np.asarray(self.quantiles)
             v.long_name = "probability of non-exceedance"
-            chunks = (1, self.time_chunk, len(self.quantiles))
-            self._float_var("discharge_quantile", ("basin", "time", "quantile"), chunks,
+            chunks = (1, len(self.quantiles), self.time_chunk)
+            self._float_var("discharge_quantile", ("basin", "quantile", "time"), chunks,
                             {**DISCHARGE_ATTRS, "long_name": "quantiles of the background discharge"
                              if self.assimilate else "quantiles of the simulated discharge"})
             if self.assimilate:
-                self._float_var("discharge_analysis_quantile", ("basin", "time", "quantile"), chunks,
+                self._float_var("discharge_analysis_quantile", ("basin", "quantile", "time"), chunks,
                                 {**DISCHARGE_ATTRS, "long_name": "quantiles of the discharge after the update"})
         if self.assimilate:
             d2 = ("basin", "time")
@@ -269,10 +269,10 @@ class RunWriter(_StreamedFile):
                      and n in old.variables]
             step = self.time_chunk
             for name in names:
-                src, dst = old[name], self.nc.variables[name]
+                src, dst = old[name].transpose(*self.nc.variables[name].dimensions), self.nc.variables[name]
                 for t in range(0, self.offset, step):
                     sl = slice(t, min(t + step, self.offset))
-                    dst[:, sl, ...] = np.asarray(src[:, sl].values)
+                    dst[..., sl] = np.asarray(src.isel(time=sl).values)
 
     def write_block(self, start: int, arrays: Mapping[str, np.ndarray]) -> None:
         """Write output days ``start .. start + n - 1`` (see the class docstring)."""
@@ -283,7 +283,9 @@ class RunWriter(_StreamedFile):
                 continue
             values = np.asarray(values)
             n = values.shape[1]
-            self.nc.variables[name][:, start:start + n, ...] = values
+            if values.ndim == 3:  # (basin, n, member) -> (basin, member, n) on disk
+                values = values.transpose(0, 2, 1)
+            self.nc.variables[name][..., start:start + n] = values
         if n is not None:
             self.written = max(self.written, start + n)
 
@@ -323,14 +325,15 @@ class HindcastWriter(_StreamedFile):
         self._days("issue_time", self.issue_days, "issue time: the forecast starts from the end of this day")
         self._int_coord("lead", np.arange(1, self.leads + 1), units="days", long_name="lead time; valid day = issue_time + lead")
         self._int_coord("member", np.arange(self.members), long_name="ensemble member")
-        chunks = (1, 1, max(1, min(len(self.issue_days), 64)), self.leads, self.members)
-        self._float_var("discharge", ("experiment", "basin", "issue_time", "lead", "member"), chunks,
+        # on disk: issue_time last (CF-1.8 section 2.4); read back in contract order by open_product
+        chunks = (1, 1, self.leads, self.members, max(1, min(len(self.issue_days), 64)))
+        self._float_var("discharge", ("experiment", "basin", "lead", "member", "issue_time"), chunks,
                         {**DISCHARGE_ATTRS, "long_name": "forecast discharge"})
 
     def write_block(self, experiment: str, start: int, discharge: np.ndarray) -> None:
         e = EXPERIMENTS.index(experiment)
         n = discharge.shape[1]
-        self.nc.variables["discharge"][e, :, start:start + n, :, :] = discharge
+        self.nc.variables["discharge"][e, :, :, :, start:start + n] = discharge.transpose(0, 2, 3, 1)
 
     def set_attributes(self, **attrs) -> None:
         self.nc.setncatts({k: str(v) for k, v in attrs.items()})
@@ -406,8 +409,10 @@ def write_forecast(
             **dict(attrs or {}),
         ),
     )
+    ds.attrs.pop("featureType", None)  # one issue: no time series (CF-1.8 section 9)
     enc_t = {"units": TIME_UNITS, "calendar": CALENDAR, "dtype": "i4"}
-    encoding = {"valid_time": enc_t, "issue_time": enc_t}
+    encoding = {"valid_time": enc_t, "issue_time": enc_t, "lead": {"dtype": "i4"}, "member": {"dtype": "i4"},
+                "quantile": {"_FillValue": None}}
     fdtype = "f4" if float32 else "f8"
     for v in ("discharge", "discharge_quantile"):
         encoding[v] = {"dtype": fdtype, "zlib": float32, "_FillValue": np.nan}
@@ -417,9 +422,16 @@ def write_forecast(
     return ds
 
 
+CONTRACT_ORDER = ("experiment", "basin", "issue_time", "time", "lead", "quantile", "member", "threshold")
+
+
 def open_product(path) -> xr.Dataset:
-    """Open a written product lazily, with ``attrs["product_path"]`` set."""
+    """Open a written product lazily, variables in the contract's dimension order
+    (``(basin, time, member)``, ``(experiment, basin, issue_time, lead, member)``; on disk
+    the time dimension comes last, as CF-1.8 section 2.4 recommends), with
+    ``attrs["product_path"]`` set."""
     ds = xr.open_dataset(path)
+    ds = ds.transpose(*[d for d in CONTRACT_ORDER if d in ds.dims], ...)
     ds.attrs["product_path"] = str(path)
     return ds
 
