@@ -469,7 +469,7 @@ def report(figures: dict, rows: list[Row]) -> str:
         + ", ".join(f"{k} {v:.1f}" for k, v in figures["load_average"].items()) + ".",
         "",
     ]
-    return "\n".join(head) + markdown(rows) + "\n"
+    return "\n".join(head) + "\n" + markdown(rows) + "\n"
 
 
 def main(argv=None) -> int:
