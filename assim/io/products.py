@@ -8,6 +8,13 @@ closed without error. Memory therefore does not grow with the length of the run.
 Dimensions are named ``basin`` (string ids, ``cf_role: timeseries_id``), ``time`` /
 ``issue_time`` (CF "days since 1970-01-01", standard calendar, 00:00 UTC of the day),
 ``member`` (0..N-1), ``lead`` (integer days), ``quantile``, ``threshold``, ``experiment``.
+
+On disk the time dimension comes last, as CF-1.8 section 2.4 recommends:
+``(basin, member, time)``, ``(basin, quantile, time)`` and
+``(experiment, basin, lead, member, issue_time)``. :func:`open_product` returns the
+contract's order, ``(basin, time, member)`` and ``(experiment, basin, issue_time, lead,
+member)``; any reader that names its dimensions (``.transpose(...)``, ``.sel(...)``) is
+unaffected by the order.
 """
 
 from __future__ import annotations
