@@ -76,6 +76,18 @@ def _merge(base: dict, extra: Mapping) -> dict:
     return out
 
 
+def _first_nul(value: Any, key: str = "") -> str | None:
+    """Key path of the first string holding a NUL character (the OS refuses such paths)."""
+    if isinstance(value, str):
+        return (key or "(top level)") if "\x00" in value else None
+    items = value.items() if isinstance(value, Mapping) else enumerate(value) if isinstance(value, list) else ()
+    for k, v in items:
+        found = _first_nul(v, f"{key}.{k}" if key else str(k))
+        if found is not None:
+            return found
+    return None
+
+
 def validate(raw: Mapping, source: str = "<config>") -> Config:
     """Validate a config mapping against the schema, fill defaults, return a :class:`Config`.
 
@@ -93,6 +105,10 @@ def validate(raw: Mapping, source: str = "<config>") -> Config:
         e = errors[0]
         key = ".".join(str(p) for p in e.absolute_path) or "(top level)"
         raise ConfigError(e.message, file=source, variable=key)
+    bad = _first_nul(raw)
+    if bad is not None:
+        raise ConfigError("contains a NUL character, which no path or name may hold", file=source,
+                          variable=bad)
     cfg = Config(_fill_defaults(schema, dict(raw)))
     cfg.source = source
     return cfg
