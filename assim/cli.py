@@ -78,11 +78,49 @@ def _overrides(items: Sequence[str]) -> dict:
     return out
 
 
+def _lock_path(cfg, args: argparse.Namespace):
+    """The lock file guarding the outputs of ``args.command`` (None: no lock needed).
+
+    One lock per product, so that stages writing different products (the open loop and the
+    assimilation run of the workflow) still run side by side."""
+    from pathlib import Path
+
+    from assim import paths
+
+    if args.command == "prep":
+        return Path(cfg["data"]["prepared"]) / ".prepared.lock"
+    if args.command == "run":
+        product = paths.run_product(cfg, args.mode)
+    elif args.command == "hindcast":
+        product = paths.hindcast(cfg)
+    else:
+        return None
+    return product.parent / f".{product.name}.lock"
+
+
 def _dispatch(args: argparse.Namespace) -> str:
-    from assim import pipeline
+    import contextlib
+    import warnings
+
     from assim.config import load_config
+    from assim.io.common import output_lock
 
     cfg = load_config(args.config, **_overrides(args.set))
+    lock = _lock_path(cfg, args)
+    if lock is None:
+        return _command(cfg, args)
+    with contextlib.ExitStack() as stack:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            stack.enter_context(output_lock(lock, f"the output of `assim {args.command}`"))
+        for w in caught:  # a stale lock left by a killed run: say so, in one line
+            print(f"assim {args.command}: warning: {w.message}", file=sys.stderr)
+        return _command(cfg, args)
+
+
+def _command(cfg, args: argparse.Namespace) -> str:
+    from assim import pipeline
+
     cmd = args.command
     if cmd == "prep":
         pipeline.prep(cfg)

@@ -75,3 +75,152 @@ def global_attributes(title: str, *, product: bool = True, **extra: str) -> dict
         attrs["comment"] = CAUTION
     attrs.update({k: str(v) for k, v in extra.items()})
     return attrs
+
+
+# String labels of a dimension are written as auxiliary coordinate variables
+# (``basin_id(basin)``, CF-1.8 appendix H.2.1), because a coordinate variable proper must be
+# numeric and monotonic; readers turn them back into the string index of the dimension.
+LABELS = {
+    "basin": "basin_id",
+    "threshold": "threshold_name",
+    "experiment": "experiment_name",
+    "metric": "metric_name",
+}
+
+# The dimension order of the products contract; on disk time comes last (CF-1.8 section 2.4).
+CONTRACT_ORDER = ("experiment", "basin", "issue_time", "time", "lead", "quantile", "member", "threshold", "metric")
+
+
+def labels_to_file(ds):
+    """Replace string index coordinates (``basin``, ...) by their ``*_id``/``*_name`` labels."""
+    for dim, name in LABELS.items():
+        if dim in ds.variables and ds[dim].dtype.kind in "OUS":
+            var = ds[dim]
+            ds = ds.drop_vars(dim).assign_coords({name: (dim, var.values.astype(object), dict(var.attrs))})
+    return ds
+
+
+def labels_from_file(ds):
+    """Inverse of :func:`labels_to_file`: the labels become the dimensions' string index."""
+    for dim, name in LABELS.items():
+        if name in ds.variables and ds[name].dims == (dim,):
+            var = ds[name]
+            ds = ds.drop_vars(name).assign_coords({dim: (dim, var.values.astype(str).astype(object), dict(var.attrs))})
+    return ds
+
+
+def open_netcdf(path, variables=(), *, any_of=(), order=None):
+    """Open a file written by assim lazily, in the contract's layout.
+
+    String labels become the index of their dimension, dimensions are put in ``order`` when
+    given (e.g. :data:`CONTRACT_ORDER`: ``(basin, time, member)``, ``(experiment, basin,
+    issue_time, lead, member)``), and ``attrs["product_path"]`` is set.
+
+    Parameters
+    ----------
+    path : path of the file
+    variables : names that must all be present (data variables or coordinates)
+    any_of : names of which at least one must be present
+    order : dimension names in the wanted order (others follow as stored)
+
+    Raises
+    ------
+    InputError
+        naming the file (and the variable) when it is missing, unreadable or incomplete.
+    """
+    import xarray as xr
+
+    from assim.errors import InputError
+
+    path = Path(path)
+    if not path.is_file():
+        raise InputError("file not found", file=path)
+    if path.stat().st_size == 0:
+        raise InputError("the file is empty", file=path)
+    try:
+        ds = xr.open_dataset(path, engine="netcdf4")
+    except (OSError, ValueError, RuntimeError, KeyError, TypeError) as exc:
+        raise InputError(f"cannot read as NetCDF ({type(exc).__name__})", file=path) from None
+    ds = labels_from_file(ds)
+    for name in variables:
+        if name not in ds.variables:
+            ds.close()
+            raise InputError("expected variable is missing", file=path, variable=name)
+    any_of = tuple(any_of)
+    if any_of and not any(name in ds.variables for name in any_of):
+        ds.close()
+        raise InputError("expected one of these variables, found none", file=path, variable=" or ".join(any_of))
+    if order:
+        ds = ds.transpose(*[d for d in order if d in ds.dims], ...)
+    ds.attrs["product_path"] = str(path)
+    return ds
+
+
+@contextlib.contextmanager
+def output_lock(path: str | os.PathLike, what: str) -> Iterator[Path]:
+    """Hold the lock file ``path`` (PID and host) while a command writes ``what``.
+
+    A lock held by a live process on this host, or by any process on another host, is
+    refused; a lock whose process is dead on this host (left by a killed run) is stale: it
+    is reported through ``warnings`` and replaced, so a killed run never blocks the next.
+
+    Raises
+    ------
+    LockError
+        naming the lock file and the PID and host of the run holding it.
+    """
+    import socket
+    import warnings
+
+    from assim.errors import LockError
+
+    path = Path(path)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise RunError(f"cannot write here ({exc.strerror})", file=path.parent) from None
+    host = socket.gethostname()
+    mine = f"{os.getpid()} {host}\n"
+    for _ in range(2):
+        try:
+            fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+        except FileExistsError:
+            try:
+                pid_text, _, other = path.read_text().strip().partition(" ")
+                pid = int(pid_text)
+            except (OSError, ValueError):
+                pid, other = -1, host
+            if other != host:
+                raise LockError(f"{what} is held by pid {pid} on host {other}; remove the lock file "
+                                "if that run is dead", file=path) from None
+            if pid > 0 and _alive(pid):
+                raise LockError(f"{what} is being written by another run (pid {pid}); wait for it to "
+                                "finish", file=path) from None
+            warnings.warn(f"{path}: stale lock of pid {pid} (no longer running) replaced", RuntimeWarning,
+                          stacklevel=3)
+            with contextlib.suppress(FileNotFoundError):
+                path.unlink()
+            continue
+        except OSError as exc:
+            raise RunError(f"cannot write here ({exc.strerror})", file=path.parent) from None
+        with os.fdopen(fd, "w") as f:
+            f.write(mine)
+        break
+    else:  # pragma: no cover - another run took the lock between our two attempts
+        raise LockError(f"{what} is being started by another run", file=path)
+    try:
+        yield path
+    finally:
+        with contextlib.suppress(OSError):
+            if path.read_text() == mine:
+                path.unlink()
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
