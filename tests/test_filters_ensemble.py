@@ -518,15 +518,17 @@ def test_diagnostics_against_numpy():
 
 @pytest.mark.parametrize("method", ["enkf", "etkf", "eakf"])
 def test_spreads_stay_exact_when_sums_of_squares_would_cancel(method):
-    """States with a mean 1e6 times their spread (a collapsed parameter column), a clipped
+    """States with a mean 1e9 times their spread (a collapsed parameter column), a clipped
     basin and an RTPS run: spread_before and spread_after still equal the two-pass
-    numpy.std (ddof = 1) to 1e-9."""
+    numpy.std (ddof = 1) to 1e-9, and RTPS reaches its target spread to 1e-7 (the
+    precision left by rounding the states themselves, eps * mean / sd)."""
     rng = np.random.default_rng(16)
     X, H, Y, y, r = _linear_problem(rng, 8, 20, 3, 1)
-    X[:6, :, 2] = 1e4 + 1e-2 * rng.standard_normal((6, 20))  # most basins: whole-batch path
+    X[:6, :, 2] = 1e4 + 1e-5 * rng.standard_normal((6, 20))  # most basins: whole-batch path
     X[1, :, 1] -= X[1, :, 1].min() + 1.0  # basin 1 sits near the lower bound of 0 ...
     Y = np.einsum("bmn,bin->bim", H, X)
     y[1] = Y[1].mean(axis=0) - 3 * np.sign(H[1, 0, 1]) * Y[1].std(axis=0)  # ... and is pushed below
+    z = rng.standard_normal(Y.shape)
     for infl, few in itertools.product((None, Inflation(rtps=0.5)), (False, True)):
         Xi = X.copy()
         if few:  # one collapsed basin only: the gathered path
@@ -537,6 +539,11 @@ def test_spreads_stay_exact_when_sums_of_squares_would_cancel(method):
         np.testing.assert_allclose(a.spread_before, Xi.std(axis=1, ddof=1), rtol=1e-9)
         np.testing.assert_allclose(a.spread_after, a.states.std(axis=1, ddof=1), rtol=1e-9)
         assert a.clipped[1, 1] > 0
+        if infl is not None:  # RTPS reaches its target spread in the collapsed column too
+            plain = ensemble_update(Xi, Y, y, r, method=method, obs_noise=z)
+            relaxed = ensemble_update(Xi, Y, y, r, method=method, obs_noise=z, inflation=infl)
+            target = 0.5 * plain.spread_before + 0.5 * plain.spread_after
+            np.testing.assert_allclose(relaxed.spread_after, target, rtol=1e-7)
 
 
 # --- shapes, errors, properties ----------------------------------------------------------

@@ -70,7 +70,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from assim.errors import InputError
-from assim.filters.inflation import Inflation, relax_to_prior_perturbations, relax_to_prior_spread
+from assim.filters.inflation import Inflation, relax_to_prior_perturbations, rtps_factor
 from assim.filters.obs import Transform
 
 __all__ = ["METHODS", "Analysis", "ensemble_update"]
@@ -485,12 +485,11 @@ def ensemble_update(
     full = cols.size == n
 
     serial = method == "eakf" and m > 1
-    exact_after = infl.rtpp > 0.0 or infl.rtps > 0.0
     # The vectors contracted with the states in one pass, V (basin, k, member): ones (member
     # sums), the whitened predicted perturbations Y' (for the serial adjustment, those of
     # each observation at its turn) and, for enkf and the serial adjustment, the centred
     # weights W'. Observation space is kept transposed, the member axis the fast one.
-    k = 1 + m + (m if (method == "enkf" or serial) and not exact_after else 0)
+    k = 1 + m + (m if method == "enkf" or serial else 0)
     V = np.empty((B, k, N))
     V[:, 0] = 1.0
     Ypw = V[:, 1 : 1 + m]
@@ -532,8 +531,7 @@ def ensemble_update(
         W, YP, inv_var = _eakf_observation_space(Ypw, ybar_w, y_w, used, gamma)
         Ypw[...] = YP
         wbar = W.mean(axis=2)
-        Wc = W - wbar[:, :, None] if exact_after else V[:, 1 + m :]
-        np.subtract(W, wbar[:, :, None], out=Wc)
+        Wc = np.subtract(W, wbar[:, :, None], out=V[:, 1 + m :])
     else:
         z = None
         if method == "enkf":
@@ -553,8 +551,7 @@ def ensemble_update(
             W, P, wbar = _weights(method, dw, Ypw, A, z, gamma)
         if method == "enkf":
             wbar = W.mean(axis=2)
-            Wc = W - wbar[:, :, None] if exact_after else V[:, 1 + m :]
-            np.subtract(W, wbar[:, :, None], out=Wc)
+            Wc = np.subtract(W, wbar[:, :, None], out=V[:, 1 + m :])
         else:
             wbar = wbar.reshape(B, m)
 
@@ -576,45 +573,79 @@ def ensemble_update(
         # The increment's "cross-covariance" is the regression coefficients; the prior
         # states enter inflated, X_1 = xbar + g X'.
         Ct = _eakf_regression(gamma * Ct, W, Ypw, inv_var)
-    if m == 1:
-        Xa = np.einsum("bi,bn->bin", w, Ct[:, 0])
-    else:
-        Xa = np.matmul(np.ascontiguousarray(np.swapaxes(W, 1, 2)), Ct)
-    if gamma == 1.0:
-        Xa += Xu
-    else:
-        Xa += (1.0 - gamma) * xbar_u[:, None, :]
-        Xa += gamma * Xu  # inflation.inflate folded in: x + (g - 1) x'
-    if not exact_after:
-        # Analysis variance from small quantities, X'a = g X' + W'^T C^T:
-        # sum X'a^2 = g^2 sum X'^2 + 2 g C.(W' X') + C (W' W'^T) C^T.
-        if method == "enkf" or serial:
-            WX = sums[:, 1 + m :] - Wc.sum(axis=2)[:, :, None] * xbar[:, None, :]
-            if not full:
-                WX = WX[:, :, cols]
-            WtW = np.einsum("bmi,bki->bmk", Wc, Wc)
-        else:
-            # W' = P Y', so W' X' = (N - 1) P C^T and W' W'^T = (N - 1) P A P / g^2.
-            WX = (N - 1) * (P @ Ct)
-            WtW = ((N - 1) / gamma**2) * (P @ A @ P)
-        var_a = (
-            gamma**2 * (N - 1) * var_u
-            + 2.0 * gamma * np.einsum("bmn,bmn->bn", Ct, WX)
-            + np.einsum("bmn,bmk,bkn->bn", Ct, WtW, Ct)
-        ) / (N - 1)
-        mean_a = xbar_u + np.einsum("bm,bmn->bn", wbar, Ct)
 
-    if infl.rtpp > 0.0 or infl.rtps > 0.0:
-        xa_bar = _sum(Xa) / N
-        Xap = Xa - xa_bar[:, None, :]
-        Xbp = gamma * (Xu - xbar_u[:, None, :])
-        if infl.rtpp > 0.0:
-            Xap = relax_to_prior_perturbations(Xap, Xbp, infl.rtpp)
-        if infl.rtps > 0.0:
-            sd_b = gamma * np.sqrt(_exact_variance(Xu))
-            sd_a = np.sqrt(np.einsum("bin,bin->bn", Xap, Xap) / (N - 1))
-            Xap = relax_to_prior_spread(Xap, sd_b, sd_a, infl.rtps)
-        Xa = xa_bar[:, None, :] + Xap
+    # Analysis spread and mean from small quantities, X'a = g X' + W'^T C^T:
+    # sum X'a^2 = g^2 sum X'^2 + 2 g C.(W' X') + C (W' W'^T) C^T.
+    if method == "enkf" or serial:
+        WX = sums[:, 1 + m :] - Wc.sum(axis=2)[:, :, None] * xbar[:, None, :]
+        if not full:
+            WX = WX[:, :, cols]
+        WtW = np.einsum("bmi,bki->bmk", Wc, Wc)
+    else:
+        # W' = P Y', so W' X' = (N - 1) P C^T and W' W'^T = (N - 1) P A P / g^2.
+        WX = (N - 1) * (P @ Ct)
+        WtW = ((N - 1) / gamma**2) * (P @ A @ P)
+    if infl.rtpp > 0.0:
+        # RTPP with X'a = g X' + W'^T C^T and X'b = g X' relaxes the weight perturbations
+        # W' towards zero: the increment's spread part shrinks, nothing else changes.
+        shrink = 1.0 - infl.rtpp
+        W = wbar[:, :, None] + relax_to_prior_perturbations(W - wbar[:, :, None], 0.0, infl.rtpp)
+        w = W[:, 0]
+        WX = shrink * WX
+        WtW = shrink**2 * WtW
+    var_a = (
+        gamma**2 * (N - 1) * var_u
+        + 2.0 * gamma * np.einsum("bmn,bmn->bn", Ct, WX)
+        + np.einsum("bmn,bmk,bkn->bn", Ct, WtW, Ct)
+    ) / (N - 1)
+    mean_a = xbar_u + np.einsum("bm,bmn->bn", wbar, Ct)
+    with np.errstate(invalid="ignore"):
+        lost = ~(var_a > 1e-6 * gamma**2 * var_u) | ~(
+            mean_a * mean_a <= _CANCELLATION_RATIO * var_a
+        )
+    lost = lost.any(axis=-1) & active  # basins whose spreads are recomputed from the states
+
+    # The analysis in one pass over the states: Xa = G X + W^T C'^T + c, per basin and
+    # column, with inflation (inflation.inflate) and RTPS (the scaled analysis
+    # perturbations about the analysis mean) folded into G, C' and c.
+    G = np.full_like(var_a, gamma)
+    Cs = Ct
+    c = (1.0 - gamma) * xbar_u if gamma != 1.0 else None
+    if infl.rtps > 0.0:
+        scale = rtps_factor(gamma * np.sqrt(var_u), np.sqrt(var_a), infl.rtps)
+        G = G * scale
+        Cs = Ct * scale[:, None, :]
+        c = scale * ((1.0 - gamma) * xbar_u - mean_a) + mean_a
+        var_a = scale**2 * var_a
+    plain = c is None
+    divide = not plain and bool(np.all(G > 0.0))
+    if divide:
+        Cs = Cs / G[:, None, :]
+    if m == 1:
+        Xa = np.einsum("bi,bn->bin", w, Cs[:, 0])
+    else:
+        Xa = np.matmul(np.ascontiguousarray(np.swapaxes(W, 1, 2)), Cs)
+    if plain:
+        Xa += Xu
+    elif divide:
+        Xa += Xu
+        Xa *= G[:, None, :]
+        Xa += c[:, None, :]
+    else:
+        Xa += G[:, None, :] * Xu
+        Xa += c[:, None, :]
+    if infl.rtps > 0.0 and lost.any():
+        # Where the small-quantity spread is not precise enough, redo the RTPS factor from
+        # the states: the result is a scaling about the mean, so it can be corrected.
+        sub = Xa[lost]
+        sub_mean = _sum(sub) / N
+        sd_now = np.sqrt(_exact_variance(sub))
+        s_used = scale[lost]
+        ok = s_used > 0.0
+        sd_pre = np.where(ok, sd_now / np.where(ok, s_used, 1.0), 0.0)
+        s_exact = rtps_factor(gamma * np.sqrt(var_u[lost]), sd_pre, infl.rtps)
+        ratio = np.where(ok, s_exact / np.where(ok, s_used, 1.0), 1.0)
+        Xa[lost] = sub_mean[:, None, :] + ratio[:, None, :] * (sub - sub_mean[:, None, :])
 
     clipped = np.zeros((B, n))
     outside = np.zeros(B, bool)
@@ -635,20 +666,12 @@ def ensemble_update(
     # come from the small-quantity formula unless clipping, relaxation, the serial path or
     # cancellation call for the two-pass computation.
     var_after = var_b.copy()
-    redo = outside.copy()  # basins whose spread after is recomputed from the states
-    if exact_after:
-        redo = active
+    redo = outside | lost  # basins whose spread after is recomputed from the states
+    keep = active & ~redo
+    if full:
+        var_after[keep] = var_a[keep]
     else:
-        with np.errstate(invalid="ignore"):
-            lost = ~(var_a > 1e-6 * gamma**2 * var_u) | ~(
-                mean_a * mean_a <= _CANCELLATION_RATIO * var_a
-            )
-        redo |= lost.any(axis=-1) & active
-        keep = active & ~redo
-        if full:
-            var_after[keep] = var_a[keep]
-        else:
-            var_after[np.ix_(keep, cols)] = var_a[keep]
+        var_after[np.ix_(keep, cols)] = var_a[keep]
     if redo.any():
         var_after[redo] = _variance_of(out, redo)
 

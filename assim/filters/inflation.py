@@ -41,6 +41,7 @@ __all__ = [
     "inflate",
     "relax_to_prior_perturbations",
     "relax_to_prior_spread",
+    "rtps_factor",
 ]
 
 
@@ -124,6 +125,27 @@ def relax_to_prior_perturbations(
     return (1.0 - alpha) * analysis_perturbations + alpha * prior_perturbations
 
 
+def rtps_factor(prior_spread: np.ndarray, analysis_spread: np.ndarray, alpha: float) -> np.ndarray:
+    """Factor on the analysis perturbations of relaxation to prior spread (RTPS).
+
+    Parameters
+    ----------
+    prior_spread, analysis_spread : (..., n_state) float64, mm
+        Ensemble standard deviations (ddof = 1) before and after the update.
+    alpha : float in [0, 1]
+
+    Returns
+    -------
+    (..., n_state) float64
+        ``alpha (sd_b - sd_a) / sd_a + 1``, so that the scaled perturbations have the
+        standard deviation ``alpha * sd_b + (1 - alpha) * sd_a``; 1 where there is no analysis
+        spread (nothing to rescale).
+    """
+    safe = np.where(analysis_spread > 0.0, analysis_spread, 1.0)
+    scale = alpha * (prior_spread - analysis_spread) / safe + 1.0  # Whitaker & Hamill (2012): RTPS
+    return np.where(analysis_spread > 0.0, scale, 1.0)
+
+
 def relax_to_prior_spread(
     analysis_perturbations: np.ndarray,
     prior_spread: np.ndarray,
@@ -145,7 +167,5 @@ def relax_to_prior_spread(
         Perturbations whose standard deviation is ``alpha * sd_b + (1 - alpha) * sd_a``.
         A state with no analysis spread is left as it is (nothing to rescale).
     """
-    safe = np.where(analysis_spread > 0.0, analysis_spread, 1.0)
-    scale = alpha * (prior_spread - analysis_spread) / safe + 1.0  # Whitaker & Hamill (2012): RTPS
-    scale = np.where(analysis_spread > 0.0, scale, 1.0)
+    scale = rtps_factor(prior_spread, analysis_spread, alpha)
     return analysis_perturbations * scale[..., None, :]
