@@ -22,6 +22,7 @@ from assim.filters.inflation import (
     inflate,
     relax_to_prior_perturbations,
     relax_to_prior_spread,
+    rtps_factor,
 )
 from assim.filters.kalman import kalman_predict, kalman_update
 from assim.filters.obs import Transform, obs_variance
@@ -38,4 +39,5 @@ __all__ = [
     "obs_variance",
     "relax_to_prior_perturbations",
     "relax_to_prior_spread",
+    "rtps_factor",
 ]
