@@ -35,9 +35,12 @@ perturbations, whitened innovation ``d``:
 Costs are O(N n_state n_obs) per basin plus O(n_obs^3) for the ``etkf`` eigenproblem. With
 one observation the states are read three times (sums of squares; one contraction with the
 member vectors; the update) and the result written once; the analysis spread follows from
-small quantities. Spreads from sums of squares are recomputed from deviations for the basins
-where the mean exceeds 1000 standard deviations (cancellation), so they keep about 1e-9
-relative precision.
+small quantities. Inflation costs no extra pass: multiplicative inflation and RTPS are a
+per-column factor and shift in the update (RTPS's factor comes from the analysis spread
+known beforehand), and RTPP, with ``X'a = g X' + W'C^T`` and ``X'b = g X'``, scales the
+weight perturbations ``W'`` by ``1 - alpha``. Spreads from sums of squares are recomputed
+from deviations for the basins where the mean exceeds 1000 standard deviations
+(cancellation), so they keep about 1e-9 relative precision.
 
 Perturbed observations of ``enkf`` are centred per basin and observation (their member
 mean is removed). Centring makes the analysis mean exactly the Kalman update of the
