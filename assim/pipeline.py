@@ -273,22 +273,18 @@ def _continued_product(path, cfg: Config, inputs, settings, restart_day: int):
     basins and members, last day the restart's valid day. Its days are then kept in front
     of the continuation, so that a run split by a restart gives the uninterrupted run's file.
     Anything else is None (the continuation is written alone)."""
-    import numpy as np
 
-    if not Path(path).exists():
-        return None
-    try:
-        with xr.open_dataset(path, decode_times=False) as ds:
-            same = (
-                ds.attrs.get("config_digest") == cfg.digest()
-                and [str(b) for b in ds["basin"].values] == list(inputs.basin_ids)
-                and ds.sizes.get("member", ds.sizes.get("quantile")) is not None
-                and ds.sizes.get("member", settings.members) == settings.members
-                and ds.sizes["time"] > 0
-                and int(np.asarray(ds["time"].values[-1])) == int(restart_day)
-            )
-    except (OSError, KeyError, ValueError):
-        return None
+    from assim.io.products import read_run_extent
+
+    extent = read_run_extent(path)
+    same = (
+        extent is not None
+        and extent["config_digest"] == cfg.digest()
+        and extent["basins"] == list(inputs.basin_ids)
+        and extent["members"] in (None, settings.members)
+        and extent["n_time"] > 0
+        and extent["last_day"] == int(restart_day)
+    )
     return path if same else None
 
 

@@ -33,7 +33,8 @@ from assim import paths
 from assim.caution import CAUTION_SHORT
 from assim.errors import InputError
 from assim.io.common import atomic_path
-from assim.io.skill import open_product, read_skill
+from assim.io.products import open_product
+from assim.io.skill import read_skill
 
 EXPERIMENT_STYLE = {
     "openloop": {"color": "#d95f02", "label": "open loop"},

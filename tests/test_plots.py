@@ -13,7 +13,7 @@ import assim.verify as v
 from assim import paths
 from assim.caution import CAUTION_SHORT
 from assim.errors import InputError
-from assim.io.skill import open_product
+from assim.io.products import open_product
 
 
 @pytest.fixture(scope="module")

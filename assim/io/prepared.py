@@ -27,7 +27,7 @@ import numpy as np
 import xarray as xr
 
 from assim.errors import InputError
-from assim.io.common import atomic_path, global_attributes
+from assim.io.common import atomic_path, global_attributes, labels_from_file, labels_to_file
 from assim.units import CANONICAL, canonical_unit
 
 FORCING_FILE = "forcing.nc"
@@ -202,31 +202,9 @@ def basins_dataset(basins, names, area_km2, latitude, longitude, model: str,
 # ---------------------------------------------------------------------------------- write
 
 
-# String labels are written as auxiliary coordinate variables (``basin_id(basin)``,
-# ``threshold_name(threshold)``, as in CF-1.8 appendix H.2.1), because a coordinate variable
-# proper must be numeric; readers turn them back into the ``basin`` and ``threshold`` index.
-_LABELS = {"basin": "basin_id", "threshold": "threshold_name"}
-
-
-def _labels_to_file(ds: xr.Dataset) -> xr.Dataset:
-    for dim, name in _LABELS.items():
-        if dim in ds.variables:
-            var = ds[dim]
-            ds = ds.drop_vars(dim).assign_coords({name: (dim, var.values.astype(object), dict(var.attrs))})
-    return ds
-
-
-def _labels_from_file(ds: xr.Dataset) -> xr.Dataset:
-    for dim, name in _LABELS.items():
-        if name in ds.variables and ds[name].dims == (dim,):
-            var = ds[name]
-            ds = ds.drop_vars(name).assign_coords({dim: (dim, var.values, dict(var.attrs))})
-    return ds
-
-
 def _write(ds: xr.Dataset, path: str | Path) -> Path:
     path = Path(path)
-    ds = _labels_to_file(ds)
+    ds = labels_to_file(ds)
     encoding: dict[str, dict] = {}
     for name, var in ds.variables.items():
         if var.dtype.kind == "f" and var.ndim == 2 and name != "time_bnds":
@@ -278,7 +256,7 @@ def _open(path: str | Path) -> xr.Dataset:
         raise InputError("the file is empty", file=path)
     try:
         with xr.open_dataset(path, engine="netcdf4") as ds:
-            return _labels_from_file(ds.load())
+            return labels_from_file(ds.load())
     except (OSError, ValueError, RuntimeError, KeyError, TypeError) as exc:
         raise InputError(f"not a readable NetCDF file ({type(exc).__name__})", file=path) from None
 

@@ -28,9 +28,23 @@ import netCDF4
 import numpy as np
 import pandas as pd
 import xarray as xr
+from xarray.backends.netCDF4_ import NETCDF4_PYTHON_LOCK
 
 from assim.errors import InputError
-from assim.io.common import atomic_path, global_attributes
+from assim.io.common import (
+    CONTRACT_ORDER,
+    LABELS,
+    atomic_path,
+    global_attributes,
+    labels_from_file,
+    labels_to_file,
+    open_netcdf,
+)
+
+# The lock xarray takes around every netCDF/HDF5 call. The streamed writers call netCDF4
+# directly, so they take it too: HDF5 is not thread-safe, and xarray may close a file from
+# any thread (when a lazily opened Dataset is garbage-collected) while a block is written.
+_NC_LOCK = NETCDF4_PYTHON_LOCK
 
 TIME_UNITS = "days since 1970-01-01 00:00:00"
 CALENDAR = "standard"
@@ -65,18 +79,25 @@ class _StreamedFile:
 
     def __enter__(self):
         tmp = self._stack.enter_context(atomic_path(self.path))
-        self.nc = netCDF4.Dataset(tmp, "w", format="NETCDF4")
+        with _NC_LOCK:
+            self.nc = netCDF4.Dataset(tmp, "w", format="NETCDF4")
         self._stack.callback(self._close_nc)
         try:
-            self._define()
+            with _NC_LOCK:
+                self._define()
+            self._after_define()
         except BaseException:
             self._stack.__exit__(None, None, None)
             raise
         return self
 
+    def _after_define(self):
+        """Work that reads other files through xarray (which takes the lock itself)."""
+
     def _close_nc(self):
-        if self.nc is not None and self.nc.isopen():
-            self.nc.close()
+        with _NC_LOCK:
+            if self.nc is not None and self.nc.isopen():
+                self.nc.close()
 
     def __exit__(self, exc_type, exc, tb):
         # closing the netCDF file first, then atomic_path renames (or removes on error)
@@ -87,7 +108,8 @@ class _StreamedFile:
 
     # helpers
     def _basin(self, basins):
-        v = self.nc.createVariable("basin", str, ("basin",))
+        # a string label, not a coordinate variable (assim.io.common.LABELS)
+        v = self.nc.createVariable(LABELS["basin"], str, ("basin",))
         v[:] = np.array([str(b) for b in basins], dtype=object)
         v.cf_role = "timeseries_id"
         v.long_name = "basin identifier"
@@ -267,6 +289,8 @@ class RunWriter(_StreamedFile):
             self._float_var("state_noise_water", ("basin", "time"), diag_chunks,
                             {"units": "mm", "long_name": "water added by the additive state noise, ensemble mean"},
                             ensemble=False)
+
+    def _after_define(self):
         if self.earlier is not None:
             self._copy_earlier()
 
@@ -279,10 +303,16 @@ class RunWriter(_StreamedFile):
                 src, dst = old[name].transpose(*self.nc.variables[name].dimensions), self.nc.variables[name]
                 for t in range(0, self.offset, step):
                     sl = slice(t, min(t + step, self.offset))
-                    dst[..., sl] = np.asarray(src.isel(time=sl).values)
+                    values = np.asarray(src.isel(time=sl).values)
+                    with _NC_LOCK:
+                        dst[..., sl] = values
 
     def write_block(self, start: int, arrays: Mapping[str, np.ndarray]) -> None:
         """Write output days ``start .. start + n - 1`` (see the class docstring)."""
+        with _NC_LOCK:
+            self._write_block(start, arrays)
+
+    def _write_block(self, start: int, arrays: Mapping[str, np.ndarray]) -> None:
         start += self.offset
         n = None
         for name, values in arrays.items():
@@ -298,7 +328,8 @@ class RunWriter(_StreamedFile):
 
     def set_attributes(self, **attrs) -> None:
         """Global attributes known only at the end (diagnostics, warnings)."""
-        self.nc.setncatts({k: str(v) for k, v in attrs.items()})
+        with _NC_LOCK:
+            self.nc.setncatts({k: str(v) for k, v in attrs.items()})
 
 
 class HindcastWriter(_StreamedFile):
@@ -325,7 +356,7 @@ class HindcastWriter(_StreamedFile):
         nc.createDimension("issue_time", len(self.issue_days))
         nc.createDimension("lead", self.leads)
         nc.createDimension("member", self.members)
-        v = nc.createVariable("experiment", str, ("experiment",))
+        v = nc.createVariable(LABELS["experiment"], str, ("experiment",))
         v[:] = np.array(EXPERIMENTS, dtype=object)
         v.long_name = "origin of the initial states"
         self._basin(self.basins)
@@ -340,10 +371,12 @@ class HindcastWriter(_StreamedFile):
     def write_block(self, experiment: str, start: int, discharge: np.ndarray) -> None:
         e = EXPERIMENTS.index(experiment)
         n = discharge.shape[1]
-        self.nc.variables["discharge"][e, :, :, :, start:start + n] = discharge.transpose(0, 2, 3, 1)
+        with _NC_LOCK:
+            self.nc.variables["discharge"][e, :, :, :, start:start + n] = discharge.transpose(0, 2, 3, 1)
 
     def set_attributes(self, **attrs) -> None:
-        self.nc.setncatts({k: str(v) for k, v in attrs.items()})
+        with _NC_LOCK:
+            self.nc.setncatts({k: str(v) for k, v in attrs.items()})
 
 
 def exceedance_probability(discharge: np.ndarray, thresholds: np.ndarray) -> np.ndarray:
@@ -423,24 +456,40 @@ def write_forecast(
     fdtype = "f4" if float32 else "f8"
     for v in ("discharge", "discharge_quantile"):
         encoding[v] = {"dtype": fdtype, "zlib": float32, "_FillValue": np.nan}
+    encoding.update({LABELS[d]: {"dtype": str} for d in ("basin", "threshold")})
     with atomic_path(path) as tmp:
-        ds.to_netcdf(tmp, encoding=encoding, format="NETCDF4")
+        labels_to_file(ds).to_netcdf(tmp, encoding=encoding, format="NETCDF4")
     ds.attrs["product_path"] = str(path)
     return ds
 
 
-CONTRACT_ORDER = ("experiment", "basin", "issue_time", "time", "lead", "quantile", "member", "threshold")
+def open_product(path, variables=(), *, any_of=()) -> xr.Dataset:
+    """Open a written product lazily in the contract's layout (dimension order
+    ``(basin, time, member)``, ``(experiment, basin, issue_time, lead, member)``, string ids
+    as the index of ``basin``, ``experiment``, ``threshold``), with
+    ``attrs["product_path"]`` set; see :func:`assim.io.common.open_netcdf`."""
+    return open_netcdf(path, variables, any_of=any_of, order=CONTRACT_ORDER)
 
 
-def open_product(path) -> xr.Dataset:
-    """Open a written product lazily, variables in the contract's dimension order
-    (``(basin, time, member)``, ``(experiment, basin, issue_time, lead, member)``; on disk
-    the time dimension comes last, as CF-1.8 section 2.4 recommends), with
-    ``attrs["product_path"]`` set."""
-    ds = xr.open_dataset(path)
-    ds = ds.transpose(*[d for d in CONTRACT_ORDER if d in ds.dims], ...)
-    ds.attrs["product_path"] = str(path)
-    return ds
+def read_run_extent(path) -> dict | None:
+    """What a run product covers: ``config_digest``, ``basins`` (ids), ``members`` (None for
+    a quantile product), ``n_time`` and ``last_day`` (day number); None when the file is
+    absent or unreadable (it is then not continued, but rewritten)."""
+    if not Path(path).is_file():
+        return None
+    try:
+        with xr.open_dataset(path, decode_times=False) as raw:
+            ds = labels_from_file(raw)
+            days = np.asarray(ds["time"].values)
+            return {
+                "config_digest": ds.attrs.get("config_digest"),
+                "basins": [str(b) for b in ds["basin"].values],
+                "members": ds.sizes.get("member"),
+                "n_time": int(days.size),
+                "last_day": int(days[-1]) if days.size else None,
+            }
+    except (OSError, KeyError, ValueError, IndexError):
+        return None
 
 
 def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: int) -> dict[str, np.ndarray]:

@@ -1,4 +1,4 @@
-"""skill.nc and skill.csv: the verification products; and a checked opener for products.
+"""skill.nc and skill.csv: the verification products.
 
 ``skill.nc`` holds ``skill`` and ``n`` on ``(basin, experiment, lead, metric)`` plus the
 rank histograms and reliability tables the figures draw. ``skill.csv`` is the tidy table of
@@ -8,7 +8,6 @@ rank histograms and reliability tables the figures draw. ``skill.csv`` is the ti
 from __future__ import annotations
 
 import os
-from collections.abc import Iterable
 from pathlib import Path
 
 import numpy as np
@@ -16,51 +15,11 @@ import pandas as pd
 import xarray as xr
 
 from assim.errors import InputError
-from assim.io.common import atomic_path
+from assim.io.common import atomic_path, labels_to_file
+from assim.io.common import open_netcdf as open_product
 
 CSV_COLUMNS = ("basin", "experiment", "lead", "metric", "value", "n")
 SKILL_VARIABLES = ("skill", "n")
-
-
-def open_product(
-    path: str | os.PathLike, variables: Iterable[str] = (), *, any_of: Iterable[str] = ()
-) -> xr.Dataset:
-    """Open a NetCDF product lazily and check that it holds the expected variables.
-
-    Parameters
-    ----------
-    path : path of the file
-    variables : names that must all be present (data variables or coordinates)
-    any_of : names of which at least one must be present (e.g. ``discharge`` or
-        ``discharge_quantile``)
-
-    Returns
-    -------
-    xarray.Dataset, opened lazily (values are read when used).
-
-    Raises
-    ------
-    InputError
-        naming the file (and the variable) when it is missing, unreadable or incomplete.
-    """
-    path = Path(path)
-    if not path.is_file():
-        raise InputError("file not found", file=path)
-    try:
-        ds = xr.open_dataset(path, engine="netcdf4")
-    except (OSError, ValueError) as exc:
-        raise InputError(f"cannot read as NetCDF ({exc})", file=path) from None
-    for name in variables:
-        if name not in ds.variables:
-            ds.close()
-            raise InputError("expected variable is missing", file=path, variable=name)
-    any_of = tuple(any_of)
-    if any_of and not any(name in ds.variables for name in any_of):
-        ds.close()
-        raise InputError(
-            "expected one of these variables, found none", file=path, variable=" or ".join(any_of)
-        )
-    return ds
 
 
 def write_skill(ds: xr.Dataset, nc_path: str | os.PathLike, csv_path: str | os.PathLike) -> None:
@@ -71,16 +30,19 @@ def write_skill(ds: xr.Dataset, nc_path: str | os.PathLike, csv_path: str | os.P
     ds : Dataset with ``skill`` and ``n`` on (basin, experiment, lead, metric)
     nc_path, csv_path : destinations; each file is written whole or not at all.
     """
+    on_disk = labels_to_file(ds)
     encoding: dict[str, dict] = {}
-    for name, var in ds.variables.items():
-        if name in ds.data_vars:
+    for name, var in on_disk.variables.items():
+        if name in on_disk.data_vars:
             encoding[str(name)] = {"zlib": True, "complevel": 4}
             if var.dtype.kind in "iu":
                 encoding[str(name)]["dtype"] = "int32"  # CF-1.8 section 2.2 has no 64-bit integers
         elif var.dtype.kind == "f":
             encoding[str(name)] = {"_FillValue": None}  # coordinates have no missing values
+        elif var.dtype.kind in "OUS":
+            encoding[str(name)] = {"dtype": str}
     with atomic_path(nc_path) as tmp:
-        ds.to_netcdf(tmp, engine="netcdf4", encoding=encoding)
+        on_disk.to_netcdf(tmp, engine="netcdf4", encoding=encoding)
     table = skill_table(ds)
     with atomic_path(csv_path) as tmp:
         table.to_csv(tmp, index=False, float_format="%.6g")

@@ -34,7 +34,8 @@ import xarray as xr
 from assim import paths
 from assim.errors import InputError
 from assim.io.common import global_attributes
-from assim.io.skill import open_product, write_skill
+from assim.io.products import open_product
+from assim.io.skill import write_skill
 from assim.verify import metrics as m
 
 EXPERIMENTS = ("openloop", "assimilation")
