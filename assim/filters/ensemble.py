@@ -159,15 +159,17 @@ def _check(states, predicted, observed, obs_variance, method, update_mask, obs_n
     m = Y.shape[-1]
     if y.shape != batch + (m,):
         _fail(f"observed must have shape {batch + (m,)}, got {y.shape}", "observed")
-    try:
-        r = np.broadcast_to(np.asarray(obs_variance, dtype=np.float64), y.shape)
-    except ValueError:
-        _fail(
-            f"obs_variance must broadcast to {y.shape}, got {np.shape(obs_variance)}",
-            "obs_variance",
-        )
+    r = np.asarray(obs_variance, dtype=np.float64)
+    if r.shape != y.shape:
+        try:
+            r = np.broadcast_to(r, y.shape)
+        except ValueError:
+            _fail(
+                f"obs_variance must broadcast to {y.shape}, got {np.shape(obs_variance)}",
+                "obs_variance",
+            )
     if update_mask is None:
-        mask = np.ones(n, dtype=bool)
+        mask = None  # every column
     else:
         mask = np.asarray(update_mask)
         if mask.dtype != bool or mask.shape != (n,):
@@ -229,19 +231,23 @@ def _variance(a: np.ndarray, total: np.ndarray, squares: np.ndarray) -> np.ndarr
     N = a.shape[1]
     mean = total / N
     var = np.maximum(squares - total * mean, 0.0) / (N - 1)
-    with np.errstate(invalid="ignore"):
-        redo = ~(mean * mean <= _CANCELLATION_RATIO * var)
-    redo = redo.any(axis=-1) & np.isfinite(squares).all(axis=-1)
-    if redo.mean() > 0.25:
+    redo = ~(mean * mean <= _CANCELLATION_RATIO * var)  # (comparisons raise no FP error)
+    redo = np.logical_or.reduce(redo, axis=-1)
+    count = np.count_nonzero(redo)
+    if not count:
+        return var
+    redo &= np.logical_and.reduce(np.isfinite(squares), axis=-1)
+    count = np.count_nonzero(redo)
+    if count > 0.25 * redo.size:
         var[redo] = _exact_variance(a)[redo]
-    elif redo.any():
+    elif count:
         var[redo] = _exact_variance(a[redo])
     return var
 
 
 def _variance_of(a: np.ndarray, rows: np.ndarray) -> np.ndarray:
     """Ensemble variance of the basins ``rows`` of a (B, N, k) array, (rows.sum(), k)."""
-    if rows.mean() > 0.25:
+    if np.count_nonzero(rows) > 0.25 * rows.size:
         return _variance(a, _sum(a), np.einsum("bin,bin->bn", a, a))[rows]
     sub = a[rows]
     return _variance(sub, _sum(sub), np.einsum("bin,bin->bn", sub, sub))
@@ -343,14 +349,19 @@ def _bounds(bound, name, cols, full, shape, B):
     """A bound broadcast to the updated columns, (B, N, n_u), without copying if it can;
     None if it is -inf (lower) or +inf (upper) everywhere: nothing to clip."""
     arr = np.asarray(bound, dtype=np.float64)
-    try:
-        np.broadcast_shapes(arr.shape, shape)
-    except ValueError:
-        _fail(f"must broadcast to the states' shape {shape}, got {arr.shape}", name)
+    same = arr.shape == shape
+    if not same:
+        try:
+            np.broadcast_shapes(arr.shape, shape)
+        except ValueError:
+            _fail(f"must broadcast to the states' shape {shape}, got {arr.shape}", name)
     if not full and arr.ndim and arr.shape[-1] != 1:
         arr = arr[..., cols]
-    if np.all(arr == (-np.inf if name == "lower" else np.inf)):
+    # all -inf (lower) / all +inf (upper), by one reduction (a NaN makes it False, as ==)
+    if not arr.size or (arr.max() == -np.inf if name == "lower" else arr.min() == np.inf):
         return None
+    if same:
+        return arr.reshape(B, shape[-2], cols.size)
     return np.broadcast_to(arr, shape[:-1] + (cols.size,)).reshape(B, shape[-2], cols.size)
 
 
@@ -362,12 +373,12 @@ def _clip(Xa, lo, hi, active):
     B = Xa.shape[0]
     outside = np.zeros(B, bool)
     if lo is not None:
-        outside |= np.less(Xa, lo).any(axis=(1, 2))
+        outside |= np.logical_or.reduce(np.less(Xa, lo), axis=(1, 2))
     if hi is not None:
-        outside |= np.greater(Xa, hi).any(axis=(1, 2))
+        outside |= np.logical_or.reduce(np.greater(Xa, hi), axis=(1, 2))
     outside &= active
     clipped = np.zeros((B, Xa.shape[2]))
-    count = int(outside.sum())
+    count = np.count_nonzero(outside)
     if 0 < count <= max(1, B // 8):
         # Few basins out of bounds: clip just those, the clipped water exactly.
         raw = Xa[outside]
@@ -484,7 +495,7 @@ def ensemble_update(
         y2 = transform.forward(y2)
         Y2 = transform.forward(Y2)
 
-    cols = np.flatnonzero(mask)
+    cols = np.arange(n) if mask is None else np.flatnonzero(mask)
     full = cols.size == n
 
     serial = method == "eakf" and m > 1
@@ -544,7 +555,7 @@ def ensemble_update(
                 z = np.where(used[:, :, None], z, 0.0)
             if centre_noise:
                 # Centring z_i - mean(z) is folded into the innovation: d - mean(z) + z_i.
-                dw = dw - z.mean(axis=2)
+                dw = dw - np.add.reduce(z, axis=2) / N
         if m == 1:
             zj = None if z is None else z[:, 0]
             w, p, wbar = _weights_one(method, dw[:, 0], Ypw[:, 0], A[:, 0, 0], zj, gamma)
@@ -553,7 +564,7 @@ def ensemble_update(
         else:
             W, P, wbar = _weights(method, dw, Ypw, A, z, gamma)
         if method == "enkf":
-            wbar = W.mean(axis=2)
+            wbar = np.add.reduce(W, axis=2) / N
             Wc = np.subtract(W, wbar[:, :, None], out=V[:, 1 + m :])
         else:
             wbar = wbar.reshape(B, m)
@@ -602,11 +613,8 @@ def ensemble_update(
         + np.einsum("bmn,bmk,bkn->bn", Ct, WtW, Ct)
     ) / (N - 1)
     mean_a = xbar_u + np.einsum("bm,bmn->bn", wbar, Ct)
-    with np.errstate(invalid="ignore"):
-        lost = ~(var_a > 1e-6 * gamma**2 * var_u) | ~(
-            mean_a * mean_a <= _CANCELLATION_RATIO * var_a
-        )
-    lost = lost.any(axis=-1) & active  # basins whose spreads are recomputed from the states
+    lost = ~(var_a > 1e-6 * gamma**2 * var_u) | ~(mean_a * mean_a <= _CANCELLATION_RATIO * var_a)
+    lost = np.logical_or.reduce(lost, axis=-1) & active  # basins whose spreads are recomputed from the states
 
     # The analysis in one pass over the states: Xa = G X + W^T C'^T + c, per basin and
     # column, with inflation (inflation.inflate) and RTPS (the scaled analysis
