@@ -25,6 +25,7 @@ stays flat and the results do not depend on the chunking or the scheduler.
 
 from __future__ import annotations
 
+import functools
 import warnings as _warnings
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
@@ -414,7 +415,7 @@ def analyse(
     -------
     states, discharge, theta (updated), and the filter's ``Analysis``.
     """
-    from assim import filters
+    from assim.filters import ensemble_update
 
     nu = states.shape[-1]
     cols = [states, discharge[..., None]] + ([] if theta is None else [theta])
@@ -422,7 +423,7 @@ def analyse(
     transform = _transform(settings)
     if transform is not None:
         obs_var = transform.variance(observed, obs_var)
-    a = filters.ensemble_update(
+    a = ensemble_update(
         x,
         discharge[..., None],
         observed[:, None],
@@ -441,18 +442,42 @@ def analyse(
 
 
 def _inflation(settings: Settings):
-    from assim import filters
-
-    return filters.Inflation(multiplicative=settings.inflation, rtps=settings.rtps, rtpp=settings.rtpp)
+    return _inflation_of(settings.inflation, settings.rtps, settings.rtpp)
 
 
 def _transform(settings: Settings):
-    from assim import filters
-
     if settings.transform == "none":
         return None
     lam = settings.transform_lambda if settings.transform == "boxcox" else 1.0
-    return filters.Transform(settings.transform, offset=settings.transform_offset, lam=lam)
+    return _transform_of(settings.transform, settings.transform_offset, lam)
+
+
+# Built once per distinct setting, not once per analysis (frozen records, safe to share).
+@functools.lru_cache(maxsize=32)
+def _inflation_of(multiplicative: float, rtps: float, rtpp: float):
+    from assim import filters
+
+    return filters.Inflation(multiplicative=multiplicative, rtps=rtps, rtpp=rtpp)
+
+
+@functools.lru_cache(maxsize=32)
+def _transform_of(kind: str, offset: float, lam: float):
+    from assim import filters
+
+    return filters.Transform(kind, offset=offset, lam=lam)
+
+
+def _member_sd(a: np.ndarray) -> np.ndarray:
+    """``a.std(axis=1, ddof=1)`` of a (basin, member) array, the same operations without
+    the Python layers of ``ndarray.std`` (it runs every day of a run)."""
+    n = a.shape[1]
+    mean = np.add.reduce(a, axis=1, keepdims=True)
+    np.true_divide(mean, n, out=mean)
+    d = np.subtract(a, mean)
+    np.square(d, out=d)
+    out = np.add.reduce(d, axis=1)
+    np.true_divide(out, n - 1, out=out)
+    return np.sqrt(out, out=out)
 
 
 def liu_west_shrink(theta: np.ndarray, a: float, z: np.ndarray, low: np.ndarray, high: np.ndarray) -> np.ndarray:
@@ -645,7 +670,7 @@ def advance(
             n_gated += gated
             nu = len(upd)
             # spreads computed here, row by row, so that they do not depend on the chunk size
-            spread_b = q.std(axis=1, ddof=1)
+            spread_b = _member_sd(q)
             # collapse: spread of the predicted discharge far below the obs error, many days
             low_spread = has & (spread_b < s.collapse_ratio * sd_blk[:, k])
             collapse = np.where(has, np.where(low_spread, collapse + 1, 0), collapse)
@@ -658,9 +683,9 @@ def advance(
                 arrays["innovation_variance"][:, k_o] = np.asarray(a.innovation_variance).reshape(nb)
                 arrays["clipped_water"][:, k_o] = _clipped_water(a, nb, nm, nu)
                 arrays["spread_before"][:, k_o] = spread_b
-                arrays["spread_after"][:, k_o] = qa.std(axis=1, ddof=1)
+                arrays["spread_after"][:, k_o] = _member_sd(qa)
         elif assim and record:
-            sb = q.std(axis=1, ddof=1)
+            sb = _member_sd(q)
             arrays["spread_before"][:, k_o] = sb
             arrays["spread_after"][:, k_o] = sb
         if not np.isfinite(x.sum()):
