@@ -71,9 +71,12 @@ class _Executor:
 
     def map(self, fn: Callable, items: Sequence) -> list:
         """``[fn(item) for item in items]``, one dask task per item, results in order."""
-        tasks = [dask.delayed(fn, pure=False)(item) for item in items]
-        if self.scheduler == "synchronous" or len(tasks) == 1 and self.client is None:
+        if self.scheduler == "synchronous" or len(items) == 1 and self.client is None:
             return [fn(item) for item in items]
+        # Each item enters its task as one opaque argument: dask would otherwise walk every
+        # field, dict and tuple of the inputs and states looking for collections, at every block.
+        tasks = [dask.delayed(fn, pure=False)(dask.delayed(item, traverse=False, pure=False))
+                 for item in items]
         if self.client is not None:
             return list(dask.compute(*tasks, scheduler=self.client))
         return list(dask.compute(*tasks, scheduler=self.scheduler, pool=self.pool,
