@@ -177,7 +177,7 @@ KILLS: list[str] = []  # one entry per kill that landed before the command finis
 
 
 @pytest.mark.parametrize("command, products, n_kills", [
-    (("run", "--mode", "assimilate"), ("analysis.nc", "restart.nc"), 9),
+    (("run", "--mode", "assimilate"), ("analysis.nc", "restart.nc"), 8),
     (("run", "--mode", "openloop"), ("openloop.nc", "restart-openloop.nc"), 5),
     (("hindcast",), ("hindcast.nc",), 6),
 ])
@@ -197,10 +197,13 @@ def test_killed_cli_leaves_whole_files_and_reruns_identically(scenario, tmp_path
     work = tmp_path / "killed"
     conf = _copy_inputs(scenario, work)
     results = work / "results"
-    for _ in range(n_kills):
-        at = float(rng.uniform(0.3, 0.95) * duration)
+    landed = attempts = 0
+    while landed < n_kills and attempts < n_kills + 4:  # a kill after the end (a busy machine) is retried
+        attempts += 1
+        at = float(rng.uniform(0.3, 0.9) * duration)
         killed = _run_and_kill(assim_cmd(*command, "--config", conf), at, work)
         if killed:
+            landed += 1
             KILLS.append(f"{' '.join(command)} at {at:.2f} s of {duration:.2f} s")
         if results.exists():
             assert_whole_or_absent(results)
@@ -265,7 +268,8 @@ def test_killed_workflow_resumes_to_identical_products(scenario, tmp_path):
     rng = np.random.default_rng(7)
     kills = 0
     for _ in range(4):
-        at = float(rng.uniform(0.2, 0.9) * duration)
+        # each resumed attempt has less left to do: kill early enough to land
+        at = float(rng.uniform(0.15, 0.35) * duration)
         if _run_and_kill([*cmd, "--rerun-incomplete"], at, work):
             kills += 1
             KILLS.append(f"snakemake at {at:.2f} s of {duration:.2f} s")
