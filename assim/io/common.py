@@ -175,6 +175,7 @@ def output_lock(path: str | os.PathLike, what: str) -> Iterator[Path]:
     from assim.errors import LockError
 
     path = Path(path)
+    created = not path.parent.exists()
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
@@ -214,6 +215,9 @@ def output_lock(path: str | os.PathLike, what: str) -> Iterator[Path]:
         with contextlib.suppress(OSError):
             if path.read_text() == mine:
                 path.unlink()
+        if created:  # a failed first run leaves no empty folder behind
+            with contextlib.suppress(OSError):
+                path.parent.rmdir()
 
 
 def _alive(pid: int) -> bool:
