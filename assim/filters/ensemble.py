@@ -520,8 +520,8 @@ def ensemble_update(
     usable = ~missing & np.isfinite(innovation) & np.isfinite(var_y) & states_ok[:, None]
     invalid = ~missing & ~usable
     if gate_sigma:
-        with np.errstate(invalid="ignore"):
-            gated = usable & (np.abs(innovation) > gate_sigma * np.sqrt(innovation_variance))
+        # (the variance can be negative only where the reading is missing, hence unusable)
+        gated = usable & (np.abs(innovation) > gate_sigma * np.sqrt(np.maximum(innovation_variance, 0.0)))
     else:
         gated = np.zeros_like(usable)
     used = usable & ~gated
@@ -619,16 +619,18 @@ def ensemble_update(
     # The analysis in one pass over the states: Xa = G X + W^T C'^T + c, per basin and
     # column, with inflation (inflation.inflate) and RTPS (the scaled analysis
     # perturbations about the analysis mean) folded into G, C' and c.
-    G = np.full_like(var_a, gamma)
+    G = None  # (only needed when the update is not plain: gamma != 1 or RTPS)
     Cs = Ct
     c = (1.0 - gamma) * xbar_u if gamma != 1.0 else None
     if infl.rtps > 0.0:
         scale = rtps_factor(gamma * np.sqrt(var_u), np.sqrt(var_a), infl.rtps)
-        G = G * scale
+        G = gamma * scale
         Cs = Ct * scale[:, None, :]
         c = scale * ((1.0 - gamma) * xbar_u - mean_a) + mean_a
         var_a = scale**2 * var_a
     plain = c is None
+    if not plain and G is None:
+        G = np.full_like(var_a, gamma)
     divide = not plain and bool(np.all(G > 0.0))
     if divide:
         Cs = Cs / G[:, None, :]
