@@ -534,6 +534,7 @@ def advance(
     issue_index: np.ndarray | None = None,
     leads: int = 0,
     forecast_forcing: str = "observed",
+    fixed: tuple | None = None,
 ) -> BlockResult:
     """Advance a chunk of the ensemble over days ``t0 .. t1 - 1`` (indices into inputs.days).
 
@@ -546,6 +547,9 @@ def advance(
     collect : gather the run outputs (False for a hindcast, which keeps forecasts only)
     issue_index : day indices (within the block) whose end states start a hindcast forecast
     leads : forecast length of the hindcast (days)
+    fixed : optional ``(prepared parameters, lower, upper)`` of the chunk, from
+        :func:`fixed_parameters`, when no parameter is estimated (they are then the same in
+        every block, and computing them is as costly as stepping the model over a month)
 
     Returns
     -------
@@ -565,9 +569,10 @@ def advance(
 
     x = np.array(state.states, dtype=np.float64).reshape(nb * nm, ns)
     params = {k: np.array(v, dtype=np.float64) for k, v in state.parameters.items()}
-    flat = {k: v.reshape(-1) for k, v in params.items()}
-    prepared = model.prepare(flat)
-    lower, upper = model.bounds(flat)
+    if fixed is not None and not est:
+        prepared, lower, upper = fixed
+    else:
+        prepared, lower, upper = fixed_parameters(model, params)
 
     # random numbers and perturbed forcing of the whole block, one call per stream
     ck = {name: pt.counter_keys(s.seed, inputs.keys, members, stream)
@@ -718,6 +723,22 @@ def advance(
     if snaps:
         hind = hindcast_forecasts(model, inputs, settings, snaps, members, leads, forecast_forcing)
     return BlockResult(arrays, end, hind, n_used, n_gated, collapse_first)
+
+
+def fixed_parameters(model: Model, parameters: Mapping[str, np.ndarray]) -> tuple:
+    """The model's prepared parameters and state bounds of an ensemble's members.
+
+    Parameters
+    ----------
+    parameters : dict name -> (basin, member) float64
+
+    Returns
+    -------
+    (prepared parameters, lower, upper), lower and upper (basin * member, n_state) mm
+    """
+    flat = {k: np.array(v, dtype=np.float64).reshape(-1) for k, v in parameters.items()}  # own copies
+    lower, upper = model.bounds(flat)
+    return model.prepare(flat), lower, upper
 
 
 def _clipped_water(a, nb: int, nm: int, nu: int) -> np.ndarray:
@@ -1026,6 +1047,10 @@ def run(
         every, leads, kind = hindcast
         issues = issue_indices(p, every, leads, len(inputs.days))
     sub_inputs = [inputs.subset(b) for b in b_chunks]
+    # without parameter estimation the parameters never change: prepare them once per task
+    fixed = {} if settings.estimate else {
+        (bi, mi): fixed_parameters(model, state.subset(b, m).parameters)
+        for bi, b in enumerate(b_chunks) for mi, m in enumerate(m_chunks)}
 
     n_used = np.zeros(nb, dtype=np.int64)
     n_gated = np.zeros(nb, dtype=np.int64)
@@ -1044,8 +1069,8 @@ def run(
             blk = issues[(issues >= t) & (issues < t1)]
             kwargs.update(issue_index=blk - t, leads=hindcast[1], forecast_forcing=hindcast[2])
         tasks = [(model, sub_inputs[bi].days_slice(t, end), state.subset(b, m), settings, 0, t1 - t,
-                  dict(kwargs, members=members[m]))
-                 for bi, b in enumerate(b_chunks) for m in m_chunks]
+                  dict(kwargs, members=members[m], fixed=fixed.get((bi, mi))))
+                 for bi, b in enumerate(b_chunks) for mi, m in enumerate(m_chunks)]
         return ex.submit(_run_task, tasks), t, t1
 
     with parallel.executor(settings.scheduler, settings.workers) as ex:
