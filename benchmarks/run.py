@@ -18,7 +18,8 @@ subprocess, for their own peak memory; the rest in this process), and tabulates 
    (raw data from the repository's ``sample_basin``), package installation excluded.
 
 It prints the machine and one table, and writes the table to ``benchmarks/out/latest.md``
-and every figure to ``benchmarks/out/latest.json``. ``--quick`` runs small sizes (a smoke
+and every figure to ``benchmarks/out/latest.json`` (``quick.md``, ``quick.json`` for
+``--quick``). ``--quick`` runs small sizes (a smoke
 test of the suite, under a minute, without the demo unless ``--demo``; its figures are not
 for quoting). Threads of the BLAS libraries are pinned to one: every "one core" figure runs
 in one thread, and the two-worker figures use exactly two.
@@ -484,8 +485,9 @@ def main(argv=None) -> int:
     print(text)
     print(f"(benchmark suite took {figures['total_s']:.0f} s)")
     OUT.mkdir(exist_ok=True)
-    (OUT / "latest.md").write_text(text)
-    (OUT / "latest.json").write_text(json.dumps(figures, indent=1, default=str))
+    name = "quick" if args.quick else "latest"  # a smoke run never replaces the full table
+    (OUT / f"{name}.md").write_text(text)
+    (OUT / f"{name}.json").write_text(json.dumps(figures, indent=1, default=str))
     return 0
 
 
