@@ -6,7 +6,7 @@ PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.assim-installed
 CORES  ?= 2
 
-.PHONY: demo test test-fast bench lint clean
+.PHONY: demo test test-fast bench bench-quick lint clean
 
 $(STAMP): pyproject.toml
 	@test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -36,6 +36,9 @@ demo: $(STAMP)
 
 bench: $(STAMP)
 	$(PY) benchmarks/run.py
+
+bench-quick: $(STAMP)
+	$(PY) benchmarks/run.py --quick
 
 lint: $(STAMP)
 	$(VENV)/bin/ruff check .
