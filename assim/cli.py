@@ -78,8 +78,8 @@ def _overrides(items: Sequence[str]) -> dict:
     return out
 
 
-def _lock_path(cfg, args: argparse.Namespace):
-    """The lock file guarding the outputs of ``args.command`` (None: no lock needed).
+def _outputs(cfg, args: argparse.Namespace):
+    """(lock file, files written) of ``args.command``; (None, []) when it needs no lock.
 
     One lock per product, so that stages writing different products (the open loop and the
     assimilation run of the workflow) still run side by side."""
@@ -88,14 +88,29 @@ def _lock_path(cfg, args: argparse.Namespace):
     from assim import paths
 
     if args.command == "prep":
-        return Path(cfg["data"]["prepared"]) / ".prepared.lock"
+        folder = Path(cfg["data"]["prepared"])
+        return folder / ".prepared.lock", [folder / n for n in ("forcing.nc", "observations.nc", "basins.nc")]
     if args.command == "run":
         product = paths.run_product(cfg, args.mode)
+        written = [product, paths.restart(cfg, args.mode)]
     elif args.command == "hindcast":
         product = paths.hindcast(cfg)
+        written = [product]
     else:
-        return None
-    return product.parent / f".{product.name}.lock"
+        return None, []
+    return product.parent / f".{product.name}.lock", written
+
+
+def _remove_stale_parts(written) -> None:
+    """Temporaries (``.name.*.part``) a killed run left beside the files this command writes;
+    safe to remove while this command holds their lock."""
+    import contextlib
+
+    for path in written:
+        if path.parent.is_dir():
+            for part in path.parent.glob(f".{path.name}.*.part"):
+                with contextlib.suppress(OSError):
+                    part.unlink()
 
 
 def _dispatch(args: argparse.Namespace) -> str:
@@ -106,7 +121,7 @@ def _dispatch(args: argparse.Namespace) -> str:
     from assim.io.common import output_lock
 
     cfg = load_config(args.config, **_overrides(args.set))
-    lock = _lock_path(cfg, args)
+    lock, written = _outputs(cfg, args)
     if lock is None:
         return _command(cfg, args)
     with contextlib.ExitStack() as stack:
@@ -115,6 +130,7 @@ def _dispatch(args: argparse.Namespace) -> str:
             stack.enter_context(output_lock(lock, f"the output of `assim {args.command}`"))
         for w in caught:  # a stale lock left by a killed run: say so, in one line
             print(f"assim {args.command}: warning: {w.message}", file=sys.stderr)
+        _remove_stale_parts(written)
         return _command(cfg, args)
 
 
