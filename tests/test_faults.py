@@ -184,8 +184,9 @@ KILLS: list[str] = []  # one entry per kill that landed before the command finis
 def test_killed_cli_leaves_whole_files_and_reruns_identically(scenario, tmp_path, command, products, n_kills):
     """SIGKILL of the whole process group at seeded random moments (drawn from the measured
     duration of an uninterrupted run): after each kill every product is whole or absent,
-    the lock left behind is detected as stale and does not block the rerun, and the rerun's
-    numbers equal the uninterrupted run's (np.array_equal). Common practice, no published
+    the lock left behind is detected as stale and does not block the rerun, the rerun removes
+    the killed run's temporaries, and the rerun's numbers equal the uninterrupted run's
+    (np.array_equal). Common practice, no published
     source."""
     ref = tmp_path / "reference"
     conf = _copy_inputs(scenario, ref)
@@ -212,6 +213,8 @@ def test_killed_cli_leaves_whole_files_and_reruns_identically(scenario, tmp_path
         assert r.returncode == 0, r.stderr
         lock = results / f".{products[0]}.lock"
         assert not lock.exists(), "the rerun left its lock behind"
+        leftovers = [p.name for name in products for p in results.glob(f".{name}.*.part")]
+        assert not leftovers, f"the rerun kept temporaries of the killed run: {leftovers}"
         if killed and "stale lock" in r.stderr:
             assert "warning" in r.stderr
         for name in products:
