@@ -1,6 +1,6 @@
 """The benchmark baselines compute what assim computes, so their speed ratios are honest.
 
-``benchmarks/baseline_loop.py`` is an independent member-by-member transcription of GR4J
+``benchmarks/baseline_loop.py`` is an independent member-by-member implementation of GR4J
 (Perrin, Michel & Andréassian 2003, J. Hydrol. 279, appendix) and of the stochastic EnKF
 with perturbed observations (Burgers, van Leeuwen & Evensen 1998, Mon. Wea. Rev. 126); these
 tests hold it to ``assim``'s vectorised model, filter and engine. ``benchmarks/
