@@ -195,7 +195,7 @@ def output_lock(path: str | os.PathLike, what: str) -> Iterator[Path]:
                 raise LockError(f"{what} is held by pid {pid} on host {other}; remove the lock file "
                                 "if that run is dead", file=path) from None
             if pid > 0 and _alive(pid):
-                raise LockError(f"{what} is being written by another run (pid {pid}); wait for it to "
+                raise LockError(f"{what} is in progress in another run (pid {pid}); wait for it to "
                                 "finish", file=path) from None
             warnings.warn(f"{path}: stale lock of pid {pid} (no longer running) replaced", RuntimeWarning,
                           stacklevel=3)

@@ -39,6 +39,7 @@ from assim.io.common import (
     labels_from_file,
     labels_to_file,
     open_netcdf,
+    output_lock,
 )
 
 # The lock xarray takes around every netCDF/HDF5 call. The streamed writers call netCDF4
@@ -544,65 +545,8 @@ def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: in
     return out
 
 
-@contextlib.contextmanager
 def forecast_lock(path):
-    """Hold a lock file (PID and host) while a forecast for one issue date runs.
-
-    A lock held by a live process is refused; a lock whose process is dead on this host
-    (a stale lock) is reported through ``warnings`` and replaced.
-
-    Raises
-    ------
-    LockError
-        naming the lock file, the PID and the host of the run holding it.
-    """
-    import socket
-    import warnings
-
-    from assim.errors import LockError
-
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    host = socket.gethostname()
-    mine = f"{os.getpid()} {host}\n"
-    for _ in range(2):
-        try:
-            fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
-        except FileExistsError:
-            try:
-                pid_text, _, other = path.read_text().strip().partition(" ")
-                pid = int(pid_text)
-            except (OSError, ValueError):
-                pid, other = -1, host
-            if other == host and pid > 0 and _alive(pid):
-                raise LockError(f"a forecast for this date is in progress (pid {pid} on {other}); "
-                                "wait for it to finish", file=path) from None
-            if other != host:
-                raise LockError(f"a forecast for this date is held by pid {pid} on host {other}; "
-                                "remove the lock file if that run is dead", file=path) from None
-            warnings.warn(f"{path}: stale lock of pid {pid} (no longer running) replaced", RuntimeWarning,
-                          stacklevel=3)
-            with contextlib.suppress(FileNotFoundError):
-                path.unlink()
-            continue
-        with os.fdopen(fd, "w") as f:
-            f.write(mine)
-        break
-    else:  # pragma: no cover - another run took the lock between our two attempts
-        raise LockError("a forecast for this date is starting in another process", file=path)
-    try:
-        yield path
-    finally:
-        with contextlib.suppress(FileNotFoundError):
-            if path.read_text() == mine:
-                path.unlink()
-
-
-def _alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
+    """Hold the lock file of one issue date's forecast (see
+    :func:`assim.io.common.output_lock`: a live holder is refused, a stale lock of a dead
+    process is reported and replaced)."""
+    return output_lock(path, "a forecast for this date")
