@@ -449,7 +449,7 @@ def plot_results(cfg: Mapping, issue_date: str | None = None) -> list[Path]:
     for exp, mode in (("openloop", "openloop"), ("assimilation", "assimilate")):
         p = paths.run_product(cfg, mode)
         if p.is_file():
-            runs[exp] = open_product(p, ("basin", "time"), any_of=("discharge", "discharge_quantile"))
+            runs[exp] = open_product(p, ("basin", "time"), any_of=("discharge", "discharge_quantile"), load=True)
     try:
         if runs:
             first = next(iter(runs.values()))
@@ -485,7 +485,7 @@ def plot_results(cfg: Mapping, issue_date: str | None = None) -> list[Path]:
         f_path = _latest_forecast(cfg)
     if f_path is not None:
         with open_product(f_path, ("exceedance_probability", "valid_time"),
-                          any_of=("discharge", "discharge_quantile")) as fc:
+                          any_of=("discharge", "discharge_quantile"), load=True) as fc:
             day = str(fc.attrs.get("issue_date", f_path.stem[len("forecast-"):]))[:10]
             history = int(cfg.get("forecast", {}).get("history_days", 30))
             for b in basins_of(fc):

@@ -109,7 +109,7 @@ def labels_from_file(ds):
     return ds
 
 
-def open_netcdf(path, variables=(), *, any_of=(), order=None):
+def open_netcdf(path, variables=(), *, any_of=(), order=None, load=False):
     """Open a file written by assim lazily, in the contract's layout.
 
     String labels become the index of their dimension, dimensions are put in ``order`` when
@@ -122,6 +122,8 @@ def open_netcdf(path, variables=(), *, any_of=(), order=None):
     variables : names that must all be present (data variables or coordinates)
     any_of : names of which at least one must be present
     order : dimension names in the wanted order (others follow as stored)
+    load : read everything into memory and close the file before returning (readers that
+        use the whole file anyway: no handle is left open behind the returned Dataset)
 
     Raises
     ------
@@ -139,6 +141,9 @@ def open_netcdf(path, variables=(), *, any_of=(), order=None):
         raise InputError("the file is empty", file=path)
     try:
         ds = xr.open_dataset(path, engine="netcdf4")
+        if load:
+            with ds:
+                ds = ds.load()
     except (OSError, ValueError, RuntimeError, KeyError, TypeError) as exc:
         raise InputError(f"cannot read as NetCDF ({type(exc).__name__})", file=path) from None
     ds = labels_from_file(ds)

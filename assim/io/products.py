@@ -464,12 +464,12 @@ def write_forecast(
     return ds
 
 
-def open_product(path, variables=(), *, any_of=()) -> xr.Dataset:
+def open_product(path, variables=(), *, any_of=(), load=False) -> xr.Dataset:
     """Open a written product lazily in the contract's layout (dimension order
     ``(basin, time, member)``, ``(experiment, basin, issue_time, lead, member)``, string ids
     as the index of ``basin``, ``experiment``, ``threshold``), with
     ``attrs["product_path"]`` set; see :func:`assim.io.common.open_netcdf`."""
-    return open_netcdf(path, variables, any_of=any_of, order=CONTRACT_ORDER)
+    return open_netcdf(path, variables, any_of=any_of, order=CONTRACT_ORDER, load=load)
 
 
 def read_run_extent(path) -> dict | None:

@@ -89,13 +89,13 @@ def verify_results(cfg: Mapping) -> xr.Dataset:
     for exp in EXPERIMENTS:
         path = paths.run_product(cfg, RUN_MODES[exp])
         if path.is_file():
-            runs[exp] = open_product(path, ("basin", "time"), any_of=("discharge", "discharge_quantile"))
+            runs[exp] = open_product(path, ("basin", "time"), any_of=("discharge", "discharge_quantile"), load=True)
         else:
             notes.append(f"{path.name} absent: lead 0 of {exp} not scored")
     hindcast = None
     hc_path = paths.hindcast(cfg)
     if hc_path.is_file():
-        hindcast = open_product(hc_path, ("discharge", "experiment", "issue_time", "lead"))
+        hindcast = open_product(hc_path, ("discharge", "experiment", "issue_time", "lead"), load=True)
     else:
         notes.append(f"{hc_path.name} absent: leads 1..L not scored")
     if not runs and hindcast is None:
