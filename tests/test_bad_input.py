@@ -22,6 +22,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
+import _scenario
 import netCDF4
 import numpy as np
 import pandas as pd
@@ -44,23 +45,11 @@ START, END = "2012-01-01", "2012-08-31"
 
 def make_raw(folder: Path, ids=IDS, start=START, end=END) -> Path:
     """A raw folder of ``ids`` cut from sample_basin/ to the days start..end."""
-    sample = REPO / "sample_basin"
-    folder.mkdir(parents=True, exist_ok=True)
-    doc = yaml.safe_load((sample / "basins.yaml").read_text())
-    doc["basins"] = [b for b in doc["basins"] if b["id"] in ids]
-    (folder / "basins.yaml").write_text(yaml.safe_dump(doc, sort_keys=False))
-    w = pd.read_csv(sample / "weather.csv", dtype=str)
-    w = w[w["basin"].isin(ids) & (w["date"] >= start) & (w["date"] <= end)]
-    w.to_csv(folder / "weather.csv", index=False)
-    g = pd.read_csv(sample / "gauge.csv", dtype=str)
-    day = g["timestamp"].str[:10]
-    g = g[g["basin"].isin(ids) & (day >= start) & (day <= end)]
-    g.to_csv(folder / "gauge.csv", index=False)
-    return folder
+    return _scenario.make_raw(folder, ids, start, end)
 
 
-def write_config(root: Path, **sections) -> Path:
-    cfg = {
+def config_defaults(root: Path) -> dict:
+    return {
         "data": {"raw": str(root / "raw"), "prepared": str(root / "prepared")},
         "results": str(root / "results"),
         "period": {"start": "2012-01-01", "end": "2012-08-31", "spinup_days": 30},
@@ -68,11 +57,10 @@ def write_config(root: Path, **sections) -> Path:
         "hindcast": {"every_days": 20, "leads": 3},
         "forecast": {"leads": 3},
     }
-    for k, v in sections.items():
-        cfg[k] = {**cfg.get(k, {}), **v} if isinstance(v, dict) else v
-    path = root / "config.yaml"
-    path.write_text(yaml.safe_dump(cfg, sort_keys=False))
-    return path
+
+
+def write_config(root: Path, **sections) -> Path:
+    return _scenario.write_config(root, config_defaults(root), **sections)
 
 
 def cli(*args, cwd=None, timeout=120):

@@ -18,6 +18,7 @@ import sys
 import time
 from pathlib import Path
 
+import _scenario
 import numpy as np
 import pandas as pd
 import pytest
@@ -50,24 +51,11 @@ REQUIRED = {
 def make_raw(folder: Path, ids=IDS, start="2012-01-01", end="2012-08-31", gauge_filter=None) -> Path:
     """A raw folder of ``ids`` cut from sample_basin/; ``gauge_filter(df) -> df`` edits the
     gauge readings (outages, late readings)."""
-    sample = REPO / "sample_basin"
-    folder.mkdir(parents=True, exist_ok=True)
-    doc = yaml.safe_load((sample / "basins.yaml").read_text())
-    doc["basins"] = [b for b in doc["basins"] if b["id"] in ids]
-    (folder / "basins.yaml").write_text(yaml.safe_dump(doc, sort_keys=False))
-    w = pd.read_csv(sample / "weather.csv", dtype=str)
-    w[w["basin"].isin(ids) & (w["date"] >= start) & (w["date"] <= end)].to_csv(folder / "weather.csv", index=False)
-    g = pd.read_csv(sample / "gauge.csv", dtype=str)
-    day = g["timestamp"].str[:10]
-    g = g[g["basin"].isin(ids) & (day >= start) & (day <= end)]
-    if gauge_filter is not None:
-        g = gauge_filter(g)
-    g.to_csv(folder / "gauge.csv", index=False)
-    return folder
+    return _scenario.make_raw(folder, ids, start, end, gauge_filter)
 
 
-def write_config(root: Path, **sections) -> Path:
-    cfg = {
+def config_defaults(root: Path) -> dict:
+    return {
         "data": {"raw": str(root / "raw"), "prepared": str(root / "prepared")},
         "results": str(root / "results"),
         "period": {"start": "2012-01-01", "end": "2012-08-31", "spinup_days": 30},
@@ -76,11 +64,10 @@ def write_config(root: Path, **sections) -> Path:
         "hindcast": {"every_days": 10, "leads": 3},
         "forecast": {"leads": 3},
     }
-    for k, v in sections.items():
-        cfg[k] = {**cfg.get(k, {}), **v} if isinstance(v, dict) else v
-    path = root / "config.yaml"
-    path.write_text(yaml.safe_dump(cfg, sort_keys=False))
-    return path
+
+
+def write_config(root: Path, **sections) -> Path:
+    return _scenario.write_config(root, config_defaults(root), **sections)
 
 
 def assim_cmd(*args):
