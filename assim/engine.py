@@ -18,9 +18,11 @@ One day of a run, for the whole flat (basin x member) batch at once:
 
 Time is cut into blocks (``ensemble.time_block_days``); within a block, each basin chunk
 (and, where members are independent, each member chunk) is one task that advances its part
-of the ensemble over the block and returns the block's outputs and its end state. The main
-thread hands each block to the sink and carries the states into the next block, so memory
-stays flat and the results do not depend on the chunking or the scheduler.
+of the ensemble over the block and returns the block's outputs. Each chunk is pinned to a
+worker lane (:mod:`assim.parallel`) where its state stays from one block to the next; the
+last block returns the end state. The main thread joins the chunks of each block and hands
+it to the sink while the lanes compute the next blocks (at most two blocks in flight), so
+memory stays flat and the results do not depend on the chunking or the scheduler.
 """
 
 from __future__ import annotations
@@ -511,7 +513,7 @@ class BlockResult:
     """What one task returns: outputs of its days, end state, hindcasts and counters."""
 
     arrays: dict[str, np.ndarray]
-    state: EnsembleState
+    state: EnsembleState | None  # None while it stays in the chunk's lane (assim.parallel)
     hindcast: np.ndarray | None  # (basin, issue, lead, member) m3 s-1
     n_used: np.ndarray  # (basin,) readings used
     n_gated: np.ndarray  # (basin,)
@@ -963,7 +965,7 @@ def _merge(results: list[list[BlockResult]]) -> BlockResult:
         arrays = {}
         for k, v in row[0].arrays.items():
             arrays[k] = np.concatenate([r.arrays[k] for r in row], axis=2) if v.ndim == 3 else v
-        st = EnsembleState(
+        st = None if row[0].state is None else EnsembleState(
             row[0].state.day,
             np.concatenate([r.state.states for r in row], axis=1),
             {k: np.concatenate([r.state.parameters[k] for r in row], axis=1) for k in row[0].state.parameters},
@@ -976,7 +978,7 @@ def _merge(results: list[list[BlockResult]]) -> BlockResult:
     if len(rows) == 1:
         return r0
     arrays = {k: np.concatenate([r.arrays[k] for r in rows], axis=0) for k in r0.arrays}
-    st = EnsembleState(
+    st = None if r0.state is None else EnsembleState(
         r0.state.day,
         np.concatenate([r.state.states for r in rows], axis=0),
         {k: np.concatenate([r.state.parameters[k] for r in rows], axis=0) for k in r0.state.parameters},
@@ -989,9 +991,27 @@ def _merge(results: list[list[BlockResult]]) -> BlockResult:
                        cat([r.collapse_first for r in rows]))
 
 
-def _run_task(args):
-    model, inputs, state, settings, t0, t1, kwargs = args
-    return advance(model, inputs, state, settings, t0, t1, **kwargs)
+def _chunk_task(args, store) -> BlockResult:
+    """One chunk over one time block, on the chunk's lane (see :mod:`assim.parallel`).
+
+    The first block of a chunk brings its state; later blocks take the end state the
+    previous block left in the lane's ``store``, with the prepared parameters (fixed when no
+    parameter is estimated). The result carries the end state only after the last block (or
+    a failure); otherwise the state stays in the store."""
+    key, model, inputs, state, settings, t1, kwargs, last = args
+    if state is None:
+        state = store.pop(key)
+    fixed = None
+    if not settings.estimate:
+        fixed = store.get((key, "fixed"))
+        if fixed is None:
+            fixed = store[(key, "fixed")] = fixed_parameters(model, state.parameters)
+    r = advance(model, inputs, state, settings, 0, t1, fixed=fixed, **kwargs)
+    if last or r.first_bad is not None:
+        store.pop((key, "fixed"), None)
+        return r
+    store[key] = r.state
+    return replace(r, state=None)
 
 
 def run(
@@ -1047,10 +1067,9 @@ def run(
         every, leads, kind = hindcast
         issues = issue_indices(p, every, leads, len(inputs.days))
     sub_inputs = [inputs.subset(b) for b in b_chunks]
-    # without parameter estimation the parameters never change: prepare them once per task
-    fixed = {} if settings.estimate else {
-        (bi, mi): fixed_parameters(model, state.subset(b, m).parameters)
-        for bi, b in enumerate(b_chunks) for mi, m in enumerate(m_chunks)}
+    chunks = [(bi, b, mi, m) for bi, b in enumerate(b_chunks) for mi, m in enumerate(m_chunks)]
+    blocks = [(t, min(t + settings.time_block_days, p.stop + 1))
+              for t in range(p.start, p.stop + 1, settings.time_block_days)]
 
     n_used = np.zeros(nb, dtype=np.int64)
     n_gated = np.zeros(nb, dtype=np.int64)
@@ -1058,9 +1077,10 @@ def run(
     total = p.stop + 1 - p.start
     out0 = max(p.start, p.first_output)
     issue_done = 0
-    def start_block(ex, t, state):
-        """Submit the tasks of the block starting at day index t; returns (future, t, t1)."""
-        t1 = min(t + settings.time_block_days, p.stop + 1)
+
+    def submit_block(ex, j):
+        """Submit the tasks of block ``j``, one per chunk on the chunk's lane."""
+        t, t1 = blocks[j]
         # each task gets the days of its block only (and the leads after it), indices shifted
         end = min(len(inputs.days), t1 + (hindcast[1] if hindcast is not None else 0))
         kwargs = dict(first_output=p.first_output - t, first_analysis=p.first_analysis - t,
@@ -1068,27 +1088,31 @@ def run(
         if issues is not None:
             blk = issues[(issues >= t) & (issues < t1)]
             kwargs.update(issue_index=blk - t, leads=hindcast[1], forecast_forcing=hindcast[2])
-        tasks = [(model, sub_inputs[bi].days_slice(t, end), state.subset(b, m), settings, 0, t1 - t,
-                  dict(kwargs, members=members[m], fixed=fixed.get((bi, mi))))
-                 for bi, b in enumerate(b_chunks) for mi, m in enumerate(m_chunks)]
-        return ex.submit(_run_task, tasks), t, t1
+        last = j == len(blocks) - 1
+        return [ex.submit_to(ci, ci, _chunk_task,
+                             (ci, model, sub_inputs[bi].days_slice(t, end), state.subset(b, m) if j == 0 else None,
+                              settings, t1 - t, dict(kwargs, members=members[m]), last))
+                for ci, (bi, b, mi, m) in enumerate(chunks)]
 
     with parallel.executor(settings.scheduler, settings.workers) as ex:
-        pending = start_block(ex, p.start, state) if p.start <= p.stop else None
-        while pending is not None:
-            future, t, t1 = pending
-            flat_results = future.result()
+        # Every lane gets its chunks' next block before it finishes the current one; the main
+        # thread meanwhile joins and writes the finished block. Two blocks in flight bound memory.
+        ahead = 2
+        pending = [submit_block(ex, j) for j in range(min(ahead, len(blocks)))]
+        for j, (t, t1) in enumerate(blocks):
+            flat_results = [f.result() for f in pending.pop(0)]
             bad = [r.first_bad for r in flat_results if r.first_bad is not None]
             if bad:
                 basin, day, var = min(bad, key=lambda x: x[1])
                 raise RunError("the ensemble state became NaN or infinite; check the forcing, the "
                                "parameters and the filter settings", variable=var,
                                place=f"basin {basin}, {np.datetime64('1970-01-01', 'D') + day}")
+            if j + ahead < len(blocks):
+                pending.append(submit_block(ex, j + ahead))
             grid = [flat_results[i * len(m_chunks):(i + 1) * len(m_chunks)] for i in range(len(b_chunks))]
             merged = _merge(grid)
-            state = merged.state
-            # the next block computes while this one is written
-            pending = start_block(ex, t1, state) if t1 <= p.stop else None
+            if merged.state is not None:  # the last block brings the end state back
+                state = merged.state
             if "state_noise_water" in merged.arrays:
                 merged.arrays["state_noise_water"] = merged.arrays["state_noise_water"].mean(axis=2)
             if settings.quantiles is not None and merged.arrays:
