@@ -78,59 +78,21 @@ def _overrides(items: Sequence[str]) -> dict:
     return out
 
 
-def _outputs(cfg, args: argparse.Namespace):
-    """(lock file, files written) of ``args.command``; (None, []) when it needs no lock.
-
-    One lock per product, so that stages writing different products (the open loop and the
-    assimilation run of the workflow) still run side by side."""
-    from pathlib import Path
-
-    from assim import paths
-
-    if args.command == "prep":
-        folder = Path(cfg["data"]["prepared"])
-        return folder / ".prepared.lock", [folder / n for n in ("forcing.nc", "observations.nc", "basins.nc")]
-    if args.command == "run":
-        product = paths.run_product(cfg, args.mode)
-        written = [product, paths.restart(cfg, args.mode)]
-    elif args.command == "hindcast":
-        product = paths.hindcast(cfg)
-        written = [product]
-    else:
-        return None, []
-    return product.parent / f".{product.name}.lock", written
-
-
-def _remove_stale_parts(written) -> None:
-    """Temporaries (``.name.*.part``) a killed run left beside the files this command writes;
-    safe to remove while this command holds their lock."""
-    import contextlib
-
-    for path in written:
-        if path.parent.is_dir():
-            for part in path.parent.glob(f".{path.name}.*.part"):
-                with contextlib.suppress(OSError):
-                    part.unlink()
-
-
 def _dispatch(args: argparse.Namespace) -> str:
-    import contextlib
+    """Run the command; every warning it raises (a stale lock replaced, a restart written
+    with other settings) is printed as one line on stderr."""
     import warnings
 
     from assim.config import load_config
-    from assim.io.common import output_lock
+    from assim.errors import AssimWarning
+
+    def one_line(message, category, filename, lineno, file=None, line=None):
+        print(f"assim {args.command}: warning: {message}", file=sys.stderr)
 
     cfg = load_config(args.config, **_overrides(args.set))
-    lock, written = _outputs(cfg, args)
-    if lock is None:
-        return _command(cfg, args)
-    with contextlib.ExitStack() as stack:
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always")
-            stack.enter_context(output_lock(lock, f"the output of `assim {args.command}`"))
-        for w in caught:  # a stale lock left by a killed run: say so, in one line
-            print(f"assim {args.command}: warning: {w.message}", file=sys.stderr)
-        _remove_stale_parts(written)
+    with warnings.catch_warnings():
+        warnings.showwarning = one_line
+        warnings.simplefilter("always", AssimWarning)
         return _command(cfg, args)
 
 

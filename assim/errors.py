@@ -64,3 +64,9 @@ class RunError(AssimError):
 
 class LockError(RunError):
     """Another run holds the lock on the same outputs."""
+
+
+class AssimWarning(RuntimeWarning):
+    """A notice for the operator: the run goes on, but something needs a look (a stale lock
+    replaced, a restart written with other settings). The CLI always prints these, as one
+    line, whatever the warning filters."""

@@ -18,9 +18,16 @@ from assim.config import Config
 
 
 def prep(cfg: Config) -> dict[str, xr.Dataset]:
-    """Raw records -> prepared layer; returns {"forcing", "observations", "basins"} Datasets."""
+    """Raw records -> prepared layer; returns {"forcing", "observations", "basins"} Datasets.
+
+    Holds the prepared folder's lock while writing (a second ``prep`` is refused)."""
+    from assim.io.common import output_lock
+
     _prep = importlib.import_module("assim.prep")
-    return _prep.prepare(cfg)
+    folder = Path(cfg["data"]["prepared"])
+    with output_lock(folder / ".prepared.lock", "the prepared layer",
+                     [folder / n for n in ("forcing.nc", "observations.nc", "basins.nc")]):
+        return _prep.prepare(cfg)
 
 
 def check(cfg: Config) -> str:
@@ -159,11 +166,12 @@ def _to_restart(state, model, inputs, identity):
 def _read_checked_restart(path, model, inputs, identity):
     import warnings
 
+    from assim.errors import AssimWarning
     from assim.io.restart import check_restart, read_restart
 
     r = read_restart(path)
     for w in check_restart(r, identity=identity, basins=inputs.basin_ids, state_names=model.state_names):
-        warnings.warn(w, RuntimeWarning, stacklevel=3)
+        warnings.warn(w, AssimWarning, stacklevel=3)
     return _to_state(r)
 
 
@@ -222,17 +230,35 @@ def run(cfg: Config, mode: str = "assimilate", restart_from=None, until=None) ->
 
     Raises
     ------
-    InputError, ConfigError, RestartError, RunError
+    InputError, ConfigError, RestartError, RunError; LockError while another run writes the
+    same product
     """
-    import sys
-
-    from assim import engine, paths
+    from assim import paths
     from assim.errors import ConfigError
-    from assim.io.products import RunWriter, open_product
-    from assim.io.restart import write_restart
 
     if mode not in ("openloop", "assimilate"):
         raise ConfigError(f"mode must be openloop or assimilate, not {mode!r}", variable="mode")
+    with _product_lock(paths.run_product(cfg, mode), paths.restart(cfg, mode)):
+        return _run(cfg, mode, restart_from, until)
+
+
+def _product_lock(product: Path, *also: Path):
+    """The lock of one product (and the files written with it), beside it.
+
+    One lock per product, so that stages writing different products (the open loop and the
+    assimilation run of the workflow) still run side by side."""
+    from assim.io.common import output_lock
+
+    return output_lock(product.parent / f".{product.name}.lock", f"writing {product.name}", [product, *also])
+
+
+def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
+    import sys
+
+    from assim import engine, paths
+    from assim.io.products import RunWriter, open_product
+    from assim.io.restart import write_restart
+
     start, end = _period(cfg)
     model, inputs, _ = _inputs(cfg, start, end)
     settings = engine.settings_from_config(cfg, model, mode)
@@ -264,7 +290,8 @@ def run(cfg: Config, mode: str = "assimilate", restart_from=None, until=None) ->
         bar.close()
     for w in engine.summarise_warnings(summary.warnings):
         print(f"warning: {w}", file=sys.stderr)
-    write_restart(paths.restart(cfg, mode), _to_restart(summary.state, model, inputs, identity))
+    write_restart(paths.restart(cfg, mode),
+                  _to_restart(summary.state, model, inputs, {**identity, **_readings_identity(cfg, summary.state.day)}))
     return open_product(path)
 
 
@@ -311,6 +338,13 @@ def hindcast(cfg: Config) -> xr.Dataset:
     -------
     the written Dataset (lazily opened), ``attrs["product_path"]`` set
     """
+    from assim import paths
+
+    with _product_lock(paths.hindcast(cfg)):
+        return _hindcast(cfg)
+
+
+def _hindcast(cfg: Config) -> xr.Dataset:
     import dataclasses
 
     import numpy as np
@@ -359,29 +393,88 @@ def hindcast(cfg: Config) -> xr.Dataset:
     return open_product(path)
 
 
+def _readings_digests(cfg: Config, through_days) -> dict[int, str]:
+    """Digest of the gauge readings the filter sees (usable discharge and QC flags) from
+    ``period.start`` through each of ``through_days``: {day: sha256 hex}.
+
+    A restart records the digest through its valid day; a later digest that differs means a
+    reading arrived or changed after the restart was written (a late reading, a re-prepared
+    raw folder), so that restart no longer holds every reading up to its day."""
+    import hashlib
+
+    import numpy as np
+
+    from assim.io import prepared as prep_io
+    from assim.io.products import day_numbers
+
+    obs = prep_io.read_observations(Path(cfg["data"]["prepared"]) / prep_io.OBSERVATIONS_FILE)
+    days = day_numbers(obs["time"].values)
+    usable = prep_io.usable_discharge(obs).values.T  # (time, basin)
+    usable = np.where(np.isnan(usable), np.nan, usable)  # one NaN bit pattern
+    flags = obs["qc_flag"].values.astype(np.int64).T
+    rows = np.ascontiguousarray(np.concatenate([usable.view(np.int64), flags], axis=1))  # one row a day
+    h = hashlib.sha256("\n".join(str(b) for b in obs["basin"].values).encode())
+    i = int(np.searchsorted(days, _day(cfg["period"]["start"], "period.start")))
+    out = {}
+    for day in sorted(set(int(d) for d in through_days)):
+        j = int(np.searchsorted(days, day, side="right"))
+        if j > i:  # hashing whole days, so the digest does not depend on how the days are split
+            h.update(rows[i:j].tobytes())
+            i = j
+        out[day] = h.copy().hexdigest()
+    return out
+
+
+def _readings_identity(cfg: Config, day: int) -> dict[str, str]:
+    """Restart attributes recording which readings the states have taken in."""
+    from assim.io.products import dates
+
+    return {"readings_through": str(dates([day])[0].date()), "readings_digest": _readings_digests(cfg, [day])[day]}
+
+
 def _latest_restart(cfg: Config, issue_day: int):
-    """The newest forecasts/restart-YYYY-MM-DD.nc before the issue day, else restart.nc."""
+    """The restart a forecast for ``issue_day`` starts from, and the warnings about it.
+
+    The newest forecasts/restart-YYYY-MM-DD.nc before the issue day (else restart.nc) whose
+    readings are still those on file: a restart written before a late reading of its days
+    arrived is passed over for an older one, so that the next forecast assimilates the late
+    reading. When no restart is current (readings before the run's own restart changed), the
+    newest is used and the warning says so.
+    """
     import re
 
     from assim import paths
     from assim.errors import RestartError
+    from assim.io.restart import read_restart
 
-    best = None
+    candidates = []
     folder = paths.forecasts(cfg)
     if folder.is_dir():
         for f in folder.glob("restart-*.nc"):
             m = re.fullmatch(r"restart-(\d{4}-\d{2}-\d{2})\.nc", f.name)
-            if m:
-                d = _day(m.group(1), f.name)
-                if d < issue_day and (best is None or d > best[0]):
-                    best = (d, f)
-    if best is not None:
-        return best[1]
+            if m and _day(m.group(1), f.name) < issue_day:
+                candidates.append(f)
     p = paths.restart(cfg)
-    if not p.exists():
+    if p.exists():
+        candidates.append(p)
+    if not candidates:
         raise RestartError("no restart to start the forecast from: run `assim run --mode assimilate` first",
                            file=p)
-    return p
+    restarts = sorted((read_restart(f) for f in candidates), key=lambda r: r.valid_day, reverse=True)
+    digests = _readings_digests(cfg, [r.valid_day for r in restarts])
+    skipped = []
+    for r in restarts:
+        recorded = r.identity.get("readings_digest")
+        if recorded is None or recorded == digests[r.valid_day]:  # None: written before digests existed
+            break
+        skipped.append(r)
+    else:
+        r = restarts[0]
+        return Path(r.path), [f"{r.path}: gauge readings up to {restarts[-1].identity.get('readings_through')} "
+                              "changed after every restart was written; the forecast continues from the newest "
+                              "restart without them (rerun `assim run --mode assimilate` to take them in)"]
+    return Path(r.path), [f"{s.path}: passed over, readings up to {s.identity.get('readings_through')} arrived "
+                          "or changed after it was written" for s in skipped]
 
 
 def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
@@ -399,21 +492,22 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
     readings were assimilated.
     """
     import dataclasses
+    import sys
 
     from assim import engine, paths
     from assim.errors import ConfigError, RestartError
     from assim.io.products import dates, forecast_lock, read_forcing_forecast, write_forecast
-    from assim.io.restart import write_restart
+    from assim.io.restart import read_restart, write_restart
 
     fc = cfg["forecast"]
     kind, leads = fc["forcing"], int(fc["leads"])
     issue_day = _day(issue_date, "--issue-date")
     iso = str(dates([issue_day])[0].date())
     lock = paths.forecasts(cfg) / f".forecast-{iso}.lock"
-    with forecast_lock(lock):
-        restart_path = _latest_restart(cfg, issue_day)
-        from assim.io.restart import read_restart
-
+    with forecast_lock(lock, [paths.forecast(cfg, iso), paths.forecast_restart(cfg, iso)]):
+        restart_path, passed_over = _latest_restart(cfg, issue_day)
+        for w in passed_over:
+            print(f"warning: {w}", file=sys.stderr)
         valid = read_restart(restart_path).valid_day
         if valid > issue_day:
             raise RestartError(f"the restart is valid at {dates([valid])[0].date()}, after the issue date {iso}",
@@ -435,7 +529,8 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
         else:
             analysis = (f"performed: {n_used} gauge readings assimilated over the {n_days} days since the "
                         f"last restart (valid at {dates([valid])[0].date()})")
-        write_restart(paths.forecast_restart(cfg, iso), _to_restart(summary.state, model, inputs, identity))
+        write_restart(paths.forecast_restart(cfg, iso),
+                      _to_restart(summary.state, model, inputs, {**identity, **_readings_identity(cfg, issue_day)}))
         file_forcing = None
         if kind == "file":
             if not fc["forcing_file"]:
@@ -450,6 +545,7 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
             quantiles=fc["quantiles"], thresholds={n: thr[:, j] for j, n in enumerate(names)},
             analysis=analysis, float32=settings.float32,
             attrs={**_attrs(cfg, model, settings), "forcing": kind, "restart": str(restart_path),
-                   **({"warnings": " | ".join(summary.warnings)} if summary.warnings else {})},
+                   **({"warnings": " | ".join(passed_over + summary.warnings)}
+                      if passed_over or summary.warnings else {})},
         )
     return ds

@@ -409,8 +409,6 @@ def test_gauge_outages_run_through(tmp_path):
         assert np.isfinite(hc["discharge"].values).all()
 
 
-@pytest.mark.xfail(strict=True, reason="pipeline.forecast/_latest_restart start day d+1 from restart-d, whose "
-                   "analysis ran before day d's reading arrived: the late reading is never assimilated")
 def test_late_reading_is_picked_up_by_the_next_forecast(tmp_path):
     """The gauge readings of day d arrive after the forecast of day d was issued: that
     forecast says no reading was assimilated for d; after the late rows are appended and the
@@ -437,6 +435,13 @@ def test_late_reading_is_picked_up_by_the_next_forecast(tmp_path):
     assert r.returncode == 0, r.stderr
     r = cli("forecast", "--issue-date", d1, "--config", conf)
     assert r.returncode == 0, r.stderr
+    assert f"restart-{d}.nc: passed over" in r.stderr, r.stderr
     with xr.open_dataset(tmp_path / "results" / "forecasts" / f"forecast-{d1}.nc") as f:
-        note = f.attrs["analysis"]
+        note, warned = f.attrs["analysis"], f.attrs.get("warnings", "")
     assert note.startswith("performed: 2 gauge readings"), note
+    assert f"restart-{d}.nc: passed over" in warned
+    # with no further change, the next forecast continues from the newest restart (d+1)
+    r = cli("forecast", "--issue-date", "2012-08-22", "--config", conf)
+    assert r.returncode == 0 and "passed over" not in r.stderr, r.stderr
+    with xr.open_dataset(tmp_path / "results" / "forecasts" / "forecast-2012-08-22.nc") as f:
+        assert f"valid at {d1}" in f.attrs["analysis"], f.attrs["analysis"]

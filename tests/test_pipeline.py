@@ -279,3 +279,37 @@ def test_forecast_lock_held_and_stale(operational):
     assert ds.attrs["analysis"].startswith("performed")
     assert not lock.exists()
     assert os.path.exists(ds.attrs["product_path"])
+
+
+@pytest.mark.parametrize("call, product", [
+    (lambda cfg: pipeline.run(cfg, mode="openloop"), "openloop.nc"),
+    (lambda cfg: pipeline.run(cfg, mode="assimilate"), "analysis.nc"),
+    (pipeline.hindcast, "hindcast.nc"),
+])
+def test_run_and_hindcast_hold_their_product_lock(prepared, tmp_path, call, product):
+    """The lock is taken by the pipeline itself, not only by the command line: a caller of
+    the Python API is refused while a live process writes the product, and nothing of the
+    product is written; the temporaries a killed run left are removed once the lock is held.
+    Common practice, no published source."""
+    import socket
+
+    cfg = _cfg(prepared, tmp_path / "results")
+    (tmp_path / "results").mkdir()
+    lock = tmp_path / "results" / f".{product}.lock"
+    leftover = tmp_path / "results" / f".{product}.x1y2.part"
+    leftover.write_bytes(b"half a file")
+    sleeper = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(30)"])
+    try:
+        lock.write_text(f"{sleeper.pid} {socket.gethostname()}\n")
+        with pytest.raises(LockError, match=f"writing {product}.*pid {sleeper.pid}"):
+            call(cfg)
+        assert not (tmp_path / "results" / product).exists() and leftover.exists()
+    finally:
+        sleeper.kill()
+        sleeper.wait()
+    lock.unlink()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        call(cfg).close()
+    assert (tmp_path / "results" / product).exists()
+    assert not leftover.exists() and not lock.exists()

@@ -6,11 +6,11 @@ import contextlib
 import datetime as _dt
 import os
 import tempfile
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from pathlib import Path
 
 from assim.caution import CAUTION
-from assim.errors import RunError
+from assim.errors import AssimWarning, RunError
 
 CONVENTIONS = "CF-1.8"
 
@@ -162,12 +162,14 @@ def open_netcdf(path, variables=(), *, any_of=(), order=None, load=False):
 
 
 @contextlib.contextmanager
-def output_lock(path: str | os.PathLike, what: str) -> Iterator[Path]:
+def output_lock(path: str | os.PathLike, what: str, written: Iterable[str | os.PathLike] = ()) -> Iterator[Path]:
     """Hold the lock file ``path`` (PID and host) while a command writes ``what``.
 
     A lock held by a live process on this host, or by any process on another host, is
     refused; a lock whose process is dead on this host (left by a killed run) is stale: it
     is reported through ``warnings`` and replaced, so a killed run never blocks the next.
+    Once the lock is held, the temporaries (``.name.*.part``, see :func:`atomic_path`) that a
+    killed run left beside the files ``written`` are removed: nobody else writes them now.
 
     Raises
     ------
@@ -202,7 +204,7 @@ def output_lock(path: str | os.PathLike, what: str) -> Iterator[Path]:
             if pid > 0 and _alive(pid):
                 raise LockError(f"{what} is in progress in another run (pid {pid}); wait for it to "
                                 "finish", file=path) from None
-            warnings.warn(f"{path}: stale lock of pid {pid} (no longer running) replaced", RuntimeWarning,
+            warnings.warn(f"{path}: stale lock of pid {pid} (no longer running) replaced", AssimWarning,
                           stacklevel=3)
             with contextlib.suppress(FileNotFoundError):
                 path.unlink()
@@ -215,6 +217,11 @@ def output_lock(path: str | os.PathLike, what: str) -> Iterator[Path]:
     else:  # pragma: no cover - another run took the lock between our two attempts
         raise LockError(f"{what} is being started by another run", file=path)
     try:
+        for product in map(Path, written):
+            if product.parent.is_dir():
+                for part in product.parent.glob(f".{product.name}.*.part"):
+                    with contextlib.suppress(OSError):
+                        part.unlink()
         yield path
     finally:
         with contextlib.suppress(OSError):

@@ -545,8 +545,8 @@ def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: in
     return out
 
 
-def forecast_lock(path):
+def forecast_lock(path, written=()):
     """Hold the lock file of one issue date's forecast (see
     :func:`assim.io.common.output_lock`: a live holder is refused, a stale lock of a dead
-    process is reported and replaced)."""
-    return output_lock(path, "a forecast for this date")
+    process is reported and replaced, temporaries left beside ``written`` are removed)."""
+    return output_lock(path, "a forecast for this date", written)
