@@ -80,6 +80,8 @@ __all__ = ["METHODS", "Analysis", "ensemble_update"]
 
 METHODS = ("enkf", "etkf", "eakf")
 
+_NO_INFLATION = Inflation()  # (frozen record, safe to share)
+
 
 @dataclass(frozen=True, eq=False)
 class Analysis:
@@ -402,6 +404,218 @@ def _clip(Xa, lo, hi, active):
     return clipped, outside
 
 
+def _one_observation(
+    X2, Y2, y2, r2, missing, method, rng, noise, infl, gamma, gate_sigma, lower, upper, cols,
+    full, centre_noise, shape, yshape,
+):
+    """The analysis for one observation per basin: the general formulas with n_obs = 1.
+
+    Shapes as in :func:`_analysis` after flattening the batch: X2 (B, N, n), Y2 (B, N, 1),
+    y2, r2, missing (B, 1). Observation space is a (B, N) vector per quantity, so there are
+    no (B, n_obs, n_obs) matrices and no solve; the gain is the (B, n) vector
+    ``cov(x, h) / (var(h) + R)`` in whitened form. The states are read twice (sums of
+    squares; one contraction with the member vectors) and the analysis written in one
+    product with the weights plus one addition. Returns the :class:`Analysis`."""
+    B, N, n = X2.shape
+    enkf = method == "enkf"
+    plain_g = gamma == 1.0
+    # The member vectors contracted with the states in one pass, V (B, k, N): ones (member
+    # sums), the whitened predicted perturbations y' and, for enkf, the centred weights w'.
+    V = np.empty((B, 3 if enkf else 2, N))
+    V[:, 0] = 1.0
+    yp = V[:, 1]
+    ybar = _sum(Y2)[:, 0] / N
+    np.subtract(Y2[:, :, 0], ybar[:, None], out=yp)
+    var_y = np.einsum("bi,bi->b", yp, yp) / (N - 1)
+    r1 = r2[:, 0]
+    innovation = y2[:, 0] - ybar
+    innovation_variance = (var_y if plain_g else gamma**2 * var_y) + r1
+
+    # Sums of squares of the prior states (one pass); a NaN or infinite state shows in them.
+    xsq = np.einsum("bin,bin->bn", X2, X2)
+    if not cols.size:
+        states_ok = np.zeros(B, bool)
+    else:
+        states_ok = np.logical_and.reduce(np.isfinite(xsq if full else xsq[:, cols]), axis=1)
+    present = ~missing[:, 0]
+    usable = present & np.isfinite(innovation) & np.isfinite(var_y) & states_ok
+    invalid = present ^ usable
+    if gate_sigma:
+        # (the variance can be negative only where the reading is missing, hence unusable)
+        limit = gate_sigma * np.sqrt(np.maximum(innovation_variance, 0.0))
+        gated = usable & (np.abs(innovation) > limit)
+        used = usable ^ gated
+    else:
+        gated = np.zeros(B, bool)
+        used = usable
+    all_used = bool(np.logical_and.reduce(used))
+
+    # Whitening: an unused observation gets weight 0, so it contributes exactly nothing.
+    if all_used:
+        s = 1.0 / np.sqrt(r1)
+        dw = innovation * s
+    else:
+        s = np.where(used, 1.0 / np.sqrt(np.where(used, r1, 1.0)), 0.0)
+        yp[~used] = 0.0
+        dw = np.where(used, innovation, 0.0) * s
+    yp *= s[:, None]
+    a = np.einsum("bi,bi->b", yp, yp)
+    a = a / (N - 1) if plain_g else gamma**2 * a / (N - 1)
+
+    if enkf:
+        z = noise.reshape(B, N) if noise is not None else rng.standard_normal((B, N))
+        if centre_noise:
+            # Centring z_i - mean(z) is folded into the innovation: d - mean(z) + z_i.
+            dw = dw - np.add.reduce(z, axis=1) / N
+        # Burgers et al. (1998): w_i = g^2 (a + 1)^-1 (d + z_i - g y'_i)
+        if plain_g:
+            w = np.subtract(z, yp)
+        else:
+            w = yp * -gamma
+            w += z
+        w += dw[:, None]
+        w *= (gamma**2 / (1.0 + a))[:, None]
+        wbar = np.add.reduce(w, axis=1) / N
+        Wc = np.subtract(w, wbar[:, None], out=V[:, 2])
+    else:
+        wbar = gamma**2 * dw / (1.0 + a)  # Hunt et al. (2007), eq. 20
+        p = gamma**3 * _sqrt_weight(a)
+        w = yp * p[:, None]  # Hunt et al. (2007), eq. 24
+        w += wbar[:, None]
+
+    # One pass over the prior states for the member sums, X^T y' and (enkf) X^T w'.
+    sums = _cross(X2, V)
+    vsum = np.add.reduce(V[:, 1:], axis=2)
+    xsum = sums[:, 0]
+    xbar = xsum / N
+    var_b = _variance(X2, xsum, xsq)
+    # Cross-covariance (B, n) from the raw states: y' sums to zero over members, so
+    # y'^T X equals y'^T X'; the second term removes what rounding leaves.
+    Ct = (sums[:, 1] - vsum[:, :1] * xbar) / (N - 1)
+    if enkf:
+        WX = sums[:, 2] - vsum[:, 1:] * xbar
+        WtW = np.einsum("bi,bi->b", Wc, Wc)
+    if full:
+        Xu, xbar_u, var_u = X2, xbar, var_b
+    else:
+        Xu, xbar_u, var_u, Ct = X2[:, :, cols], xbar[:, cols], var_b[:, cols], Ct[:, cols]
+        if enkf:
+            WX = WX[:, cols]
+    if not enkf:
+        # w' = p y', so w'^T X' = (N - 1) p C and w'^T w' = (N - 1) p^2 a / g^2.
+        WX = (N - 1) * (p[:, None] * Ct)
+        WtW = ((N - 1) / gamma**2) * (p * a * p)
+    if infl.rtpp > 0.0:
+        # RTPP with X'a = g X' + w' C^T and X'b = g X' relaxes the weight perturbations
+        # towards zero: the increment's spread part shrinks, nothing else changes.
+        shrink = 1.0 - infl.rtpp
+        w = wbar[:, None] + relax_to_prior_perturbations(w - wbar[:, None], 0.0, infl.rtpp)
+        WX = shrink * WX
+        WtW = shrink**2 * WtW
+    # Analysis spread and mean from small quantities, X'a = g X' + w' C^T:
+    # sum X'a^2 = g^2 sum X'^2 + 2 g C (w'^T X') + C^2 (w'^T w').
+    var_a = (
+        gamma**2 * (N - 1) * var_u + 2.0 * gamma * (Ct * WX) + Ct * WtW[:, None] * Ct
+    ) / (N - 1)
+    mean_a = xbar_u + wbar[:, None] * Ct
+    lost = ~(var_a > 1e-6 * gamma**2 * var_u) | ~(mean_a * mean_a <= _CANCELLATION_RATIO * var_a)
+    lost = np.logical_or.reduce(lost, axis=1) & used  # spreads recomputed from the states
+
+    # The analysis in one pass: Xa = G X + w C'^T + c per basin and column, inflation and
+    # RTPS (the scaled analysis perturbations about the analysis mean) folded into G, C', c.
+    Cs = Ct
+    if infl.rtps > 0.0:
+        scale = rtps_factor(gamma * np.sqrt(var_u), np.sqrt(var_a), infl.rtps)
+        G = gamma * scale
+        Cs = Ct * scale
+        c = scale * ((1.0 - gamma) * xbar_u - mean_a) + mean_a
+        var_a = scale**2 * var_a
+        divide = bool(np.logical_and.reduce(G > 0.0, axis=None))
+        if divide:
+            Cs = Cs / G
+        Xa = np.einsum("bi,bn->bin", w, Cs)
+        if divide:
+            Xa += Xu
+            Xa *= G[:, None, :]
+        else:
+            Xa += G[:, None, :] * Xu
+        Xa += c[:, None, :]
+    elif plain_g:
+        Xa = np.einsum("bi,bn->bin", w, Cs)
+        Xa += Xu
+    else:
+        # G = gamma everywhere: (X + w C^T / g) g + (1 - g) xbar
+        Xa = np.einsum("bi,bn->bin", w, Cs / gamma)
+        Xa += Xu
+        Xa *= gamma
+        Xa += ((1.0 - gamma) * xbar_u)[:, None, :]
+    if infl.rtps > 0.0 and lost.any():
+        # Where the small-quantity spread is not precise enough, redo the RTPS factor from
+        # the states: the result is a scaling about the mean, so it can be corrected.
+        sub = Xa[lost]
+        sub_mean = _sum(sub) / N
+        sd_now = np.sqrt(_exact_variance(sub))
+        s_used = scale[lost]
+        ok = s_used > 0.0
+        sd_pre = np.where(ok, sd_now / np.where(ok, s_used, 1.0), 0.0)
+        s_exact = rtps_factor(gamma * np.sqrt(var_u[lost]), sd_pre, infl.rtps)
+        ratio = np.where(ok, s_exact / np.where(ok, s_used, 1.0), 1.0)
+        Xa[lost] = sub_mean[:, None, :] + ratio[:, None, :] * (sub - sub_mean[:, None, :])
+
+    clipped = np.zeros((B, n))
+    outside = None
+    if lower is not None or upper is not None:
+        lo = None if lower is None else _bounds(lower, "lower", cols, full, shape, B)
+        hi = None if upper is None else _bounds(upper, "upper", cols, full, shape, B)
+        if lo is not None or hi is not None:
+            clipped[:, cols], outside = _clip(Xa, lo, hi, used)
+
+    if full:
+        out = Xa
+    else:
+        out = X2.copy()
+        out[:, :, cols] = Xa
+    if not all_used:
+        out[~used] = X2[~used]
+
+    # Spread after: unchanged columns and basins keep the prior value; the updated ones
+    # come from the small-quantity formula unless clipping or cancellation call for the
+    # two-pass computation.
+    redo = lost if outside is None else outside | lost
+    any_redo = bool(np.logical_or.reduce(redo))
+    if full and all_used and not any_redo:
+        var_after = var_a
+    else:
+        var_after = var_b.copy()
+        keep = used & ~redo
+        if full:
+            var_after[keep] = var_a[keep]
+        else:
+            var_after[np.ix_(keep, cols)] = var_a[keep]
+        if any_redo:
+            var_after[redo] = _variance_of(out, redo)
+
+    batch = yshape[:-1]
+    if not all_used:
+        bad = missing[:, 0] | ~np.isfinite(innovation)
+        innovation = np.where(bad, np.nan, innovation)
+        innovation_variance = np.where(bad, np.nan, innovation_variance)
+    return Analysis(
+        states=out.reshape(shape),
+        innovation=innovation.reshape(yshape),
+        innovation_variance=innovation_variance.reshape(yshape),
+        predicted_spread=np.sqrt(var_y).reshape(yshape),
+        spread_before=np.sqrt(var_b).reshape(shape[:-2] + (n,)),
+        spread_after=np.sqrt(var_after).reshape(shape[:-2] + (n,)),
+        used=used.reshape(yshape),
+        gated=gated.reshape(yshape),
+        missing=missing.reshape(yshape),
+        invalid=invalid.reshape(yshape),
+        clipped=clipped.reshape(shape[:-2] + (n,)),
+        updated=used.reshape(batch),
+    )
+
+
 def ensemble_update(
     states,
     predicted,
@@ -468,12 +682,24 @@ def ensemble_update(
         Shapes that do not fit, an unknown method, ``enkf`` without ``rng`` or
         ``obs_noise``, or a non-positive ``obs_variance`` at a present reading.
     """
+    return _analysis(
+        states, predicted, observed, obs_variance, method, rng, inflation, gate_sigma, lower,
+        upper, update_mask, transform, obs_noise, centre_noise, True,
+    )
+
+
+def _analysis(
+    states, predicted, observed, obs_variance, method, rng, inflation, gate_sigma, lower,
+    upper, update_mask, transform, obs_noise, centre_noise, fused,
+):
+    """:func:`ensemble_update`; ``fused`` takes the one-observation path when n_obs = 1
+    (False: the general path for any n_obs, the reference in the tests)."""
     X, Y, y, r, mask, noise = _check(
         states, predicted, observed, obs_variance, method, update_mask, obs_noise
     )
     if method == "enkf" and noise is None and rng is None:
         _fail("method 'enkf' needs rng or obs_noise for the perturbed observations", "rng")
-    infl = Inflation() if inflation is None else inflation
+    infl = _NO_INFLATION if inflation is None else inflation
     gamma = float(infl.multiplicative)
     batch, N, n, m = X.shape[:-2], X.shape[-2], X.shape[-1], Y.shape[-1]
     B = math.prod(batch)
@@ -497,6 +723,11 @@ def ensemble_update(
 
     cols = np.arange(n) if mask is None else np.flatnonzero(mask)
     full = cols.size == n
+    if fused and m == 1:
+        return _one_observation(
+            X2, Y2, y2, r2, missing, method, rng, noise, infl, gamma, gate_sigma, lower, upper,
+            cols, full, centre_noise, X.shape, y.shape,
+        )
 
     serial = method == "eakf" and m > 1
     # The vectors contracted with the states in one pass, V (basin, k, member): ones (member
