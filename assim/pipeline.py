@@ -518,6 +518,12 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
         settings = dataclasses.replace(engine.settings_from_config(cfg, model, "assimilate"), spinup_days=0)
         identity = _identity(cfg, model, inputs, "assimilate")
         state = _read_checked_restart(restart_path, model, inputs, identity)
+        file_forcing = None  # read before anything is written: a bad file leaves no restart behind
+        if kind == "file":
+            if not fc["forcing_file"]:
+                raise ConfigError("forecast.forcing is file but forecast.forcing_file is empty",
+                                  file=cfg.source, variable="forecast.forcing_file")
+            file_forcing = read_forcing_forecast(fc["forcing_file"], inputs.basin_ids, issue_day, leads)
         summary = engine.run(model, inputs, settings, None, state=state, until_day=issue_day)
         n_used = int(summary.n_used.sum())
         n_days = issue_day - valid
@@ -531,12 +537,6 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
                         f"last restart (valid at {dates([valid])[0].date()})")
         write_restart(paths.forecast_restart(cfg, iso),
                       _to_restart(summary.state, model, inputs, {**identity, **_readings_identity(cfg, issue_day)}))
-        file_forcing = None
-        if kind == "file":
-            if not fc["forcing_file"]:
-                raise ConfigError("forecast.forcing is file but forecast.forcing_file is empty",
-                                  file=cfg.source, variable="forecast.forcing_file")
-            file_forcing = read_forcing_forecast(fc["forcing_file"], inputs.basin_ids, issue_day, leads)
         q = engine.forecast_issue(model, inputs, settings, summary.state, leads, kind, file_forcing)
         thr = basins["thresholds"].values
         names = [str(t) for t in basins["threshold"].values] if "threshold" in basins.coords else []

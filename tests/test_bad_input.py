@@ -224,7 +224,30 @@ def _args(*extra):
     return f
 
 
+def _forcing_forecast(defect: str):
+    """A forcing-forecast file for the forecast of 2012-08-31 (leads 1..3, 4 members), with
+    one ``defect``, and the config that reads it."""
+    def f(root):
+        import xarray as xr
+
+        dims = ("basin", "issue_time", "lead", "member")
+        shape = (len(IDS), 1, 3, 4)
+        ds = xr.Dataset(
+            {"precipitation": (dims, np.full(shape, 4.0), {"units": "kg m-2 s-1" if defect == "flux" else "mm d-1"}),
+             "pet": (dims, np.full(shape, 2.0), {"units": "mm d-1"})},
+            coords={"basin": list(IDS), "issue_time": pd.to_datetime(["2012-08-31"]),
+                    "lead": np.arange(3) if defect == "from zero" else np.arange(1, 4), "member": np.arange(4)},
+        )
+        if defect == "one basin":
+            ds = ds.isel(basin=[0])
+        if defect != "absent":
+            ds.to_netcdf(root / "ff.nc")
+        write_config(root, forecast={"leads": 3, "forcing": "file", "forcing_file": str(root / "ff.nc")})
+    return f
+
+
 CHECK, PREP = ("check",), ("prep",)
+FORECAST = ("forecast", "--issue-date", "2012-08-31")
 RUN = ("run", "--mode", "assimilate")
 LONG = "x" * 5000
 
@@ -316,6 +339,14 @@ CASES = [
     Case("restart truncated", RUN, _restart_truncated, ("cut-restart.nc",)),
     Case("restart without states", RUN, _restart_no_states, ("nostates.nc", "states")),
     Case("--until not a date", RUN, _args("--until", "tomorrow"), ("--until",)),
+    # ---- forecast inputs
+    Case("forecast forcing file in kg m-2 s-1", FORECAST, _forcing_forecast("flux"), ("ff.nc", "precipitation", "units")),
+    Case("forecast forcing file lacks a basin", FORECAST, _forcing_forecast("one basin"), ("ff.nc", "basin", "oskerrin")),
+    Case("forecast forcing file leads from 0", FORECAST, _forcing_forecast("from zero"), ("ff.nc", "lead")),
+    Case("forecast forcing file absent", FORECAST, _forcing_forecast("absent"), ("ff.nc", "not found")),
+    Case("--issue-date not a date", ("forecast", "--issue-date", "31/08/2012"), _args(), ("--issue-date",)),
+    Case("--issue-date before the restart", ("forecast", "--issue-date", "2012-05-01"), _args(),
+         ("restart.nc", "valid_time", "2012-08-31")),
 ]
 
 RESULTS: dict[str, str] = {}  # case name -> "pass" or the reason it failed

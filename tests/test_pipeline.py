@@ -313,3 +313,31 @@ def test_run_and_hindcast_hold_their_product_lock(prepared, tmp_path, call, prod
         call(cfg).close()
     assert (tmp_path / "results" / product).exists()
     assert not leftover.exists() and not lock.exists()
+
+
+def test_forecast_from_a_forcing_file_uses_its_weather(prepared, tmp_path):
+    """forecast.forcing = file: the members take the file's weather (member m the file's
+    member m mod n). GR4J's discharge never falls when only the rain rises (production and
+    routing stores, unit hydrographs: every flux is non-decreasing in P; Perrin et al. 2003,
+    appendix), so 40 mm d-1 of forecast rain gives at least the discharge of a dry forecast,
+    more by the last lead, from the same analysed states."""
+    issue = "2003-06-22"
+    out = {}
+    for rain in (0.0, 40.0):
+        dims = ("basin", "issue_time", "lead", "member")
+        shape = (2, 1, 5, 3)
+        xr.Dataset(
+            {"precipitation": (dims, np.full(shape, rain), {"units": "mm d-1"}),
+             "pet": (dims, np.full(shape, 3.0), {"units": "mm d-1"})},
+            coords={"basin": IDS[::-1], "issue_time": pd.to_datetime([issue]), "lead": np.arange(1, 6),
+                    "member": np.arange(3)},
+        ).to_netcdf(tmp_path / f"ff-{rain:g}.nc")
+        cfg = _cfg(prepared, tmp_path / f"r{rain:g}", period={"end": "2003-06-20"},
+                   forecast={"forcing": "file", "forcing_file": str(tmp_path / f"ff-{rain:g}.nc")})
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            pipeline.run(cfg, mode="assimilate").close()
+            out[rain] = pipeline.forecast(cfg, issue).load()
+    dry, wet = out[0.0]["discharge"].values, out[40.0]["discharge"].values
+    assert out[0.0].attrs["forcing"] == "file"
+    assert (wet >= dry).all() and (wet[:, -1] > dry[:, -1]).all()

@@ -177,16 +177,16 @@ def test_write_forecast(tmp_path):
     assert ds.attrs["product_path"].endswith("forecast-2020-01-05.nc")
 
 
-def _forcing_file(path, values=None):
+def _forcing_file(path, values=None, *, units="mm d-1", lead=None, edit=None):
     rng = np.random.default_rng(6)
     pr = rng.gamma(1.0, 3.0, (2, 2, 5, 3)) if values is None else values
+    dims = ("basin", "issue_time", "lead", "member")
     ds = xr.Dataset(
-        {"precipitation": (("basin", "issue_time", "lead", "member"), pr),
-         "pet": (("basin", "issue_time", "lead", "member"), np.full(pr.shape, 2.0))},
+        {"precipitation": (dims, pr, {"units": units}), "pet": (dims, np.full(pr.shape, 2.0), {"units": "mm/day"})},
         coords={"basin": ["a", "b"], "issue_time": pd.to_datetime(["2020-01-05", "2020-01-06"]),
-                "lead": np.arange(1, 6), "member": np.arange(3)},
+                "lead": np.arange(1, 6) if lead is None else lead, "member": np.arange(3)},
     )
-    ds.to_netcdf(path)
+    (ds if edit is None else edit(ds)).to_netcdf(path)
     return pr
 
 
@@ -203,6 +203,35 @@ def test_read_forcing_forecast(tmp_path):
     _forcing_file(tmp_path / "bad.nc", bad)
     with pytest.raises(InputError, match="basin a, lead 3, member 1"):
         read_forcing_forecast(tmp_path / "bad.nc", ["a"], int(DAYS[4]), 5)
+
+
+def test_forcing_forecast_leads_as_time_spans_and_in_any_order(tmp_path):
+    """CF time spans in days decode to timedelta64 and are taken as whole-day leads; the
+    leads may be stored in any order (CF conventions 1.8, section 4.4: time coordinates with
+    units)."""
+    pr = _forcing_file(tmp_path / "td.nc", lead=pd.to_timedelta(np.arange(5, 0, -1), unit="D"))
+    got = read_forcing_forecast(tmp_path / "td.nc", ["a"], int(DAYS[4]), 4)
+    np.testing.assert_array_equal(got["precipitation"][0], pr[0, 0, ::-1][:4])
+
+
+@pytest.mark.parametrize("kwargs, match", [
+    ({"units": "kg m-2 s-1"}, "precipitation.*units 'kg m-2 s-1', expected mm d-1"),
+    ({"units": "in d-1"}, "precipitation.*units 'in d-1'"),
+    ({"edit": lambda ds: ds.assign(precipitation=ds["precipitation"].drop_attrs())}, "precipitation.*no units"),
+    ({"lead": np.arange(5)}, "lead.*lead 5"),
+    ({"edit": lambda ds: ds.isel(member=0, drop=True)}, "precipitation.*dimensions"),
+    ({"edit": lambda ds: ds.drop_vars("pet")}, "pet.*missing"),
+])
+def test_forcing_forecast_refused_with_file_and_variable(tmp_path, kwargs, match):
+    """A flux in kg m-2 s-1 (86,400 times mm d-1), inches, no units, leads counted from 0, no
+    member dimension, a missing variable: each refused naming the file and the variable.
+    Common practice, no published source."""
+    _forcing_file(tmp_path / "ff.nc", **kwargs)
+    with pytest.raises(InputError, match=match) as err:
+        read_forcing_forecast(tmp_path / "ff.nc", ["a"], int(DAYS[4]), 5)
+    assert "ff.nc" in str(err.value)
+    with pytest.raises(InputError, match="not found"):
+        read_forcing_forecast(tmp_path / "absent.nc", ["a"], int(DAYS[4]), 5)
 
 
 def test_forecast_lock(tmp_path):

@@ -272,12 +272,18 @@ def _require(ds, path, name, dims, unit_kind=None) -> xr.DataArray:
     if tuple(var.dims) != tuple(dims):
         raise InputError(f"dimensions {tuple(var.dims)}, expected {tuple(dims)}", file=path, variable=name)
     if unit_kind is not None:
-        units = var.attrs.get("units")
-        if units is None:
-            raise InputError(f"no units attribute (expected {CANONICAL[unit_kind]})", file=path, variable=name)
-        if canonical_unit(str(units)) != CANONICAL[unit_kind]:
-            raise InputError(f"units {units!r}, expected {CANONICAL[unit_kind]}", file=path, variable=name)
+        check_units(var, path, unit_kind)
     return var
+
+
+def check_units(var: xr.DataArray, path, kind: str) -> None:
+    """Raise InputError naming ``path`` and the variable unless ``var`` has a ``units``
+    attribute spelling the unit of ``kind`` (a key of :data:`assim.units.CANONICAL`)."""
+    units = var.attrs.get("units")
+    if units is None:
+        raise InputError(f"no units attribute (expected {CANONICAL[kind]})", file=path, variable=var.name)
+    if canonical_unit(str(units)) != CANONICAL[kind]:
+        raise InputError(f"units {units!r}, expected {CANONICAL[kind]}", file=path, variable=var.name)
 
 
 def _check_basin(ds, path) -> np.ndarray:

@@ -493,12 +493,21 @@ def read_run_extent(path) -> dict | None:
         return None
 
 
+def _whole_days(lead) -> np.ndarray:
+    """Lead coordinate values as days (integers or CF-decoded time spans); NaN if neither."""
+    lead = np.asarray(lead)
+    if lead.dtype.kind == "m":
+        return lead / np.timedelta64(1, "D")
+    return lead.astype(np.float64) if lead.dtype.kind in "iuf" else np.full(lead.shape, np.nan)
+
+
 def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: int) -> dict[str, np.ndarray]:
     """Forcing forecast of one issue from a NetCDF file with a member dimension.
 
-    Layout: ``precipitation`` and ``pet`` (mm d-1) on ``(basin, issue_time, lead, member)``
-    (``issue_time`` optional when the file holds one issue), ``basin`` string ids, ``lead``
-    1..L integer days, ``issue_time`` CF-encoded days.
+    Layout: ``precipitation`` and ``pet`` (``units`` mm d-1, or a spelling of it) on
+    ``(basin, issue_time, lead, member)`` in any order (``issue_time`` optional when the file
+    holds one issue), ``basin`` string ids, ``lead`` days 1..L (integers, or CF time spans in
+    days), ``issue_time`` CF-encoded days.
 
     Returns
     -------
@@ -507,9 +516,13 @@ def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: in
     Raises
     ------
     InputError
-        if the file, a variable, a basin, the issue time or a lead is missing, or values are
-        negative or not finite.
+        if the file, a variable, a basin, the issue time or a lead is missing, a variable has
+        other dimensions or units, or values are negative or not finite.
     """
+    from assim.io.prepared import check_units
+
+    if not Path(path).is_file():
+        raise InputError("forcing forecast file not found", file=path)
     try:
         ds = xr.open_dataset(path)
     except (OSError, ValueError) as exc:
@@ -521,11 +534,20 @@ def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: in
         if missing:
             raise InputError("basin not in the forcing forecast", file=path, variable="basin", place=missing[0])
         sel = {"basin": [ids.index(b) for b in basins]}
-        if "lead" not in ds.coords or ds["lead"].size < leads:
-            raise InputError(f"fewer than {leads} leads", file=path, variable="lead")
+        have = _whole_days(ds["lead"].values) if "lead" in ds.coords and ds["lead"].ndim == 1 else np.array([])
+        lacking = np.setdiff1d(np.arange(1, leads + 1), have)
+        if lacking.size:
+            raise InputError(f"leads 1..{leads} (days) needed", file=path, variable="lead",
+                             place=f"lead {int(lacking[0])}")
+        lead_index = [int(np.flatnonzero(have == k)[0]) for k in range(1, leads + 1)]
         for name in ("precipitation", "pet"):
             if name not in ds:
                 raise InputError("variable missing from the forcing forecast", file=path, variable=name)
+            dims = set(ds[name].dims)
+            if not {"basin", "lead", "member"} <= dims <= {"basin", "issue_time", "lead", "member"}:
+                raise InputError(f"dimensions {tuple(ds[name].dims)}, expected (basin, [issue_time,] lead, member)",
+                                 file=path, variable=name)
+            check_units(ds[name], path, "depth_rate")
             da = ds[name].isel(sel)
             if "issue_time" in da.dims:
                 days = day_numbers(da["issue_time"].values)
@@ -534,7 +556,7 @@ def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: in
                     raise InputError("issue time not in the forcing forecast", file=path, variable="issue_time",
                                      place=dates([issue_day])[0].strftime("%Y-%m-%d"))
                 da = da.isel(issue_time=int(hit[0]))
-            da = da.sel(lead=np.arange(1, leads + 1)).transpose("basin", "lead", "member")
+            da = da.isel(lead=lead_index).transpose("basin", "lead", "member")
             values = np.asarray(da.values, dtype=np.float64)
             bad = ~np.isfinite(values) | (values < 0)
             if bad.any():
