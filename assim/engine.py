@@ -470,14 +470,15 @@ def _transform_of(kind: str, offset: float, lam: float):
 
 
 def _member_sd(a: np.ndarray) -> np.ndarray:
-    """``a.std(axis=1, ddof=1)`` of a (basin, member) array, the same operations without
-    the Python layers of ``ndarray.std`` (it runs every day of a run)."""
-    n = a.shape[1]
-    mean = np.add.reduce(a, axis=1, keepdims=True)
+    """``a.std(axis=-1, ddof=1)`` of a (basin, member) or (basin, time, member) array, the
+    same operations without the Python layers of ``ndarray.std``; each (basin, day) row is
+    reduced alone, so a spread does not depend on the other rows."""
+    n = a.shape[-1]
+    mean = np.add.reduce(a, axis=-1, keepdims=True)
     np.true_divide(mean, n, out=mean)
     d = np.subtract(a, mean)
     np.square(d, out=d)
-    out = np.add.reduce(d, axis=1)
+    out = np.add.reduce(d, axis=-1)
     np.true_divide(out, n - 1, out=out)
     return np.sqrt(out, out=out)
 
@@ -537,6 +538,7 @@ def advance(
     leads: int = 0,
     forecast_forcing: str = "observed",
     fixed: tuple | None = None,
+    check_daily: bool = False,
 ) -> BlockResult:
     """Advance a chunk of the ensemble over days ``t0 .. t1 - 1`` (indices into inputs.days).
 
@@ -552,6 +554,8 @@ def advance(
     fixed : optional ``(prepared parameters, lower, upper)`` of the chunk, from
         :func:`fixed_parameters`, when no parameter is estimated (they are then the same in
         every block, and computing them is as costly as stepping the model over a month)
+    check_daily : check that the state is finite every day (else at the end of the block
+        and on days with non-finite discharge; a failed block is then run again checked)
 
     Returns
     -------
@@ -639,80 +643,102 @@ def advance(
                                 th_lo, th_hi)
 
     lo3, hi3 = updated_bounds()
-    for k in range(nt):
-        t = t0 + k
-        day = int(days[k])
-        x, fluxes = model.step(x, {n: forcing_blk[n][k] for n in FORCINGS}, prepared)
-        added = None
-        if noise:
-            z = [pt.standard_normal(kk, day).reshape(-1) for kk in noise_keys]
-            x, added = pt.add_state_noise(x, noise, z, lower, upper)
-        q = fluxes["runoff"].reshape(nb, nm) * area
-        qa = q
-        k_o = k - k_out0
-        record = collect and k >= k_out0
-        if assim and t >= first_analysis and any_blk[k]:
-            has = has_blk[:, k]
-            theta = None
-            if est:
-                theta = np.stack([params[p] for p in est], axis=-1)
-                zk = np.stack([pt.standard_normal(kk, day) for kk in kernel_keys], axis=-1)
-                theta = liu_west_shrink(theta, s.shrinkage, zk, th_lo, th_hi)
-            on = None if obs_noise_blk is None else obs_noise_blk[k]
-            # x is the model's fresh output: update its columns in place (it may be Fortran-ordered,
-            # so work on the flat (batch, n_state) view, never on a reshaped copy)
-            xs, qa, theta_new, a = analyse(x[:, upd].reshape(nb, nm, len(upd)), q, theta, obs_blk[:, k],
-                                           var_blk[:, k], lo3, hi3, on, s)
-            x[:, upd] = xs.reshape(nb * nm, len(upd))
-            if est:
-                for j, p in enumerate(est):
-                    params[p] = np.ascontiguousarray(theta_new[..., j])
-                flat = {kk: v.reshape(-1) for kk, v in params.items()}
-                prepared = model.prepare(flat)
-                lower, upper = model.bounds(flat)
-                lo3, hi3 = updated_bounds()
-            used = np.asarray(a.used).reshape(nb)
-            gated = np.asarray(a.gated).reshape(nb)
-            n_used += used
-            n_gated += gated
-            nu = len(upd)
-            # spreads computed here, row by row, so that they do not depend on the chunk size
-            spread_b = _member_sd(q)
-            # collapse: spread of the predicted discharge far below the obs error, many days
-            low_spread = has & (spread_b < s.collapse_ratio * sd_blk[:, k])
-            collapse = np.where(has, np.where(low_spread, collapse + 1, 0), collapse)
-            hit = (collapse == s.collapse_days) & (collapse_first < 0)
-            collapse_first = np.where(hit, day, collapse_first)
-            if record:
-                arrays["obs_status"][:, k_o] = np.where(used, OBS_USED, np.where(gated, OBS_GATED,
-                                                                                 status_blk[:, k]))
-                arrays["innovation"][:, k_o] = np.asarray(a.innovation).reshape(nb)
-                arrays["innovation_variance"][:, k_o] = np.asarray(a.innovation_variance).reshape(nb)
-                arrays["clipped_water"][:, k_o] = _clipped_water(a, nb, nm, nu)
-                arrays["spread_before"][:, k_o] = spread_b
-                arrays["spread_after"][:, k_o] = _member_sd(qa)
-        elif assim and record:
-            sb = _member_sd(q)
-            arrays["spread_before"][:, k_o] = sb
-            arrays["spread_after"][:, k_o] = sb
-        if not np.isfinite(x.sum()):
-            bad = np.flatnonzero(~np.isfinite(x).all(axis=1))[0]
-            col = int(np.flatnonzero(~np.isfinite(x[bad]))[0])
-            return BlockResult({}, state, None, n_used, n_gated, collapse_first,
-                               first_bad=(inputs.basin_ids[bad // nm], day, model.state_names[col]))
-        if record:
-            arrays["discharge"][:, k_o] = q
+    if assim:  # float64 discharge of every day, for the spreads and collapse counts at the end
+        q_blk = np.empty((nb, nt, nm))
+        qa_blk = np.empty((nb, nt, nm))
+        analysed = np.zeros(nt, dtype=bool)
+    try:
+        for k in range(nt):
+            t = t0 + k
+            day = int(days[k])
+            x, fluxes = model.step(x, {n: forcing_blk[n][k] for n in FORCINGS}, prepared)
+            added = None
+            if noise:
+                z = [pt.standard_normal(kk, day).reshape(-1) for kk in noise_keys]
+                x, added = pt.add_state_noise(x, noise, z, lower, upper)
+            q = fluxes["runoff"].reshape(nb, nm) * area
+            qa = q
+            k_o = k - k_out0
+            record = collect and k >= k_out0
+            if assim and t >= first_analysis and any_blk[k]:
+                theta = None
+                if est:
+                    theta = np.stack([params[p] for p in est], axis=-1)
+                    zk = np.stack([pt.standard_normal(kk, day) for kk in kernel_keys], axis=-1)
+                    theta = liu_west_shrink(theta, s.shrinkage, zk, th_lo, th_hi)
+                on = None if obs_noise_blk is None else obs_noise_blk[k]
+                # x is the model's fresh output: update its columns in place (it may be
+                # Fortran-ordered, so work on the flat (batch, n_state) view, never on a reshaped copy)
+                xs, qa, theta_new, a = analyse(x[:, upd].reshape(nb, nm, len(upd)), q, theta, obs_blk[:, k],
+                                               var_blk[:, k], lo3, hi3, on, s)
+                x[:, upd] = xs.reshape(nb * nm, len(upd))
+                if est:
+                    for j, p in enumerate(est):
+                        params[p] = np.ascontiguousarray(theta_new[..., j])
+                    flat = {kk: v.reshape(-1) for kk, v in params.items()}
+                    prepared = model.prepare(flat)
+                    lower, upper = model.bounds(flat)
+                    lo3, hi3 = updated_bounds()
+                used = np.asarray(a.used).reshape(nb)
+                gated = np.asarray(a.gated).reshape(nb)
+                n_used += used
+                n_gated += gated
+                analysed[k] = True
+                if record:
+                    arrays["obs_status"][:, k_o] = np.where(used, OBS_USED, np.where(gated, OBS_GATED,
+                                                                                     status_blk[:, k]))
+                    arrays["innovation"][:, k_o] = np.asarray(a.innovation).reshape(nb)
+                    arrays["innovation_variance"][:, k_o] = np.asarray(a.innovation_variance).reshape(nb)
+                    arrays["clipped_water"][:, k_o] = _clipped_water(a, nb, nm, len(upd))
+            # A non-finite state stops the run. Summing the whole state every day costs as much
+            # as a tenth of the day's work, so it is summed at the end of the block and on days
+            # whose discharge is not finite; a block that fails is run again from its start,
+            # checked every day, to name the first bad day and state.
+            if check_daily or k == nt - 1 or not np.isfinite(np.add.reduce(q, axis=None)):
+                if not np.isfinite(x.sum()):
+                    if not check_daily:
+                        raise _Replay
+                    bad = np.flatnonzero(~np.isfinite(x).all(axis=1))[0]
+                    col = int(np.flatnonzero(~np.isfinite(x[bad]))[0])
+                    return BlockResult({}, state, None, n_used, n_gated, collapse_first,
+                                       first_bad=(inputs.basin_ids[bad // nm], day, model.state_names[col]))
             if assim:
-                arrays["discharge_analysis"][:, k_o] = qa
+                q_blk[:, k] = q
+                qa_blk[:, k] = qa
+            if record:
+                if not assim:
+                    arrays["discharge"][:, k_o] = q
                 for p in est:
                     arrays[p][:, k_o] = params[p]
-            for n, col in write_cols:
-                arrays[n][:, k_o] = x[:, col].reshape(nb, nm)
-            if added is not None:
-                arrays["state_noise_water"][:, k_o] = added.reshape(nb, nm)
-        if t in issues:
-            snaps.append((t, x.reshape(nb, nm, ns).copy(), {kk: v.copy() for kk, v in params.items()},
-                          {n: e[k].copy() for n, e in log_err.items()}))
+                for n, col in write_cols:
+                    arrays[n][:, k_o] = x[:, col].reshape(nb, nm)
+                if added is not None:
+                    arrays["state_noise_water"][:, k_o] = added.reshape(nb, nm)
+            if t in issues:
+                snaps.append((t, x.reshape(nb, nm, ns).copy(), {kk: v.copy() for kk, v in params.items()},
+                              {n: e[k].copy() for n, e in log_err.items()}))
+    except Exception:
+        if check_daily:
+            raise
+        # a state gone bad mid-block may have upset the filter: the checked run names it
+        return advance(model, inputs, state, settings, t0, t1, members=members, first_output=first_output,
+                       first_analysis=first_analysis, collect=collect, issue_index=issue_index, leads=leads,
+                       forecast_forcing=forecast_forcing, fixed=fixed, check_daily=True)
+    if assim and nt:
+        # spreads of every day at once (each row reduced alone, as on its own day), then the
+        # collapse counts of the analysed days in order
+        spread_b = _member_sd(q_blk)  # (basin, time)
+        for k in np.flatnonzero(analysed):
+            has = has_blk[:, k]
+            low_spread = has & (spread_b[:, k] < s.collapse_ratio * sd_blk[:, k])
+            collapse = np.where(has, np.where(low_spread, collapse + 1, 0), collapse)
+            hit = (collapse == s.collapse_days) & (collapse_first < 0)
+            collapse_first = np.where(hit, int(days[k]), collapse_first)
+        if n_out:
+            arrays["discharge"][:] = q_blk[:, k_out0:]
+            arrays["discharge_analysis"][:] = qa_blk[:, k_out0:]
+            arrays["spread_before"][:] = spread_b[:, k_out0:]
+            arrays["spread_after"][:] = _member_sd(qa_blk[:, k_out0:])
 
     end = EnsembleState(
         day=int(days[-1]) if nt else state.day,
@@ -725,6 +751,10 @@ def advance(
     if snaps:
         hind = hindcast_forecasts(model, inputs, settings, snaps, members, leads, forecast_forcing)
     return BlockResult(arrays, end, hind, n_used, n_gated, collapse_first)
+
+
+class _Replay(Exception):
+    """A block's state went bad: run it again, checked every day."""
 
 
 def fixed_parameters(model: Model, parameters: Mapping[str, np.ndarray]) -> tuple:
