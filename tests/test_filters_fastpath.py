@@ -47,12 +47,19 @@ def _problem(rng, B=9, N=16, n=4):
 
 
 def _assert_same(fast, general):
+    # A spread or a clipped amount computed from the states is as precise as the states:
+    # 1e-12 of the basin's largest state (the cancellation basin's states are 1e6).
+    magnitude = np.nanmax(np.abs(general.states), axis=(-2, -1))[:, None]
     for name in FIELDS:
         a, b = getattr(fast, name), getattr(general, name)
         assert a.shape == b.shape, name
         np.testing.assert_array_equal(np.isnan(a), np.isnan(b), err_msg=name)
         scale = max(1.0, float(np.nanmax(np.abs(b))) if np.isfinite(b).any() else 1.0)
-        np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-12 * scale, err_msg=name)
+        if name in ("spread_before", "spread_after", "clipped"):
+            scale = np.maximum(magnitude, 1.0)
+        np.testing.assert_array_less(
+            np.abs(np.nan_to_num(a - b)), 1e-12 * (np.abs(np.nan_to_num(b)) + scale), err_msg=name
+        )
     for name in FLAGS:
         np.testing.assert_array_equal(getattr(fast, name), getattr(general, name), err_msg=name)
 

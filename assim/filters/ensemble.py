@@ -413,20 +413,24 @@ def _one_observation(
     Shapes as in :func:`_analysis` after flattening the batch: X2 (B, N, n), Y2 (B, N, 1),
     y2, r2, missing (B, 1). Observation space is a (B, N) vector per quantity, so there are
     no (B, n_obs, n_obs) matrices and no solve; the gain is the (B, n) vector
-    ``cov(x, h) / (var(h) + R)`` in whitened form. The states are read twice (sums of
-    squares; one contraction with the member vectors) and the analysis written in one
-    product with the weights plus one addition. Returns the :class:`Analysis`."""
+    ``cov(x, h) / (var(h) + R)`` in whitened form. The member weights are kept as
+    ``w = f u`` with a per-basin factor ``f`` moved onto the cross-covariance, which saves
+    a pass over them. The states are read twice (sums of squares; one contraction with the
+    member vectors) and the analysis written by one product and one addition. Member dot
+    products are per-basin ``vecdot`` calls, so a basin's numbers never depend on the
+    others in the batch. Returns the :class:`Analysis`."""
     B, N, n = X2.shape
     enkf = method == "enkf"
     plain_g = gamma == 1.0
+    ones = np.ones(N)
     # The member vectors contracted with the states in one pass, V (B, k, N): ones (member
-    # sums), the whitened predicted perturbations y' and, for enkf, the centred weights w'.
+    # sums), the whitened predicted perturbations y' and, for enkf, the centred weights u'.
     V = np.empty((B, 3 if enkf else 2, N))
     V[:, 0] = 1.0
     yp = V[:, 1]
     ybar = _sum(Y2)[:, 0] / N
     np.subtract(Y2[:, :, 0], ybar[:, None], out=yp)
-    var_y = np.einsum("bi,bi->b", yp, yp) / (N - 1)
+    var_y = np.vecdot(yp, yp) / (N - 1)
     r1 = r2[:, 0]
     innovation = y2[:, 0] - ybar
     innovation_variance = (var_y if plain_g else gamma**2 * var_y) + r1
@@ -454,47 +458,49 @@ def _one_observation(
     if all_used:
         s = 1.0 / np.sqrt(r1)
         dw = innovation * s
+        a = var_y * (s * s)
     else:
         s = np.where(used, 1.0 / np.sqrt(np.where(used, r1, 1.0)), 0.0)
         yp[~used] = 0.0
         dw = np.where(used, innovation, 0.0) * s
+        a = np.where(used, var_y, 0.0) * (s * s)
     yp *= s[:, None]
-    a = np.einsum("bi,bi->b", yp, yp)
-    a = a / (N - 1) if plain_g else gamma**2 * a / (N - 1)
+    if not plain_g:
+        a = gamma**2 * a  # whitened predicted variance, inflated
+    ysum = np.vecdot(yp, ones)  # (zero but for rounding)
 
     if enkf:
+        # Burgers et al. (1998): w_i = g^2 (a + 1)^-1 (d + z_i - g y'_i) = f u_i
         z = noise.reshape(B, N) if noise is not None else rng.standard_normal((B, N))
         if centre_noise:
             # Centring z_i - mean(z) is folded into the innovation: d - mean(z) + z_i.
-            dw = dw - np.add.reduce(z, axis=1) / N
-        # Burgers et al. (1998): w_i = g^2 (a + 1)^-1 (d + z_i - g y'_i)
-        if plain_g:
-            w = np.subtract(z, yp)
-        else:
-            w = yp * -gamma
-            w += z
-        w += dw[:, None]
-        w *= (gamma**2 / (1.0 + a))[:, None]
-        wbar = np.add.reduce(w, axis=1) / N
-        Wc = np.subtract(w, wbar[:, None], out=V[:, 2])
+            dw = dw - np.vecdot(z, ones) / N
+        f = gamma**2 / (1.0 + a)
+        u = np.subtract(z, yp) if plain_g else yp * -gamma
+        if not plain_g:
+            u += z
+        u += dw[:, None]
+        ubar = np.vecdot(u, ones) / N
+        uc = np.subtract(u, ubar[:, None], out=V[:, 2])
+        wbar = f * ubar
     else:
-        wbar = gamma**2 * dw / (1.0 + a)  # Hunt et al. (2007), eq. 20
-        p = gamma**3 * _sqrt_weight(a)
-        w = yp * p[:, None]  # Hunt et al. (2007), eq. 24
-        w += wbar[:, None]
+        # Hunt et al. (2007), eqs. 20 and 24: w_i = wbar + p y'_i = p u_i
+        wbar = gamma**2 * dw / (1.0 + a)
+        f = gamma**3 * _sqrt_weight(a)
+        u = yp + (wbar / f)[:, None]
 
-    # One pass over the prior states for the member sums, X^T y' and (enkf) X^T w'.
+    # One pass over the prior states for the member sums, X^T y' and (enkf) X^T u'.
     sums = _cross(X2, V)
-    vsum = np.add.reduce(V[:, 1:], axis=2)
     xsum = sums[:, 0]
     xbar = xsum / N
     var_b = _variance(X2, xsum, xsq)
     # Cross-covariance (B, n) from the raw states: y' sums to zero over members, so
     # y'^T X equals y'^T X'; the second term removes what rounding leaves.
-    Ct = (sums[:, 1] - vsum[:, :1] * xbar) / (N - 1)
+    Ct = (sums[:, 1] - ysum[:, None] * xbar) / (N - 1)
     if enkf:
-        WX = sums[:, 2] - vsum[:, 1:] * xbar
-        WtW = np.einsum("bi,bi->b", Wc, Wc)
+        # w' = f u': w'^T X' and w'^T w'
+        WX = f[:, None] * (sums[:, 2] - np.vecdot(uc, ones)[:, None] * xbar)
+        WtW = f * f * np.vecdot(uc, uc)
     if full:
         Xu, xbar_u, var_u = X2, xbar, var_b
     else:
@@ -503,13 +509,14 @@ def _one_observation(
             WX = WX[:, cols]
     if not enkf:
         # w' = p y', so w'^T X' = (N - 1) p C and w'^T w' = (N - 1) p^2 a / g^2.
-        WX = (N - 1) * (p[:, None] * Ct)
-        WtW = ((N - 1) / gamma**2) * (p * a * p)
+        WX = (N - 1) * (f[:, None] * Ct)
+        WtW = ((N - 1) / gamma**2) * (f * a * f)
     if infl.rtpp > 0.0:
         # RTPP with X'a = g X' + w' C^T and X'b = g X' relaxes the weight perturbations
         # towards zero: the increment's spread part shrinks, nothing else changes.
         shrink = 1.0 - infl.rtpp
-        w = wbar[:, None] + relax_to_prior_perturbations(w - wbar[:, None], 0.0, infl.rtpp)
+        ubar = wbar / f
+        u = ubar[:, None] + relax_to_prior_perturbations(u - ubar[:, None], 0.0, infl.rtpp)
         WX = shrink * WX
         WtW = shrink**2 * WtW
     # Analysis spread and mean from small quantities, X'a = g X' + w' C^T:
@@ -521,19 +528,20 @@ def _one_observation(
     lost = ~(var_a > 1e-6 * gamma**2 * var_u) | ~(mean_a * mean_a <= _CANCELLATION_RATIO * var_a)
     lost = np.logical_or.reduce(lost, axis=1) & used  # spreads recomputed from the states
 
-    # The analysis in one pass: Xa = G X + w C'^T + c per basin and column, inflation and
-    # RTPS (the scaled analysis perturbations about the analysis mean) folded into G, C', c.
-    Cs = Ct
+    # The analysis in one pass: Xa = G X + u (f C')^T + c per basin and column, inflation
+    # and RTPS (the scaled analysis perturbations about the analysis mean) folded into G,
+    # C', c.
+    K = f[:, None] * Ct
     if infl.rtps > 0.0:
         scale = rtps_factor(gamma * np.sqrt(var_u), np.sqrt(var_a), infl.rtps)
         G = gamma * scale
-        Cs = Ct * scale
+        K = K * scale
         c = scale * ((1.0 - gamma) * xbar_u - mean_a) + mean_a
         var_a = scale**2 * var_a
         divide = bool(np.logical_and.reduce(G > 0.0, axis=None))
         if divide:
-            Cs = Cs / G
-        Xa = np.einsum("bi,bn->bin", w, Cs)
+            K = K / G
+        Xa = np.einsum("bi,bn->bin", u, K)
         if divide:
             Xa += Xu
             Xa *= G[:, None, :]
@@ -541,11 +549,11 @@ def _one_observation(
             Xa += G[:, None, :] * Xu
         Xa += c[:, None, :]
     elif plain_g:
-        Xa = np.einsum("bi,bn->bin", w, Cs)
+        Xa = np.einsum("bi,bn->bin", u, K)
         Xa += Xu
     else:
-        # G = gamma everywhere: (X + w C^T / g) g + (1 - g) xbar
-        Xa = np.einsum("bi,bn->bin", w, Cs / gamma)
+        # G = gamma everywhere: (X + u K^T / g) g + (1 - g) xbar
+        Xa = np.einsum("bi,bn->bin", u, K / gamma)
         Xa += Xu
         Xa *= gamma
         Xa += ((1.0 - gamma) * xbar_u)[:, None, :]
