@@ -79,7 +79,6 @@ def run(
     """
     n_basin, n_day = precipitation.shape
     keys = perturb.basin_keys(basin_ids)
-    ids = np.arange(members)
     # filterpy draws its perturbations from numpy's global generator: seed it for a repeatable run
     np.random.seed(seed % 2**32)  # noqa: NPY002
     discharge = np.empty((n_basin, n_day, members))
@@ -93,9 +92,9 @@ def run(
         kf.sigmas = np.tile(start, (members, 1))  # every member starts from the same state
         kf.Q = np.zeros((3, 3))
         lower, upper = np.zeros(3), np.array([x1, x3, np.inf])
-        ck = [perturb.counter_keys(seed, keys[b:b + 1], ids, s) for s in (perturb.PRECIPITATION, perturb.PET)]
-        z_p, z_e = (perturb.standard_normal(c, days)[:, 0] for c in ck)
-        e_p, e_e = (perturb.standard_normal(c, days[0] - 1)[0] for c in ck)
+        streams = (perturb.PRECIPITATION, perturb.PET)
+        z_p, z_e = (loop.basin_normals(seed, keys[b], members, days, s) for s in streams)
+        e_p, e_e = (loop.ar1_start(seed, keys[b], members, days, s) for s in streams)
         for t in range(n_day):
             e_p = precipitation_error.step(e_p, z_p[t])
             e_e = pet_error.step(e_e, z_e[t])

@@ -216,6 +216,19 @@ def enkf_update(states, predicted, observed, obs_variance, noise, *, gate_sigma=
 # ---------------------------------------------------------------- an assimilation run
 
 
+def basin_normals(seed: int, key, members: int, days: np.ndarray, stream: int) -> np.ndarray:
+    """(time, member) standard normals of one basin (``key`` from ``perturb.basin_keys``) and
+    one stream on ``days``: the numbers the engine draws for that basin."""
+    counters = perturb.counter_keys(seed, np.atleast_1d(key), np.arange(members), stream)
+    return perturb.standard_normal(counters, days)[:, 0]
+
+
+def ar1_start(seed: int, key, members: int, days: np.ndarray, stream: int) -> np.ndarray:
+    """(member,) AR(1) log errors on the day before ``days[0]``, as the engine starts them (a
+    stationary draw: the standard normal of that day)."""
+    return basin_normals(seed, key, members, np.asarray(days[:1]) - 1, stream)[0]
+
+
 def run(
     precipitation: np.ndarray,
     pet: np.ndarray,
@@ -256,7 +269,6 @@ def run(
     """
     n_basin, n_day = precipitation.shape
     keys = perturb.basin_keys(basin_ids)
-    ids = np.arange(members)
     discharge = np.empty((n_basin, n_day, members))
     analysis = np.empty((n_basin, n_day, members))
     end = np.empty((n_basin, members, N_STATE))
@@ -265,13 +277,10 @@ def run(
         uh1, uh2 = uh_ordinates(x4)
         to_m3s = float(area_km2[b]) / 86.4  # Q[m3 s-1] = q[mm d-1] * area[km2] / 86.4
         # The normals of this basin (all days, all members), from the engine's generator.
-        z_p, z_e, z_o = (
-            perturb.standard_normal(perturb.counter_keys(seed, keys[b:b + 1], ids, stream), days)[:, 0]
-            for stream in (perturb.PRECIPITATION, perturb.PET, perturb.OBSERVATION)
-        )
+        z_p, z_e, z_o = (basin_normals(seed, keys[b], members, days, stream)
+                         for stream in (perturb.PRECIPITATION, perturb.PET, perturb.OBSERVATION))
         z_p, z_e = z_p.tolist(), z_e.tolist()
-        e_p, e_e = (perturb.standard_normal(perturb.counter_keys(seed, keys[b:b + 1], ids, stream),
-                                            days[0] - 1)[0].tolist()
+        e_p, e_e = (ar1_start(seed, keys[b], members, days, stream).tolist()
                     for stream in (perturb.PRECIPITATION, perturb.PET))
         phi_p, phi_e = precipitation_error.phi, pet_error.phi
         c_p, c_e = math.sqrt(1.0 - phi_p ** 2), math.sqrt(1.0 - phi_e ** 2)
