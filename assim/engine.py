@@ -588,7 +588,7 @@ def advance(
     for name, model_err in (("precipitation", s.precipitation), ("pet", s.pet)):
         e = model_err.series(state.ar1[name], pt.standard_normal(ck[name], days))
         log_err[name] = e
-        w = model_err.multiplier(e)
+        w = model_err.multiplier(e, out=np.empty_like(e))
         w *= getattr(inputs, name)[:, t0:t1].T[:, :, None]
         forcing_blk[name] = w.reshape(nt, nb * nm)
     end_ar1 = {n: (e[-1].copy() if nt else state.ar1[n]) for n, e in log_err.items()}

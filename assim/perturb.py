@@ -1,9 +1,12 @@
 """The ensemble's error model and its counter-based random numbers (numpy and scipy only).
 
 Every random number of a run is a pure function of (seed, basin id, member, day, stream):
-a 64-bit counter is hashed with the splitmix64 finaliser and turned into a standard normal
-by the inverse normal CDF. Nothing is drawn from a generator that carries state, so adding a
-basin, changing the chunking or restarting a run never changes another number.
+the days are taken in pairs (2j, 2j + 1); the 64-bit counter of (seed, basin, member, pair
+j, stream) is hashed with the splitmix64 finaliser into two uniforms, and the Box-Muller
+transform turns them into two independent standard normals, the cosine one for day 2j and
+the sine one for day 2j + 1. Nothing is drawn from a generator that carries state, so adding
+a basin, changing the chunking or restarting a run never changes another number, and a
+block of consecutive days costs one transform per pair of days.
 
 Streams (the last element of the counter) keep the uses apart: precipitation and PET errors,
 the perturbed observations of the stochastic EnKF, the additive state noise (one stream per
@@ -31,11 +34,11 @@ The error model
 from __future__ import annotations
 
 import hashlib
+import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.special import ndtri
 
 # Stream numbers of the fixed uses; named uses (parameters, state noise) hash their name.
 PRECIPITATION = 1
@@ -48,6 +51,29 @@ _M1 = np.uint64(0xBF58476D1CE4E5B9)
 _M2 = np.uint64(0x94D049BB133111EB)
 _S30, _S27, _S31, _S11 = (np.uint64(k) for k in (30, 27, 31, 11))
 _TWO_M53 = 2.0**-53
+_S60, _M49 = np.uint64(60), np.uint64(2**49 - 1)
+_DAY = np.uint64(0x632BE59BD9B4E019)
+# The angle 2 pi u2 of the Box-Muller transform is cut into 16 sectors of pi/8: the top 4
+# bits of u2 give the sector k, the next 49 bits the angle phi in [0, pi/8) within it, and
+# cos(k pi/8 + phi), sin(k pi/8 + phi) follow from exact sector values and the Taylor series
+# of cos phi and sin phi to phi^14 and phi^13 (truncation below 1e-18): numpy's own cos and
+# sin run one element at a time, several times slower than these array operations.
+_PHI = (math.pi / 8.0) * 2.0**-49
+_SIN_TAYLOR = tuple((-1) ** j / math.factorial(2 * j + 1) for j in range(7))
+_COS_TAYLOR = tuple((-1) ** j / math.factorial(2 * j) for j in range(8))
+
+
+def _sector_cosines() -> tuple[np.ndarray, np.ndarray]:
+    """cos(k pi/8) and sin(k pi/8), k = 0..15, with the exact symmetries of the circle."""
+    c1, c2, c3 = math.sqrt(2.0 + math.sqrt(2.0)) / 2.0, math.sqrt(0.5), math.sqrt(2.0 - math.sqrt(2.0)) / 2.0
+    quarter = [1.0, c1, c2, c3]  # k = 0..3; then cos(k pi/8 + pi/2) = -sin(k pi/8)
+    sines = [0.0, c3, c2, c1]
+    cos = np.array(quarter + [-v for v in sines] + [-v for v in quarter] + sines)
+    return cos, np.roll(cos, 4)  # sin(x) = cos(x - pi/2)
+
+
+_SECTOR_COS, _SECTOR_SIN = _sector_cosines()
+_PASS = 16384  # elements per pass of the transform: its temporaries stay in the core's cache
 # Largest sd of a parameter draw in logit space: near the upper bound of a finite range the
 # first-order match would ask for an ever wider draw; this keeps the draws squeezed there.
 MAX_LOGIT_SD = 1.0
@@ -124,23 +150,103 @@ def standard_normal(ckeys: np.ndarray, days) -> np.ndarray:
     ckeys : (...) uint64, from :func:`counter_keys`
     days : int or (...) int, day numbers (days since 1970-01-01); broadcast against
         ``ckeys`` after appending as many unit axes as ``ckeys`` has, so that a (day,)
-        array gives a (day, ...) result.
+        array gives a (day, ...) result. Consecutive days (a (day,) range) are the fast case.
 
     Returns
     -------
     float64 array of shape ``days.shape + ckeys.shape``
     """
-    d = np.asarray(days, dtype=np.int64).astype(np.uint64)
+    ck = np.ascontiguousarray(ckeys, dtype=np.uint64).reshape(-1)
+    d = np.asarray(days, dtype=np.int64)
+    shape = d.shape + np.shape(ckeys)
+    if d.ndim == 1 and d.size > 1 and bool((np.diff(d) == 1).all()):
+        first = int(d[0]) >> 1  # pair of the first day (floor, also before 1970)
+        n_pairs = (int(d[-1]) >> 1) - first + 1
+        z = np.empty((n_pairs, 2, ck.size))  # (pair, cosine/sine, counter) = (day, counter)
+        _box_muller(_day_hash(np.arange(first, first + n_pairs, dtype=np.int64)), ck, z)
+        off = int(d[0]) - 2 * first
+        return z.reshape(2 * n_pairs, ck.size)[off:off + d.size].reshape(shape)
+    flat = d.reshape(-1)
+    z = np.empty((flat.size, ck.size))
+    _box_muller(_day_hash(flat >> 1), ck, z, odd=(flat & 1).astype(bool))
+    return z.reshape(shape)
+
+
+def _day_hash(pairs: np.ndarray) -> np.ndarray:
+    """(n,) int64 day-pair numbers -> (n,) uint64 hashes mixed into the counters."""
     with np.errstate(over="ignore"):
-        dh = _mix((d + np.uint64(0x632BE59BD9B4E019)) * _GOLDEN)
-    dh = dh.reshape(dh.shape + (1,) * np.ndim(ckeys))
-    h = _mix_inplace(np.array(ckeys ^ dh, dtype=np.uint64, ndmin=1))
-    h >>= _S11
-    u = h.astype(np.float64)
-    del h
-    u += 0.5
-    u *= _TWO_M53  # in (0, 1), never 0 or 1
-    return ndtri(u, out=u).reshape(np.shape(dh)[: np.ndim(d)] + np.shape(ckeys))
+        return _mix((pairs.astype(np.uint64) + _DAY) * _GOLDEN)
+
+
+def _box_muller(dh: np.ndarray, ck: np.ndarray, out: np.ndarray, odd: np.ndarray | None = None) -> None:
+    """Two standard normals of every (day pair, counter), written into ``out``.
+
+    dh : (P,) uint64 day-pair hashes; ck : (K,) uint64 counters. Without ``odd``, ``out`` is
+    (P, 2, K): the cosine normal (even day) and the sine normal (odd day) of each pair. With
+    ``odd`` (P,) bool, ``out`` is (P, K): the sine normal where ``odd``, else the cosine one
+    (the same numbers: sin(x) = cos(x - pi/2) is a shift of four sectors).
+
+    Works through the rows in passes of about ``_PASS`` elements, in place.
+    """
+    n_k = ck.size
+    rows = max(1, _PASS // max(n_k, 1))
+    m = min(rows, dh.size) * n_k
+    h1, h2 = np.empty(m, np.uint64), np.empty(m, np.uint64)
+    sector = np.empty(m, np.int64)
+    r, phi, x, sn, cs, a, b = (np.empty(m) for _ in range(7))
+    mul, add, sub = np.multiply, np.add, np.subtract
+    with np.errstate(over="ignore"):
+        for p0 in range(0, dh.size, rows):
+            p1 = min(p0 + rows, dh.size)
+            n = (p1 - p0) * n_k
+            k1, k2, kk, rr, ff, xx, s_, c_, aa, bb = (v[:n] for v in (h1, h2, sector, r, phi, x, sn, cs, a, b))
+            np.bitwise_xor(ck[None, :], dh[p0:p1, None], out=k1.reshape(p1 - p0, n_k))
+            _mix_inplace(k1)  # the counter of (seed, basin, member, day pair, stream)
+            add(k1, _GOLDEN, out=k2)
+            _mix_inplace(k2)  # a second, independent 64-bit word
+            # u1 in (0, 1) from the top 53 bits of the first word; r = sqrt(-2 ln u1)
+            np.right_shift(k1, _S11, out=k1)
+            rr[...] = k1.view(np.int64)  # exact: below 2^53
+            add(rr, 0.5, out=rr)
+            mul(rr, _TWO_M53, out=rr)
+            np.log(rr, out=rr)
+            mul(rr, -2.0, out=rr)
+            np.sqrt(rr, out=rr)  # Box & Muller (1958): r = sqrt(-2 ln u1), angle 2 pi u2
+            # u2 in [0, 1) from the top 53 bits of the second word: sector and angle within it
+            np.right_shift(k2, _S60, out=kk.view(np.uint64))
+            if odd is not None:  # the sine: four sectors back
+                sub(kk.reshape(p1 - p0, n_k), 4 * odd[p0:p1, None], out=kk.reshape(p1 - p0, n_k))  # view
+                np.bitwise_and(kk, 15, out=kk)
+            np.right_shift(k2, _S11, out=k2)
+            np.bitwise_and(k2, _M49, out=k2)
+            ff[...] = k2.view(np.int64)
+            mul(ff, _PHI, out=ff)
+            mul(ff, ff, out=xx)
+            _horner(xx, _SIN_TAYLOR, s_)
+            mul(s_, ff, out=s_)  # sin(phi)
+            _horner(xx, _COS_TAYLOR, c_)  # cos(phi)
+            np.take(_SECTOR_COS, kk, out=aa)
+            np.take(_SECTOR_SIN, kk, out=bb)
+            # cos(k pi/8 + phi) = cos_k cos(phi) - sin_k sin(phi), and the sine alike
+            grid = (p1 - p0, n_k)
+            mul(aa, c_, out=ff)
+            mul(bb, s_, out=xx)
+            sub(ff, xx, out=ff)
+            mul(ff.reshape(grid), rr.reshape(grid), out=out[p0:p1, 0] if odd is None else out[p0:p1])
+            if odd is None:
+                mul(bb, c_, out=ff)
+                mul(aa, s_, out=xx)
+                add(ff, xx, out=ff)
+                mul(ff.reshape(grid), rr.reshape(grid), out=out[p0:p1, 1])
+
+
+def _horner(x: np.ndarray, coef: tuple[float, ...], out: np.ndarray) -> None:
+    """``out = sum_j coef[j] x^j`` by Horner's rule, in place."""
+    np.multiply(x, coef[-1], out=out)
+    for c in coef[-2:0:-1]:
+        np.add(out, c, out=out)
+        np.multiply(out, x, out=out)
+    np.add(out, coef[0], out=out)
 
 
 # ---------------------------------------------------------------- multiplicative AR(1) error
@@ -163,10 +269,14 @@ class LognormalAR1:
         """Next log error (unit variance) from the previous one and a standard normal."""
         return self.phi * e_prev + np.sqrt(1.0 - self.phi**2) * z  # stationary AR(1)
 
-    def multiplier(self, e: np.ndarray) -> np.ndarray:
-        """Multiplicative error ``exp(s e - s^2/2)``; mean exactly 1 when e ~ N(0, 1)."""
+    def multiplier(self, e: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """Multiplicative error ``exp(s e - s^2/2)``; mean exactly 1 when e ~ N(0, 1).
+
+        ``out``: an array of the shape of ``e`` to write into (may be ``e`` itself)."""
         s = self.sigma
-        return np.exp(s * e - 0.5 * s * s)
+        out = np.multiply(s, e, out=out)
+        out -= 0.5 * s * s
+        return np.exp(out, out=out)
 
     def lag1_autocorrelation(self) -> float:
         """Lag-one autocorrelation of the multiplier (not of the log error)."""
@@ -188,10 +298,13 @@ class LognormalAR1:
         (day, ...) float64
         """
         out = np.empty_like(z)
+        c = np.sqrt(1.0 - self.phi**2)
+        tmp = np.empty(z.shape[1:])
         e = e_prev
-        for t in range(z.shape[0]):
-            e = self.step(e, z[t])
-            out[t] = e
+        for t in range(z.shape[0]):  # self.step, written into out
+            np.multiply(self.phi, e, out=out[t])
+            np.multiply(c, z[t], out=tmp)
+            e = np.add(out[t], tmp, out=out[t])
         return out
 
 
