@@ -46,6 +46,13 @@ def _problem(rng, B=9, N=16, n=4):
     return X, Y, y, r
 
 
+def _planes(a):
+    """The same array with the member axis fastest in memory and each state a contiguous
+    (basin, member) plane: the layout of a model's Fortran-ordered (batch, n_state) array,
+    which the engine passes."""
+    return np.moveaxis(np.ascontiguousarray(np.moveaxis(a, -1, 0)), 0, -1)
+
+
 def _assert_same(fast, general):
     # A spread or a clipped amount computed from the states is as precise as the states:
     # 1e-12 of the basin's largest state (the cancellation basin's states are 1e6).
@@ -64,15 +71,19 @@ def _assert_same(fast, general):
         np.testing.assert_array_equal(getattr(fast, name), getattr(general, name), err_msg=name)
 
 
+@pytest.mark.parametrize("layout", ["C", "planes"])
 @pytest.mark.parametrize("method", ["enkf", "etkf", "eakf"])
-def test_one_observation_path_equals_the_general_path(method):
+def test_one_observation_path_equals_the_general_path(method, layout):
     """For n_obs = 1 the fused path gives the general path's states and diagnostics to
     1e-12, with and without inflation (multiplicative, RTPS, RTPP), gate, bounds (clipping),
-    update mask, log transform and missing, gated and invalid readings. Reference: the
+    update mask, log transform and missing, gated and invalid readings, for C-ordered
+    states and for states laid out as (state, basin, member) planes. Reference: the
     general path of the same module (Burgers et al. 1998; Hunt et al. 2007, eqs. 20 and 24;
     Anderson 2001 for one observation), tested against the exact Kalman update."""
     rng = np.random.default_rng(42)
     X, Y, y, r = _problem(rng)
+    if layout == "planes":
+        X = _planes(X)
     noise = rng.standard_normal(Y.shape)
     mask = np.array([True, False, True, True])
     lower, upper = np.full(X.shape, 80.0), np.full(X.shape, np.inf)
@@ -96,6 +107,8 @@ def test_one_observation_path_equals_the_general_path(method):
             kw.get("update_mask"), kw.get("transform"), kw.get("obs_noise"), True, False,
         )
         _assert_same(fast, general)
+        if layout == "planes" and not masked:  # the analysis keeps the states' layout
+            assert fast.states.strides == X.strides
         assert fast.updated.sum() >= 5  # the analysis did something
         assert np.nanmax(np.abs(fast.states - X)) > 1.0
         clipped_somewhere |= bool(np.abs(fast.clipped).max() > 0.0)
@@ -105,8 +118,9 @@ def test_one_observation_path_equals_the_general_path(method):
     assert clipped_somewhere
 
 
+@pytest.mark.parametrize("layout", ["C", "planes"])
 @pytest.mark.parametrize("method", ["enkf", "etkf", "eakf"])
-def test_one_observation_path_does_not_depend_on_the_other_basins(method):
+def test_one_observation_path_does_not_depend_on_the_other_basins(method, layout):
     """A basin's analysis is the same, bit for bit, whatever other basins share the call
     and wherever it sits in the batch (DESIGN.md, Determinism; common practice, no
     published source)."""
@@ -114,9 +128,13 @@ def test_one_observation_path_does_not_depend_on_the_other_basins(method):
     X, Y, y, r = _problem(rng, B=12)
     noise = rng.standard_normal(Y.shape)
     kw = dict(method=method, gate_sigma=3.0, lower=85.0, inflation=Inflation(1.1, rtps=0.5))
-    whole = ensemble_update(X, Y, y, r, obs_noise=noise, **kw)
+    prepare = _planes if layout == "planes" else np.ascontiguousarray
+    whole = ensemble_update(prepare(X), Y, y, r, obs_noise=noise, **kw)
     order = np.array([7, 0, 5])
-    part = ensemble_update(X[order], Y[order], y[order], r[order], obs_noise=noise[order], **kw)
+    part = ensemble_update(
+        prepare(X[order]), Y[order], y[order], r[order], obs_noise=noise[order], **kw
+    )
     for name in FIELDS + FLAGS:
-        a, b = getattr(part, name), getattr(whole, name)[order]
+        a = np.ascontiguousarray(getattr(part, name))
+        b = np.ascontiguousarray(getattr(whole, name)[order])
         np.testing.assert_array_equal(a.view(np.uint8), b.view(np.uint8), err_msg=name)

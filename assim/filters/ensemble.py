@@ -404,6 +404,34 @@ def _clip(Xa, lo, hi, active):
     return clipped, outside
 
 
+def _per_column(v, planes):
+    """A per-(basin, column) quantity v (B, n) broadcast against the work array: (B, 1, n),
+    or (n, B, 1) on planes."""
+    return np.ascontiguousarray(v.T)[:, :, None] if planes else v[:, None, :]
+
+
+def _add_outer(Xw, u, K, planes):
+    """``Xw + u K^T`` per basin, a new array: Xw (B, N, n) and the result in that layout, or
+    on planes Xw (n, B, N) and the result (n, B, N); u (B, N), K (B, n).
+
+    On planes a large batch is done one plane at a time, so that the product is still in
+    cache when the states are added; either way each element is the same two operations."""
+    if not planes:
+        out = np.einsum("bi,bn->bin", u, K)
+        out += Xw
+        return out
+    out = np.empty(Xw.shape)
+    KT = np.ascontiguousarray(K.T)
+    if u.size <= 4096:
+        np.multiply(KT[:, :, None], u[None], out=out)
+        out += Xw
+        return out
+    for j in range(out.shape[0]):  # (over the state columns)
+        np.multiply(u, KT[j][:, None], out=out[j])
+        out[j] += Xw[j]
+    return out
+
+
 def _one_observation(
     X2, Y2, y2, r2, missing, method, rng, noise, infl, gamma, gate_sigma, lower, upper, cols,
     full, centre_noise, shape, yshape,
@@ -421,22 +449,31 @@ def _one_observation(
     others in the batch. Returns the :class:`Analysis`."""
     B, N, n = X2.shape
     enkf = method == "enkf"
+    # Member axis fastest in memory, each state a (basin, member) plane (the engine's
+    # layout: a model's (batch, n_state) array in Fortran order): work on the planes, where
+    # every pass runs along contiguous members, and return the analysis in that layout.
+    st = X2.strides
+    planes = st[1] == X2.itemsize and (B == 1 or st[0] == N * X2.itemsize)
+    XT = X2.transpose(2, 0, 1) if planes else None  # (n, B, N)
     plain_g = gamma == 1.0
     ones = np.ones(N)
-    # The member vectors contracted with the states in one pass, V (B, k, N): ones (member
-    # sums), the whitened predicted perturbations y' and, for enkf, the centred weights u'.
-    V = np.empty((B, 3 if enkf else 2, N))
-    V[:, 0] = 1.0
-    yp = V[:, 1]
+    # The member vectors contracted with the states, V (B, k, N): ones (member sums), the
+    # whitened predicted perturbations y' and, for enkf, the weights u. On planes each is
+    # its own contiguous (B, N) array, contracted with each plane.
+    V = None if planes else np.empty((B, 3 if enkf else 2, N))
     ybar = _sum(Y2)[:, 0] / N
-    np.subtract(Y2[:, :, 0], ybar[:, None], out=yp)
+    if planes:
+        yp = np.subtract(Y2[:, :, 0], ybar[:, None])
+    else:
+        V[:, 0] = 1.0
+        yp = np.subtract(Y2[:, :, 0], ybar[:, None], out=V[:, 1])
     var_y = np.vecdot(yp, yp) / (N - 1)
     r1 = r2[:, 0]
     innovation = y2[:, 0] - ybar
     innovation_variance = (var_y if plain_g else gamma**2 * var_y) + r1
 
     # Sums of squares of the prior states (one pass); a NaN or infinite state shows in them.
-    xsq = np.einsum("bin,bin->bn", X2, X2)
+    xsq = np.vecdot(XT, XT).T if planes else np.einsum("bin,bin->bn", X2, X2)
     if not cols.size:
         states_ok = np.zeros(B, bool)
     else:
@@ -476,12 +513,19 @@ def _one_observation(
             # Centring z_i - mean(z) is folded into the innovation: d - mean(z) + z_i.
             dw = dw - np.vecdot(z, ones) / N
         f = gamma**2 / (1.0 + a)
-        u = np.subtract(z, yp) if plain_g else yp * -gamma
-        if not plain_g:
+        u = None if planes else V[:, 2]
+        if plain_g:
+            u = np.subtract(z, yp, out=u)
+        else:
+            u = np.multiply(yp, -gamma, out=u)
             u += z
         u += dw[:, None]
-        ubar = np.vecdot(u, ones) / N
-        uc = np.subtract(u, ubar[:, None], out=V[:, 2])
+        usum = np.vecdot(u, ones)
+        ubar = usum / N
+        # sum of (u - ubar)^2 from sums: u is z plus small terms, its spread about 1 and its
+        # mean the whitened innovation, so this loses nothing unless the innovation is
+        # thousands of spreads (such basins are recomputed from the states below)
+        uu = np.vecdot(u, u) - usum * ubar
         wbar = f * ubar
     else:
         # Hunt et al. (2007), eqs. 20 and 24: w_i = wbar + p y'_i = p u_i
@@ -489,8 +533,13 @@ def _one_observation(
         f = gamma**3 * _sqrt_weight(a)
         u = yp + (wbar / f)[:, None]
 
-    # One pass over the prior states for the member sums, X^T y' and (enkf) X^T u'.
-    sums = _cross(X2, V)
+    # The member sums, X^T y' and (enkf) X^T u: one pass over the states for all, or on
+    # planes one pass each along contiguous members.
+    if planes:
+        vectors = (ones, yp, u) if enkf else (ones, yp)
+        sums = np.stack([np.vecdot(XT, v) for v in vectors], axis=1).transpose(2, 1, 0)
+    else:
+        sums = _cross(X2, V)
     xsum = sums[:, 0]
     xbar = xsum / N
     var_b = _variance(X2, xsum, xsq)
@@ -498,9 +547,9 @@ def _one_observation(
     # y'^T X equals y'^T X'; the second term removes what rounding leaves.
     Ct = (sums[:, 1] - ysum[:, None] * xbar) / (N - 1)
     if enkf:
-        # w' = f u': w'^T X' and w'^T w'
-        WX = f[:, None] * (sums[:, 2] - np.vecdot(uc, ones)[:, None] * xbar)
-        WtW = f * f * np.vecdot(uc, uc)
+        # w' = f (u - ubar): w'^T X' = f (X^T u - sum(u) xbar) and w'^T w'
+        WX = f[:, None] * (sums[:, 2] - usum[:, None] * xbar)
+        WtW = f * f * uu
     if full:
         Xu, xbar_u, var_u = X2, xbar, var_b
     else:
@@ -526,37 +575,36 @@ def _one_observation(
     ) / (N - 1)
     mean_a = xbar_u + wbar[:, None] * Ct
     lost = ~(var_a > 1e-6 * gamma**2 * var_u) | ~(mean_a * mean_a <= _CANCELLATION_RATIO * var_a)
-    lost = np.logical_or.reduce(lost, axis=1) & used  # spreads recomputed from the states
+    lost = np.logical_or.reduce(lost, axis=1)
+    if enkf:
+        lost |= ~(ubar * ubar <= _CANCELLATION_RATIO * uu / (N - 1))
+    lost &= used  # basins whose spreads are recomputed from the states
 
     # The analysis in one pass: Xa = G X + u (f C')^T + c per basin and column, inflation
     # and RTPS (the scaled analysis perturbations about the analysis mean) folded into G,
     # C', c.
     K = f[:, None] * Ct
+    Xw = Xu if not planes else XT if full else X2[:, :, cols].transpose(2, 0, 1)
     if infl.rtps > 0.0:
         scale = rtps_factor(gamma * np.sqrt(var_u), np.sqrt(var_a), infl.rtps)
         G = gamma * scale
         K = K * scale
         c = scale * ((1.0 - gamma) * xbar_u - mean_a) + mean_a
         var_a = scale**2 * var_a
-        divide = bool(np.logical_and.reduce(G > 0.0, axis=None))
-        if divide:
-            K = K / G
-        Xa = np.einsum("bi,bn->bin", u, K)
-        if divide:
-            Xa += Xu
-            Xa *= G[:, None, :]
+        if bool(np.logical_and.reduce(G > 0.0, axis=None)):
+            work = _add_outer(Xw, u, K / G, planes)
+            work *= _per_column(G, planes)
         else:
-            Xa += G[:, None, :] * Xu
-        Xa += c[:, None, :]
+            work = _add_outer(_per_column(G, planes) * Xw, u, K, planes)
+        work += _per_column(c, planes)
     elif plain_g:
-        Xa = np.einsum("bi,bn->bin", u, K)
-        Xa += Xu
+        work = _add_outer(Xw, u, K, planes)
     else:
         # G = gamma everywhere: (X + u K^T / g) g + (1 - g) xbar
-        Xa = np.einsum("bi,bn->bin", u, K / gamma)
-        Xa += Xu
-        Xa *= gamma
-        Xa += ((1.0 - gamma) * xbar_u)[:, None, :]
+        work = _add_outer(Xw, u, K / gamma, planes)
+        work *= gamma
+        work += _per_column((1.0 - gamma) * xbar_u, planes)
+    Xa = work.transpose(1, 2, 0) if planes else work
     if infl.rtps > 0.0 and lost.any():
         # Where the small-quantity spread is not precise enough, redo the RTPS factor from
         # the states: the result is a scaling about the mean, so it can be corrected.
@@ -581,7 +629,7 @@ def _one_observation(
     if full:
         out = Xa
     else:
-        out = X2.copy()
+        out = X2.copy(order="K")
         out[:, :, cols] = Xa
     if not all_used:
         out[~used] = X2[~used]
