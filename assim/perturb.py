@@ -211,7 +211,7 @@ def _box_muller(dh: np.ndarray, ck: np.ndarray, out: np.ndarray, odd: np.ndarray
             mul(rr, _TWO_M53, out=rr)
             np.log(rr, out=rr)
             mul(rr, -2.0, out=rr)
-            np.sqrt(rr, out=rr)  # Box & Muller (1958): r = sqrt(-2 ln u1), angle 2 pi u2
+            np.sqrt(rr, out=rr)  # Box & Muller (1958), Ann. Math. Stat. 29, 610 (first display): r = sqrt(-2 ln u1), angle 2 pi u2
             # u2 in [0, 1) from the top 53 bits of the second word: sector and angle within it
             np.right_shift(k2, _S60, out=kk.view(np.uint64))
             if odd is not None:  # the sine: four sectors back

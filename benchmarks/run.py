@@ -248,7 +248,7 @@ def engine_rows(quick: bool, figures: dict) -> list[Row]:
     if quick:
         single = [dict(n_basin=1, members=100, years=1, scheduler="synchronous", workers=1, basin_chunk=1,
                        block_days=366, write=w, states=True) for w in (False, True)]
-        many = [dict(scheduler="threads", workers=2, **dict(scale_kw, write=w)) for w in (False, True)]
+        many = [dict(scheduler=bench_engine.SCALE_SCHEDULER, workers=2, **dict(scale_kw, write=w)) for w in (False, True)]
         code = (f"{{'single_basin': [bench_engine._in_subprocess(**k) for k in {single!r}], "
                 f"'many_basins': [bench_engine._in_subprocess(**k) for k in {many!r}]}}")
     else:
@@ -272,13 +272,17 @@ def engine_rows(quick: bool, figures: dict) -> list[Row]:
               "analysis.nc as quantiles"]  # the order of bench_engine's cases
     for label, r in zip(labels, f["many_basins"], strict=False):
         size = f", {r['file_mb']:.0f} MB" if r["write"] else ""
-        cfg = f"{r['basins']:,} basins x {r['members']} members x {r['days']} d, daily readings, threads, 2 workers"
+        cfg = (f"{r['basins']:,} basins x {r['members']} members x {r['days']} d, daily readings, "
+               f"{r['scheduler']}, {r['workers']} workers")
+        cpu = f"{r['cpu_s']:.1f} s CPU" + (f" + workers {r['cpu_workers_s']:.1f} s"
+                                           if r.get("cpu_workers_s") else "")
         rows.append(Row(f"scale run, {label}{size}", cfg,
-                        f"{_rate(r['member_steps_per_s'])}, {r['wall_s']:.1f} s wall",
+                        f"{_rate(r['member_steps_per_s'])}, {r['wall_s']:.1f} s wall ({cpu})",
                         target=">= 10 M member-steps/s", met=r["member_steps_per_s"] >= bench_engine.TARGET_RATE))
     peak = max(r["peak_rss_mb"] for r in f["many_basins"])
-    rows.append(Row("scale run, peak memory", "largest of the scale runs above (maximum resident set)",
-                    f"{peak:,.0f} MB", target="<= 2,000 MB", met=peak <= bench_engine.TARGET_MEMORY_MB))
+    rows.append(Row("scale run, peak memory", "largest of the scale runs above (resident set; processes: main "
+                    "+ workers x largest worker)", f"{peak:,.0f} MB", target="<= 2,000 MB",
+                    met=peak <= bench_engine.TARGET_MEMORY_MB))
     if "wall_s" in one and "wall_s" in two:
         rows.append(Row("dask scaling, threads 1 -> 2 workers", f"scale run without file, back to back: "
                         f"{one['wall_s']:.1f} s on 1 worker, {two['wall_s']:.1f} s on 2",
@@ -291,6 +295,24 @@ def engine_rows(quick: bool, figures: dict) -> list[Row]:
         if "error" in r:
             rows.append(Row(f"dask scaling, {name.replace('_', ' ')}", "scale run without file",
                             f"failed: {r['error']}", met=False))
+    rows += scaling_rows(f.get("scaling", []))
+    return rows
+
+
+def scaling_rows(results: list[dict]) -> list[Row]:
+    """Wall time against basins, members and years (synchronous, one core): ns per
+    member-step should stay flat if the cost is linear."""
+    rows = []
+    base = next((r for r in results if r.get("varied") == "base"), None)
+    for r in results:
+        steps = r["basins"] * r["members"] * r["days"]
+        ns = r["wall_s"] / steps * 1e9
+        rel = "" if base is None or r is base else (
+            f"; {r['wall_s'] / base['wall_s']:.2f}x the base time for "
+            f"{steps / (base['basins'] * base['members'] * base['days']):.0f}x the work")
+        rows.append(Row(f"scaling, {r['varied']}", f"{r['basins']} basins x {r['members']} members x {r['days']} d, "
+                        "synchronous, one core", f"{r['wall_s']:.2f} s wall ({r['cpu_s']:.2f} s CPU), "
+                        f"{ns:.0f} ns per member-step{rel}"))
     return rows
 
 
