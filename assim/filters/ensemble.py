@@ -360,7 +360,12 @@ def _bounds(bound, name, cols, full, shape, B):
     if not full and arr.ndim and arr.shape[-1] != 1:
         arr = arr[..., cols]
     # all -inf (lower) / all +inf (upper), by one reduction (a NaN makes it False, as ==)
-    if not arr.size or (arr.max() == -np.inf if name == "lower" else arr.min() == np.inf):
+    if not arr.size:
+        return None
+    if name == "lower":
+        if np.maximum.reduce(arr, axis=None) == -np.inf:
+            return None
+    elif np.minimum.reduce(arr, axis=None) == np.inf:
         return None
     if same:
         return arr.reshape(B, shape[-2], cols.size)
@@ -373,11 +378,9 @@ def _clip(Xa, lo, hi, active):
     Returns the clipped water (B, n_u), mm summed over members (positive where members were
     raised to a lower bound), and which basins had any member outside (B,) bool."""
     B = Xa.shape[0]
-    outside = np.zeros(B, bool)
-    if lo is not None:
-        outside |= np.logical_or.reduce(np.less(Xa, lo), axis=(1, 2))
-    if hi is not None:
-        outside |= np.logical_or.reduce(np.greater(Xa, hi), axis=(1, 2))
+    below = None if lo is None else np.logical_or.reduce(np.less(Xa, lo), axis=(1, 2))
+    above = None if hi is None else np.logical_or.reduce(np.greater(Xa, hi), axis=(1, 2))
+    outside = below if above is None else above if below is None else below | above
     outside &= active
     clipped = np.zeros((B, Xa.shape[2]))
     count = np.count_nonzero(outside)
@@ -456,12 +459,13 @@ def _one_observation(
     planes = st[1] == X2.itemsize and (B == 1 or st[0] == N * X2.itemsize)
     XT = X2.transpose(2, 0, 1) if planes else None  # (n, B, N)
     plain_g = gamma == 1.0
-    ones = np.ones(N)
+    ones = np.empty(N)
+    ones.fill(1.0)
     # The member vectors contracted with the states, V (B, k, N): ones (member sums), the
     # whitened predicted perturbations y' and, for enkf, the weights u. On planes each is
     # its own contiguous (B, N) array, contracted with each plane.
     V = None if planes else np.empty((B, 3 if enkf else 2, N))
-    ybar = _sum(Y2)[:, 0] / N
+    ybar = np.vecdot(Y2[:, :, 0], ones) / N
     if planes:
         yp = np.subtract(Y2[:, :, 0], ybar[:, None])
     else:
@@ -537,7 +541,10 @@ def _one_observation(
     # planes one pass each along contiguous members.
     if planes:
         vectors = (ones, yp, u) if enkf else (ones, yp)
-        sums = np.stack([np.vecdot(XT, v) for v in vectors], axis=1).transpose(2, 1, 0)
+        sums = np.empty((n, B, len(vectors)))
+        for k, v in enumerate(vectors):
+            np.vecdot(XT, v, out=sums[:, :, k])
+        sums = sums.transpose(1, 2, 0)  # (B, k, n)
     else:
         sums = _cross(X2, V)
     xsum = sums[:, 0]
@@ -765,8 +772,8 @@ def _analysis(
     r2 = np.ascontiguousarray(r).reshape(B, m)
 
     missing = ~(np.isfinite(y2) & np.isfinite(r2))
-    bad = ~missing & ~(r2 > 0.0)
-    if bad.any():
+    bad = r2 <= 0.0  # (NaN compares False; where the reading is missing it is allowed)
+    if bad.any() and (bad := bad & ~missing).any():
         b, j = np.argwhere(bad)[0]
         _fail(
             f"must be > 0 where a reading is present, got {r2[b, j]!r}",
