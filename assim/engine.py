@@ -583,15 +583,18 @@ def advance(
     # random numbers and perturbed forcing of the whole block, one call per stream
     ck = {name: pt.counter_keys(s.seed, inputs.keys, members, stream)
           for name, stream in (("precipitation", pt.PRECIPITATION), ("pet", pt.PET))}
-    log_err = {}  # (time, basin, member) AR(1) log errors of the block
+    log_err = {}  # (time, basin, member) AR(1) log errors of the block, kept for hindcast issues
+    end_ar1 = {}
     forcing_blk = {}  # (time, basin * member) perturbed forcing, mm d-1
     for name, model_err in (("precipitation", s.precipitation), ("pet", s.pet)):
         e = model_err.series(state.ar1[name], pt.standard_normal(ck[name], days))
-        log_err[name] = e
-        w = model_err.multiplier(e, out=np.empty_like(e))
+        end_ar1[name] = e[-1].copy() if nt else state.ar1[name]
+        if issue_index is not None and len(issue_index):
+            log_err[name] = e
+            e = np.empty_like(e)
+        w = model_err.multiplier(log_err.get(name, e), out=e)  # in place when not kept
         w *= getattr(inputs, name)[:, t0:t1].T[:, :, None]
         forcing_blk[name] = w.reshape(nt, nb * nm)
-    end_ar1 = {n: (e[-1].copy() if nt else state.ar1[n]) for n, e in log_err.items()}
     noise = pt.StateNoise.from_names(s.state_noise, list(model.state_names))
     noise_keys = [pt.counter_keys(s.seed, inputs.keys, members, k) for k in noise.streams]
     kernel_keys = [pt.counter_keys(s.seed, inputs.keys, members, pt.stream_id("kernel:" + p)) for p in est]
