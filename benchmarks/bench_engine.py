@@ -141,10 +141,10 @@ def run(quick: bool = False) -> dict:
               for w in (False, True)]
     big = (50, 128, 0.5) if quick else (1000, 128, 3)
     many = [_in_subprocess(n_basin=big[0], members=big[1], years=big[2], scheduler=SCALE_SCHEDULER, workers=2,
-                           basin_chunk=125, block_days=30, write=True, states=s, quantiles=q)
+                           basin_chunk=250, block_days=30, write=True, states=s, quantiles=q)
             for s, q in ((False, None), (True, None), (False, [0.05, 0.25, 0.5, 0.75, 0.95]))]
     many.insert(0, _in_subprocess(n_basin=big[0], members=big[1], years=big[2], scheduler=SCALE_SCHEDULER,
-                                  workers=2, basin_chunk=125, block_days=30, write=False, states=False))
+                                  workers=2, basin_chunk=250, block_days=30, write=False, states=False))
     base = (10, 32, 0.25) if quick else (50, 64, 1.0)
     scaling = []
     for factor in (1, 2, 4):
