@@ -413,25 +413,40 @@ def _per_column(v, planes):
     return np.ascontiguousarray(v.T)[:, :, None] if planes else v[:, None, :]
 
 
-def _add_outer(Xw, u, K, planes):
-    """``Xw + u K^T`` per basin, a new array: Xw (B, N, n) and the result in that layout, or
-    on planes Xw (n, B, N) and the result (n, B, N); u (B, N), K (B, n).
+def _add_outer(Xw, u, K, planes, G=None, c=None):
+    """``(Xw + u K^T) G + c`` per basin and column, a new array: Xw (B, N, n) and the result
+    in that layout, or on planes Xw (n, B, N) and the result (n, B, N); u (B, N); K, and G
+    and c if given, (B, n) (G may be a number).
 
-    On planes a large batch is done one plane at a time, so that the product is still in
-    cache when the states are added; either way each element is the same two operations."""
+    On planes a large batch is done one plane at a time, so that each plane is still in
+    cache for the next operation; either way each element gets the same operations."""
     if not planes:
         out = np.einsum("bi,bn->bin", u, K)
         out += Xw
+        if G is not None:
+            out *= G if np.ndim(G) == 0 else G[:, None, :]
+        if c is not None:
+            out += c[:, None, :]
         return out
     out = np.empty(Xw.shape)
     KT = np.ascontiguousarray(K.T)
+    GT = None if G is None or np.ndim(G) == 0 else np.ascontiguousarray(G.T)
+    cT = None if c is None else np.ascontiguousarray(c.T)
     if u.size <= 4096:
         np.multiply(KT[:, :, None], u[None], out=out)
         out += Xw
+        if G is not None:
+            out *= G if GT is None else GT[:, :, None]
+        if c is not None:
+            out += cT[:, :, None]
         return out
     for j in range(out.shape[0]):  # (over the state columns)
-        np.multiply(u, KT[j][:, None], out=out[j])
-        out[j] += Xw[j]
+        plane = np.multiply(u, KT[j][:, None], out=out[j])
+        plane += Xw[j]
+        if G is not None:
+            plane *= G if GT is None else GT[j][:, None]
+        if c is not None:
+            plane += cT[j][:, None]
     return out
 
 
@@ -599,18 +614,14 @@ def _one_observation(
         c = scale * ((1.0 - gamma) * xbar_u - mean_a) + mean_a
         var_a = scale**2 * var_a
         if bool(np.logical_and.reduce(G > 0.0, axis=None)):
-            work = _add_outer(Xw, u, K / G, planes)
-            work *= _per_column(G, planes)
+            work = _add_outer(Xw, u, K / G, planes, G, c)
         else:
-            work = _add_outer(_per_column(G, planes) * Xw, u, K, planes)
-        work += _per_column(c, planes)
+            work = _add_outer(_per_column(G, planes) * Xw, u, K, planes, None, c)
     elif plain_g:
         work = _add_outer(Xw, u, K, planes)
     else:
         # G = gamma everywhere: (X + u K^T / g) g + (1 - g) xbar
-        work = _add_outer(Xw, u, K / gamma, planes)
-        work *= gamma
-        work += _per_column((1.0 - gamma) * xbar_u, planes)
+        work = _add_outer(Xw, u, K / gamma, planes, gamma, (1.0 - gamma) * xbar_u)
     Xa = work.transpose(1, 2, 0) if planes else work
     if infl.rtps > 0.0 and lost.any():
         # Where the small-quantity spread is not precise enough, redo the RTPS factor from
