@@ -33,12 +33,19 @@ perturbations, whitened innovation ``d``:
     once for all observations. For one observation it is the ``etkf`` formula.
 
 Costs are O(N n_state n_obs) per basin plus O(n_obs^3) for the ``etkf`` eigenproblem. With
-one observation the states are read three times (sums of squares; one contraction with the
-member vectors; the update) and the result written once; the analysis spread follows from
-small quantities. Inflation costs no extra pass: multiplicative inflation and RTPS are a
-per-column factor and shift in the update (RTPS's factor comes from the analysis spread
-known beforehand), and RTPP, with ``X'a = g X' + W'C^T`` and ``X'b = g X'``, scales the
-weight perturbations ``W'`` by ``1 - alpha``. Spreads from sums of squares are recomputed
+one observation per basin (the common case) a fused path keeps observation space as (basin,
+member) vectors, with no (basin, n_obs, n_obs) matrices and no solve: the gain is the
+(basin, n_state) vector ``cov(x, h) / (var(h) + R)``. The states are read for their sums of
+squares and their contraction with the member vectors, and the result written by one
+product and one addition; the analysis spread follows from small quantities. States whose
+member axis is fastest in memory, one (basin, member) plane per state (a model's
+Fortran-ordered (batch, n_state) array, as the engine passes it), are worked on plane by
+plane along contiguous members and the analysis keeps that layout; other layouts are
+returned C-ordered. Every member sum and dot product is taken per basin, so a basin's numbers
+never depend on the other basins of the call. Inflation costs no extra pass: multiplicative
+inflation and RTPS are a per-column factor and shift in the update (RTPS's factor comes from
+the analysis spread known beforehand), and RTPP, with ``X'a = g X' + W'C^T`` and
+``X'b = g X'``, scales the weight perturbations ``W'`` by ``1 - alpha``. Spreads from sums of squares are recomputed
 from deviations for the basins where the mean exceeds 1000 standard deviations
 (cancellation), so they keep about 1e-9 relative precision.
 
@@ -92,7 +99,8 @@ class Analysis:
     Attributes
     ----------
     states : (..., member, n_state) float64, mm
-        Updated ensemble (same shape as the input states).
+        Updated ensemble (same shape as the input states; with one observation, states
+        laid out member-fastest, one plane per state, come back in that layout).
     innovation : (..., n_obs) float64
         Observed minus ensemble mean of predicted, in the assimilation space; NaN where the
         reading is missing or the prediction is not finite.
