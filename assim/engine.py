@@ -483,6 +483,40 @@ def _member_sd(a: np.ndarray) -> np.ndarray:
     return np.sqrt(out, out=out)
 
 
+def collapse_counts(count: np.ndarray, has: np.ndarray, low: np.ndarray, days: np.ndarray,
+                    limit: int) -> tuple[np.ndarray, np.ndarray]:
+    """Consecutive-day counters of collapsed spread over a run of analysed days, at once.
+
+    Day by day: a day with a reading and a low spread adds one, a day with a reading and a
+    normal spread resets to 0, a day without a reading keeps the count; the warning day is the
+    first day whose count equals ``limit``.
+
+    Parameters
+    ----------
+    count : (basin,) int, counts before the first day
+    has, low : (basin, day) bool, reading present; reading present and spread low
+    days : (day,) int, day numbers
+    limit : int, ``filter.collapse_days``
+
+    Returns
+    -------
+    count : (basin,) int64 after the last day
+    first : (basin,) int64, the first day number whose count equals ``limit``, -1 for none
+    """
+    nb, nd = has.shape
+    count = np.asarray(count, dtype=np.int64)
+    if nd == 0:
+        return count.copy(), np.full(nb, -1, dtype=np.int64)
+    lows = np.cumsum(low, axis=1, dtype=np.int64)  # low days so far
+    reset = has & ~low
+    last = np.maximum.accumulate(np.where(reset, np.arange(nd), -1), axis=1)  # last reset day so far
+    at_reset = np.take_along_axis(lows, np.maximum(last, 0), axis=1)
+    counts = np.where(last >= 0, lows - at_reset, count[:, None] + lows)
+    hit = counts == limit
+    first = np.where(hit.any(axis=1), np.asarray(days, dtype=np.int64)[hit.argmax(axis=1)], -1)
+    return counts[:, -1].copy(), first
+
+
 def liu_west_shrink(theta: np.ndarray, a: float, z: np.ndarray, low: np.ndarray, high: np.ndarray) -> np.ndarray:
     """Kernel shrinkage of parameter members before an analysis.
 
@@ -646,10 +680,13 @@ def advance(
                                 th_lo, th_hi)
 
     lo3, hi3 = updated_bounds()
-    if assim:  # float64 discharge of every day, for the spreads and collapse counts at the end
+    if assim:  # discharge (float64) and reading use of every day, for the spreads, counts and
+        # collapse counters of the block at its end
         q_blk = np.empty((nb, nt, nm))
         qa_blk = np.empty((nb, nt, nm))
         analysed = np.zeros(nt, dtype=bool)
+        used_blk = np.zeros((nb, nt), dtype=bool)
+        gated_blk = np.zeros((nb, nt), dtype=bool)
     try:
         for k in range(nt):
             t = t0 + k
@@ -682,14 +719,10 @@ def advance(
                     prepared = model.prepare(flat)
                     lower, upper = model.bounds(flat)
                     lo3, hi3 = updated_bounds()
-                used = np.asarray(a.used).reshape(nb)
-                gated = np.asarray(a.gated).reshape(nb)
-                n_used += used
-                n_gated += gated
+                used_blk[:, k] = np.asarray(a.used).reshape(nb)
+                gated_blk[:, k] = np.asarray(a.gated).reshape(nb)
                 analysed[k] = True
                 if record:
-                    arrays["obs_status"][:, k_o] = np.where(used, OBS_USED, np.where(gated, OBS_GATED,
-                                                                                     status_blk[:, k]))
                     arrays["innovation"][:, k_o] = np.asarray(a.innovation).reshape(nb)
                     arrays["innovation_variance"][:, k_o] = np.asarray(a.innovation_variance).reshape(nb)
                     arrays["clipped_water"][:, k_o] = _clipped_water(a, nb, nm, len(upd))
@@ -729,15 +762,17 @@ def advance(
                        forecast_forcing=forecast_forcing, fixed=fixed, check_daily=True)
     if assim and nt:
         # spreads of every day at once (each row reduced alone, as on its own day), then the
-        # collapse counts of the analysed days in order
+        # counts and collapse counters of the analysed days
         spread_b = _member_sd(q_blk)  # (basin, time)
-        for k in np.flatnonzero(analysed):
-            has = has_blk[:, k]
-            low_spread = has & (spread_b[:, k] < s.collapse_ratio * sd_blk[:, k])
-            collapse = np.where(has, np.where(low_spread, collapse + 1, 0), collapse)
-            hit = (collapse == s.collapse_days) & (collapse_first < 0)
-            collapse_first = np.where(hit, int(days[k]), collapse_first)
+        n_used += used_blk.sum(axis=1)
+        n_gated += gated_blk.sum(axis=1)
+        a_days = np.flatnonzero(analysed)
+        has = has_blk[:, a_days]
+        low_spread = has & (spread_b[:, a_days] < s.collapse_ratio * sd_blk[:, a_days])
+        collapse, collapse_first = collapse_counts(collapse, has, low_spread, days[a_days], s.collapse_days)
         if n_out:
+            arrays["obs_status"][:] = np.where(used_blk, OBS_USED, np.where(gated_blk, OBS_GATED,
+                                                                             status_blk))[:, k_out0:]
             arrays["discharge"][:] = q_blk[:, k_out0:]
             arrays["discharge_analysis"][:] = qa_blk[:, k_out0:]
             arrays["spread_before"][:] = spread_b[:, k_out0:]
