@@ -391,6 +391,8 @@ def _clip(Xa, lo, hi, active):
     outside = below if above is None else above if below is None else below | above
     outside &= active
     clipped = np.zeros((B, Xa.shape[2]))
+    if not np.logical_or.reduce(outside):
+        return clipped, outside
     count = np.count_nonzero(outside)
     if 0 < count <= max(1, B // 8):
         # Few basins out of bounds: clip just those, the clipped water exactly.
@@ -600,15 +602,17 @@ def _one_observation(
         WtW = shrink**2 * WtW
     # Analysis spread and mean from small quantities, X'a = g X' + w' C^T:
     # sum X'a^2 = g^2 sum X'^2 + 2 g C (w'^T X') + C^2 (w'^T w').
-    var_a = (
-        gamma**2 * (N - 1) * var_u + 2.0 * gamma * (Ct * WX) + Ct * WtW[:, None] * Ct
-    ) / (N - 1)
+    var_a = ((gamma**2 * (N - 1)) * var_u + Ct * ((2.0 * gamma) * WX + WtW[:, None] * Ct)) / (
+        N - 1
+    )
     mean_a = xbar_u + wbar[:, None] * Ct
-    lost = ~(var_a > 1e-6 * gamma**2 * var_u) | ~(mean_a * mean_a <= _CANCELLATION_RATIO * var_a)
-    lost = np.logical_or.reduce(lost, axis=1)
+    # basins whose spreads are recomputed from the states: the analysis spread lost most of
+    # the prior's, or the mean is too large for sums of squares (also that of u, enkf)
+    exact = (var_a > (1e-6 * gamma**2) * var_u) & (mean_a * mean_a <= _CANCELLATION_RATIO * var_a)
+    lost = ~np.logical_and.reduce(exact, axis=1)
     if enkf:
-        lost |= ~(ubar * ubar <= _CANCELLATION_RATIO * uu / (N - 1))
-    lost &= used  # basins whose spreads are recomputed from the states
+        lost |= ~(ubar * ubar <= (_CANCELLATION_RATIO / (N - 1)) * uu)
+    lost &= used
 
     # The analysis in one pass: Xa = G X + u (f C')^T + c per basin and column, inflation
     # and RTPS (the scaled analysis perturbations about the analysis mean) folded into G,
