@@ -471,10 +471,11 @@ def _one_observation(
     no (B, n_obs, n_obs) matrices and no solve; the gain is the (B, n) vector
     ``cov(x, h) / (var(h) + R)`` in whitened form. The member weights are kept as
     ``w = f u`` with a per-basin factor ``f`` moved onto the cross-covariance, which saves
-    a pass over them. The states are read twice (sums of squares; one contraction with the
-    member vectors) and the analysis written by one product and one addition. Member dot
-    products are per-basin ``vecdot`` calls, so a basin's numbers never depend on the
-    others in the batch. Returns the :class:`Analysis`."""
+    a pass over them. C-ordered states are read twice (sums of squares; one contraction
+    with all member vectors); states on planes once per quantity along contiguous members.
+    The analysis is written by one product and one addition. Every member sum and dot
+    product is a per-basin (``vecdot``, ``vecmat``) call, so a basin's numbers never depend
+    on the others in the batch. Returns the :class:`Analysis`."""
     B, N, n = X2.shape
     enkf = method == "enkf"
     # Member axis fastest in memory, each state a (basin, member) plane (the engine's
@@ -618,7 +619,7 @@ def _one_observation(
     # and RTPS (the scaled analysis perturbations about the analysis mean) folded into G,
     # C', c.
     K = f[:, None] * Ct
-    Xw = Xu if not planes else XT if full else X2[:, :, cols].transpose(2, 0, 1)
+    Xw = Xu if not planes else XT if full else XT[cols]
     if infl.rtps > 0.0:
         scale = rtps_factor(gamma * np.sqrt(var_u), np.sqrt(var_a), infl.rtps)
         G = gamma * scale
