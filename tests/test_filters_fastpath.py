@@ -122,15 +122,15 @@ def test_one_observation_path_equals_the_general_path(method, layout):
 @pytest.mark.parametrize("method", ["enkf", "etkf", "eakf"])
 def test_one_observation_path_does_not_depend_on_the_other_basins(method, layout):
     """A basin's analysis is the same, bit for bit, whatever other basins share the call
-    and wherever it sits in the batch (DESIGN.md, Determinism; common practice, no
-    published source)."""
+    and wherever it sits in the batch, in a large batch and in a small one (DESIGN.md,
+    Determinism; common practice, no published source)."""
     rng = np.random.default_rng(3)
-    X, Y, y, r = _problem(rng, B=12)
+    X, Y, y, r = _problem(rng, B=300)  # (large enough for the plane-by-plane update)
     noise = rng.standard_normal(Y.shape)
     kw = dict(method=method, gate_sigma=3.0, lower=85.0, inflation=Inflation(1.1, rtps=0.5))
     prepare = _planes if layout == "planes" else np.ascontiguousarray
     whole = ensemble_update(prepare(X), Y, y, r, obs_noise=noise, **kw)
-    order = np.array([7, 0, 5])
+    order = np.array([7, 0, 5, 250])
     part = ensemble_update(
         prepare(X[order]), Y[order], y[order], r[order], obs_noise=noise[order], **kw
     )
