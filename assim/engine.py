@@ -1062,13 +1062,15 @@ def _merge(results: list[list[BlockResult]]) -> BlockResult:
 def _chunk_task(args, store) -> BlockResult:
     """One chunk over one time block, on the chunk's lane (see :mod:`assim.parallel`).
 
-    The first block of a chunk brings its state; later blocks take the end state the
-    previous block left in the lane's ``store``, with the prepared parameters (fixed when no
-    parameter is estimated). The result carries the end state only after the last block (or
+    The first block of a chunk brings its model and state; later blocks take the model and
+    the end state the previous block left in the lane's ``store``, with the prepared
+    parameters (fixed when no parameter is estimated). The result carries the end state only after the last block (or
     a failure); otherwise the state stays in the store."""
     key, model, inputs, state, settings, t1, kwargs, last = args
     if state is None:
         state = store.pop(key)
+    # the model travels with the first block only (pickling its functions by value is slow)
+    model = store.setdefault((key, "model"), model) if model is not None else store[(key, "model")]
     fixed = None
     if not settings.estimate:
         fixed = store.get((key, "fixed"))
@@ -1077,6 +1079,7 @@ def _chunk_task(args, store) -> BlockResult:
     r = advance(model, inputs, state, settings, 0, t1, fixed=fixed, **kwargs)
     if last or r.first_bad is not None:
         store.pop((key, "fixed"), None)
+        store.pop((key, "model"), None)
         return r
     store[key] = r.state
     return replace(r, state=None)
@@ -1157,9 +1160,11 @@ def run(
             blk = issues[(issues >= t) & (issues < t1)]
             kwargs.update(issue_index=blk - t, leads=hindcast[1], forecast_forcing=hindcast[2])
         last = j == len(blocks) - 1
+        first = j == 0  # the model and the state go to a chunk's lane once
         return [ex.submit_to(ci, ci, _chunk_task,
-                             (ci, model, sub_inputs[bi].days_slice(t, end), state.subset(b, m) if j == 0 else None,
-                              settings, t1 - t, dict(kwargs, members=members[m]), last))
+                             (ci, model if first else None, sub_inputs[bi].days_slice(t, end),
+                              state.subset(b, m) if first else None, settings, t1 - t,
+                              dict(kwargs, members=members[m]), last))
                 for ci, (bi, b, mi, m) in enumerate(chunks)]
 
     with parallel.executor(settings.scheduler, settings.workers) as ex:
