@@ -419,9 +419,16 @@ def analyse(
     """
     from assim.filters import ensemble_update
 
-    nu = states.shape[-1]
-    cols = [states, discharge[..., None]] + ([] if theta is None else [theta])
-    x = np.concatenate(cols, axis=-1)
+    nb, nm, nu = states.shape
+    npar = 0 if theta is None else theta.shape[-1]
+    # one (basin, member) plane per column, members fastest: the layout the filter's
+    # one-observation path works on along contiguous members (and returns)
+    planes = np.empty((nu + 1 + npar, nb, nm))
+    planes[:nu] = np.moveaxis(states, -1, 0)
+    planes[nu] = discharge
+    if theta is not None:
+        planes[nu + 1:] = np.moveaxis(theta, -1, 0)
+    x = np.moveaxis(planes, 0, -1)  # (basin, member, column)
     transform = _transform(settings)
     if transform is not None:
         obs_var = transform.variance(observed, obs_var)
