@@ -352,15 +352,18 @@ CASES = [
 RESULTS: dict[str, str] = {}  # case name -> "pass" or the reason it failed
 
 
-def _run_case(case: Case, good: Path, base: Path) -> str:
+def _prepare_case(case: Case, good: Path, base: Path) -> tuple[Path, list, dict]:
+    """A copy of the good scenario broken as the case says: (root, extra CLI args, snapshot)."""
     root = base / case.name.replace(" ", "_").replace("/", "_")
     shutil.copytree(good, root, copy_function=shutil.copy2)
     write_config(root)
     # break_it may run the CLI itself (a restart of another run): its outputs are part of the
     # scenario whose files must not change afterwards.
     extra = case.break_it(root)
-    extra = extra if isinstance(extra, list) else []
-    before = snapshot(root)
+    return root, extra if isinstance(extra, list) else [], snapshot(root)
+
+
+def _judge_case(case: Case, root: Path, extra: list, before: dict) -> str:
     r = cli(*case.command, "--config", root / "config.yaml", *extra, cwd=root)
     after = snapshot(root)
     lines = [line for line in r.stderr.splitlines() if line.strip()]
@@ -384,8 +387,11 @@ def test_battery_of_bad_inputs(good, tmp_path):
     one through the CLI in a subprocess: exit 2, one stderr line naming file and variable,
     no traceback, nothing written or changed. Common practice, no published source."""
     assert len({c.name for c in CASES}) == len(CASES)
+    # The scenarios are broken one after the other in this process (HDF5, behind netCDF4 and
+    # xarray, is not thread-safe); only the CLI subprocesses run two at a time.
+    prepared = {c.name: _prepare_case(c, good, tmp_path) for c in CASES}
     with concurrent.futures.ThreadPoolExecutor(max_workers=2) as pool:
-        futures = {c.name: pool.submit(_run_case, c, good, tmp_path) for c in CASES}
+        futures = {c.name: pool.submit(_judge_case, c, *prepared[c.name]) for c in CASES}
         for name, fut in futures.items():
             RESULTS[name] = fut.result()
     failed = {k: v for k, v in RESULTS.items() if v != "pass"}
