@@ -399,3 +399,23 @@ def test_forecast_issue_forcings():
     assert qc.shape == (2, 7, 6)
     np.testing.assert_array_equal(qc[..., 0], qc[..., 2])  # two past years in the record: cycled
     assert not np.array_equal(qc[..., 0], qc[..., 1])
+
+
+def test_collapse_counts_equal_the_day_by_day_counter():
+    """The block-end collapse counters equal the day-by-day rule (a reading with a low spread
+    adds one, a reading with a normal spread resets, no reading keeps the count; the warning
+    day is the first whose count equals the limit) on random cases. Common practice, no
+    published source."""
+    rng = np.random.default_rng(0)
+    for _ in range(200):
+        nb, nd = int(rng.integers(1, 6)), int(rng.integers(0, 40))
+        has = rng.random((nb, nd)) < rng.uniform(0.2, 1.0)
+        low = has & (rng.random((nb, nd)) < rng.uniform(0.0, 1.0))
+        c0, limit, days = rng.integers(0, 8, nb), int(rng.integers(1, 6)), 100 + 2 * np.arange(nd)
+        c, first = c0.copy(), np.full(nb, -1)
+        for k in range(nd):
+            c = np.where(has[:, k], np.where(low[:, k], c + 1, 0), c)
+            first = np.where((c == limit) & (first < 0), days[k], first)
+        got_c, got_first = engine.collapse_counts(c0, has, low, days, limit)
+        np.testing.assert_array_equal(got_c, c)
+        np.testing.assert_array_equal(got_first, first)
