@@ -340,6 +340,11 @@ class Plan:
         return slice(max(self.start, self.first_output), self.stop + 1)
 
 
+def _iso(day) -> str:
+    """Day number (days since 1970-01-01) -> 'YYYY-MM-DD'."""
+    return str(np.datetime64(int(day), "D"))
+
+
 def plan(inputs: Inputs, settings: Settings, state: EnsembleState | None, until_day: int | None = None) -> Plan:
     """Days of a run from ``state`` (None: from the first day) to ``until_day``.
 
@@ -352,12 +357,12 @@ def plan(inputs: Inputs, settings: Settings, state: EnsembleState | None, until_
     days = inputs.days
     start = 0 if state is None else int(state.day - days[0] + 1)
     if not 0 <= start <= len(days):
-        raise RunError("the restart is not valid on a day of the run period", variable="valid_time",
-                       place=f"day {state.day}")
+        raise RunError(f"the restart is not valid on a day of the run period ({_iso(days[0])} to "
+                       f"{_iso(days[-1])})", variable="valid_time", place=_iso(state.day))
     stop = len(days) - 1 if until_day is None else int(until_day - days[0])
     if not start - 1 <= stop < len(days):
-        raise RunError("--until is outside the run period (or before the restart)", variable="until",
-                       place=f"day {until_day}")
+        raise RunError(f"--until is outside the run period ({_iso(days[0])} to {_iso(days[-1])}) or before "
+                       "the restart", variable="until", place=_iso(until_day))
     first = min(settings.spinup_days, len(days))
     return Plan(start, stop, first, first)
 

@@ -339,6 +339,7 @@ CASES = [
     Case("restart truncated", RUN, _restart_truncated, ("cut-restart.nc",)),
     Case("restart without states", RUN, _restart_no_states, ("nostates.nc", "states")),
     Case("--until not a date", RUN, _args("--until", "tomorrow"), ("--until",)),
+    Case("--until after the period", RUN, _args("--until", "2013-05-01"), ("until", "at 2013-05-01", "2012-08-31")),
     # ---- forecast inputs
     Case("forecast forcing file in kg m-2 s-1", FORECAST, _forcing_forecast("flux"), ("ff.nc", "precipitation", "units")),
     Case("forecast forcing file lacks a basin", FORECAST, _forcing_forecast("one basin"), ("ff.nc", "basin", "oskerrin")),
