@@ -65,15 +65,20 @@ def _assert_same(a, b):
         np.testing.assert_array_equal(a[k], b[k], err_msg=k)
 
 
+@pytest.mark.parametrize("quantiles", [None, (0.1, 0.5, 0.9)])
 @pytest.mark.parametrize("mode", ["openloop", "assimilate"])
-def test_chunking_does_not_change_the_results(mode):
+def test_chunking_does_not_change_the_results(mode, quantiles):
     """Basin chunks, member chunks (open loop) and time blocks of any size give arrays equal
-    bit for bit (np.array_equal): every number depends only on (seed, basin, member, day)."""
-    ref, ref_sum = _run(dataclasses.replace(BASE, mode=mode))
+    bit for bit (np.array_equal): every number depends only on (seed, basin, member, day).
+    Quantile outputs too, whether the lanes reduce the members (a chunk holds them all) or
+    the main thread does after joining member chunks."""
+    base = dataclasses.replace(BASE, mode=mode, quantiles=quantiles)
+    ref, ref_sum = _run(base)
+    assert ("discharge_quantile" in ref) == (quantiles is not None)
     for change in ({"basin_chunk": 1}, {"basin_chunk": 2, "time_block_days": 7},
                    {"basin_chunk": 3, "member_chunk": 5, "time_block_days": 1000},
                    {"member_chunk": 1, "time_block_days": 13}):
-        got, got_sum = _run(dataclasses.replace(BASE, mode=mode, **change))
+        got, got_sum = _run(dataclasses.replace(base, **change))
         _assert_same(ref, got)
         np.testing.assert_array_equal(ref_sum.state.states, got_sum.state.states)
 

@@ -227,7 +227,7 @@ class RunWriter(_StreamedFile):
         nc.createDimension("time", nt)
         self._basin(self.basins)
         self._days("time", self.days, "day of the simulated discharge")
-        cb = max(1, min(nb, 16))
+        cb = max(1, min(nb, 64))
         diag_chunks = (cb, self.time_chunk)
         if self.quantiles is None:
             nc.createDimension("member", self.members)
@@ -259,7 +259,7 @@ class RunWriter(_StreamedFile):
             v = nc.createVariable("quantile", "f8", ("quantile",))
             v[:] = np.asarray(self.quantiles)
             v.long_name = "probability of non-exceedance"
-            chunks = (1, len(self.quantiles), self.time_chunk)
+            chunks = (cb, len(self.quantiles), self.time_chunk)  # small rows: several basins a chunk
             self._float_var("discharge_quantile", ("basin", "quantile", "time"), chunks,
                             {**DISCHARGE_ATTRS, "long_name": "quantiles of the background discharge"
                              if self.assimilate else "quantiles of the simulated discharge"})
