@@ -229,6 +229,25 @@ def _exact_variance(a: np.ndarray) -> np.ndarray:
     return np.einsum("bik,bik->bk", dev, dev) / (a.shape[1] - 1)
 
 
+def _redo_rtps(Xa: np.ndarray, lost: np.ndarray, scale: np.ndarray, sd_prior: np.ndarray, rtps: float) -> None:
+    """Redo, in place, the RTPS factor of the basins ``lost`` from their states, where the
+    spread from small quantities was not precise enough: the update was a scaling by
+    ``scale`` about the mean, so it can be undone and applied again exactly.
+
+    Xa : (B, N, k) analysis; lost : (B,) bool; scale : (B, k) factor used;
+    sd_prior : (lost basins, k) prior spread
+    """
+    sub = Xa[lost]
+    sub_mean = _sum(sub) / sub.shape[1]
+    sd_now = np.sqrt(_exact_variance(sub))
+    s_used = scale[lost]
+    ok = s_used > 0.0
+    sd_pre = np.where(ok, sd_now / np.where(ok, s_used, 1.0), 0.0)
+    s_exact = rtps_factor(sd_prior, sd_pre, rtps)
+    ratio = np.where(ok, s_exact / np.where(ok, s_used, 1.0), 1.0)
+    Xa[lost] = sub_mean[:, None, :] + ratio[:, None, :] * (sub - sub_mean[:, None, :])
+
+
 # Variances from member sums of squares lose about (mean / sd)^2 N eps of their relative
 # precision; where the mean exceeds sqrt(_CANCELLATION_RATIO) standard deviations they are
 # recomputed from deviations (two passes) for the basins concerned.
@@ -637,17 +656,7 @@ def _one_observation(
         work = _add_outer(Xw, u, K / gamma, planes, gamma, (1.0 - gamma) * xbar_u)
     Xa = work.transpose(1, 2, 0) if planes else work
     if infl.rtps > 0.0 and lost.any():
-        # Where the small-quantity spread is not precise enough, redo the RTPS factor from
-        # the states: the result is a scaling about the mean, so it can be corrected.
-        sub = Xa[lost]
-        sub_mean = _sum(sub) / N
-        sd_now = np.sqrt(_exact_variance(sub))
-        s_used = scale[lost]
-        ok = s_used > 0.0
-        sd_pre = np.where(ok, sd_now / np.where(ok, s_used, 1.0), 0.0)
-        s_exact = rtps_factor(gamma * np.sqrt(var_u[lost]), sd_pre, infl.rtps)
-        ratio = np.where(ok, s_exact / np.where(ok, s_used, 1.0), 1.0)
-        Xa[lost] = sub_mean[:, None, :] + ratio[:, None, :] * (sub - sub_mean[:, None, :])
+        _redo_rtps(Xa, lost, scale, gamma * np.sqrt(var_u[lost]), infl.rtps)
 
     clipped = np.zeros((B, n))
     outside = None
@@ -966,17 +975,7 @@ def _analysis(
         Xa += G[:, None, :] * Xu
         Xa += c[:, None, :]
     if infl.rtps > 0.0 and lost.any():
-        # Where the small-quantity spread is not precise enough, redo the RTPS factor from
-        # the states: the result is a scaling about the mean, so it can be corrected.
-        sub = Xa[lost]
-        sub_mean = _sum(sub) / N
-        sd_now = np.sqrt(_exact_variance(sub))
-        s_used = scale[lost]
-        ok = s_used > 0.0
-        sd_pre = np.where(ok, sd_now / np.where(ok, s_used, 1.0), 0.0)
-        s_exact = rtps_factor(gamma * np.sqrt(var_u[lost]), sd_pre, infl.rtps)
-        ratio = np.where(ok, s_exact / np.where(ok, s_used, 1.0), 1.0)
-        Xa[lost] = sub_mean[:, None, :] + ratio[:, None, :] * (sub - sub_mean[:, None, :])
+        _redo_rtps(Xa, lost, scale, gamma * np.sqrt(var_u[lost]), infl.rtps)
 
     clipped = np.zeros((B, n))
     outside = np.zeros(B, bool)
