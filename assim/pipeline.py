@@ -433,19 +433,19 @@ def _readings_identity(cfg: Config, day: int) -> dict[str, str]:
 
 
 def _latest_restart(cfg: Config, issue_day: int):
-    """The restart a forecast for ``issue_day`` starts from, and the warnings about it.
+    """The restart a forecast for ``issue_day`` starts from: (path, valid day, warnings).
 
     The newest forecasts/restart-YYYY-MM-DD.nc before the issue day (else restart.nc) whose
     readings are still those on file: a restart written before a late reading of its days
     arrived is passed over for an older one, so that the next forecast assimilates the late
     reading. When no restart is current (readings before the run's own restart changed), the
-    newest is used and the warning says so.
+    newest is used and the warning says so. Only the restarts' headers are read.
     """
     import re
 
     from assim import paths
     from assim.errors import RestartError
-    from assim.io.restart import read_restart
+    from assim.io.restart import read_restart_header
 
     candidates = []
     folder = paths.forecasts(cfg)
@@ -460,21 +460,19 @@ def _latest_restart(cfg: Config, issue_day: int):
     if not candidates:
         raise RestartError("no restart to start the forecast from: run `assim run --mode assimilate` first",
                            file=p)
-    restarts = sorted((read_restart(f) for f in candidates), key=lambda r: r.valid_day, reverse=True)
-    digests = _readings_digests(cfg, [r.valid_day for r in restarts])
+    headers = sorted(((f, *read_restart_header(f)) for f in candidates), key=lambda h: h[1], reverse=True)
+    digests = _readings_digests(cfg, [day for _, day, _ in headers])
     skipped = []
-    for r in restarts:
-        recorded = r.identity.get("readings_digest")
-        if recorded is None or recorded == digests[r.valid_day]:  # None: written before digests existed
-            break
-        skipped.append(r)
-    else:
-        r = restarts[0]
-        return Path(r.path), [f"{r.path}: gauge readings up to {restarts[-1].identity.get('readings_through')} "
-                              "changed after every restart was written; the forecast continues from the newest "
-                              "restart without them (rerun `assim run --mode assimilate` to take them in)"]
-    return Path(r.path), [f"{s.path}: passed over, readings up to {s.identity.get('readings_through')} arrived "
-                          "or changed after it was written" for s in skipped]
+    for f, day, attrs in headers:
+        recorded = attrs.get("readings_digest")
+        if recorded is None or recorded == digests[day]:  # None: written before digests existed
+            return f, day, [f"{s}: passed over, readings up to {a.get('readings_through')} arrived or changed "
+                            "after it was written" for s, _, a in skipped]
+        skipped.append((f, day, attrs))
+    f, day, _ = headers[0]
+    return f, day, [f"{f}: gauge readings up to {headers[-1][2].get('readings_through')} changed after every "
+                    "restart was written; the forecast continues from the newest restart without them "
+                    "(rerun `assim run --mode assimilate` to take them in)"]
 
 
 def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
@@ -497,7 +495,7 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
     from assim import engine, paths
     from assim.errors import ConfigError, RestartError
     from assim.io.products import dates, forecast_lock, read_forcing_forecast, write_forecast
-    from assim.io.restart import read_restart, write_restart
+    from assim.io.restart import write_restart
 
     fc = cfg["forecast"]
     kind, leads = fc["forcing"], int(fc["leads"])
@@ -505,10 +503,9 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
     iso = str(dates([issue_day])[0].date())
     lock = paths.forecasts(cfg) / f".forecast-{iso}.lock"
     with forecast_lock(lock, [paths.forecast(cfg, iso), paths.forecast_restart(cfg, iso)]):
-        restart_path, passed_over = _latest_restart(cfg, issue_day)
+        restart_path, valid, passed_over = _latest_restart(cfg, issue_day)
         for w in passed_over:
             print(f"warning: {w}", file=sys.stderr)
-        valid = read_restart(restart_path).valid_day
         if valid > issue_day:
             raise RestartError(f"the restart is valid at {dates([valid])[0].date()}, after the issue date {iso}",
                                file=restart_path, variable="valid_time")

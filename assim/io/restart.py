@@ -91,13 +91,7 @@ def read_restart(path) -> Restart:
         if the file is missing, unreadable or lacks a variable.
     """
     path = Path(path)
-    if not path.exists():
-        raise RestartError("restart file not found", file=path)
-    try:
-        ds = xr.open_dataset(path)
-    except (OSError, ValueError) as exc:
-        raise RestartError(f"cannot read restart ({exc})", file=path) from None
-    with ds:
+    with _open(path) as ds:
         for v in ("states", "valid_time", "collapse_days"):
             if v not in ds.variables:
                 raise RestartError("variable missing from the restart", file=path, variable=v)
@@ -113,6 +107,32 @@ def read_restart(path) -> Restart:
             identity={k: str(v) for k, v in ds.attrs.items()},
             path=str(path),
         )
+
+
+def read_restart_header(path) -> tuple[int, dict[str, str]]:
+    """The valid day and the identity attributes of a restart, without reading its states
+    (for choosing among many restarts).
+
+    Raises
+    ------
+    RestartError
+        if the file is missing or unreadable or has no ``valid_time``.
+    """
+    path = Path(path)
+    with _open(path) as ds:
+        if "valid_time" not in ds.variables:
+            raise RestartError("variable missing from the restart", file=path, variable="valid_time")
+        return int(day_numbers([ds["valid_time"].values])[0]), {k: str(v) for k, v in ds.attrs.items()}
+
+
+def _open(path: Path) -> xr.Dataset:
+    """The restart opened lazily, or RestartError naming the file."""
+    if not path.exists():
+        raise RestartError("restart file not found", file=path)
+    try:
+        return xr.open_dataset(path)
+    except (OSError, ValueError) as exc:
+        raise RestartError(f"cannot read restart ({exc})", file=path) from None
 
 
 STRICT = ("model", "members", "seed")
