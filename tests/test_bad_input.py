@@ -463,37 +463,30 @@ def _write_rows(path: Path, header, rows):
         w.writerows(rows)
 
 
+_READERS = {  # file -> (columns, reader, what a successful read must hold)
+    "weather.csv": (raw_io.WEATHER_COLUMNS, raw_io.read_weather,
+                    lambda w: np.all(np.isfinite(w.precipitation)) and np.all(w.precipitation >= 0)),
+    "gauge.csv": (raw_io.GAUGE_COLUMNS, raw_io.read_gauge, lambda g: np.all(np.isfinite(g.value))),
+}
+
+
+@pytest.mark.parametrize("name", list(_READERS))
 @settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
-@given(st.one_of(st.binary(max_size=300), _rows(5)))
-def test_weather_reader_fuzz(tmp_path, data):
-    """Random bytes or rows as weather.csv: InputError or success, never another exception.
-    Common practice, no published source."""
-    p = tmp_path / "weather.csv"
-    if isinstance(data, bytes):
-        p.write_bytes(data)
+@given(data=st.data())
+def test_csv_reader_fuzz(tmp_path, name, data):
+    """Random bytes or rows as weather.csv or gauge.csv: InputError or success (finite,
+    non-negative rain; finite readings), never another exception. Common practice, no
+    published source."""
+    columns, read, holds = _READERS[name]
+    content = data.draw(st.one_of(st.binary(max_size=300), _rows(len(columns))))
+    p = tmp_path / name
+    if isinstance(content, bytes):
+        p.write_bytes(content)
     else:
-        _write_rows(p, raw_io.WEATHER_COLUMNS, data)
+        _write_rows(p, columns, content)
     try:
-        w = raw_io.read_weather(p, ["velmorra", "oskerrin"])
+        result = read(p, ["velmorra", "oskerrin"])
     except InputError as exc:
         assert "\n" not in str(exc)
     else:
-        assert np.all(np.isfinite(w.precipitation)) and np.all(w.precipitation >= 0)
-
-
-@settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
-@given(st.one_of(st.binary(max_size=300), _rows(3)))
-def test_gauge_reader_fuzz(tmp_path, data):
-    """Random bytes or rows as gauge.csv: InputError or success, never another exception.
-    Common practice, no published source."""
-    p = tmp_path / "gauge.csv"
-    if isinstance(data, bytes):
-        p.write_bytes(data)
-    else:
-        _write_rows(p, raw_io.GAUGE_COLUMNS, data)
-    try:
-        g = raw_io.read_gauge(p, ["velmorra", "oskerrin"])
-    except InputError as exc:
-        assert "\n" not in str(exc)
-    else:
-        assert np.all(np.isfinite(g.value))
+        assert holds(result)
