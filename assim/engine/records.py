@@ -1,0 +1,313 @@
+"""The engine's records: its inputs, settings, ensemble state, plan and results.
+
+Small dataclasses that carry arrays between the pipeline and the engine and between the
+parts of the engine; the constants every part shares live here too.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from assim import perturb as pt
+from assim.errors import ConfigError
+from assim.models.base import Model
+
+SECONDS_PER_DAY_OVER_1000 = 86.4  # Q[m3 s-1] = q[mm d-1] * area[km2] / 86.4
+OBS_USED, OBS_MISSING, OBS_GATED, OBS_REJECTED = 0, 1, 2, 3
+FORCINGS = ("precipitation", "pet")
+
+
+@dataclass(frozen=True)
+class Inputs:
+    """Inputs of a run, on the run's days (spin-up included).
+
+    Attributes
+    ----------
+    basin_ids : (basin,) str
+    keys : (basin,) uint64, :func:`assim.perturb.basin_keys` of the ids
+    area_km2 : (basin,) float64, km2
+    days : (time,) int64, days since 1970-01-01, consecutive
+    precipitation, pet : (basin, time) float64, mm d-1
+    observed : (basin, time) float64, m3 s-1, usable daily discharge, NaN where missing
+    rejected : (basin, time) bool, readings rejected by quality control
+    parameters : dict name -> (basin,) float64, the basins' model parameters
+    climatology : optional :class:`Climatology` (the whole forcing record), for
+        climatological forecasts
+    forecast_forcing : optional forcing forecasts of hindcast issues: ``days`` (issue,)
+        int64 and ``precipitation``, ``pet`` (basin, issue, lead, file_member) mm d-1
+    """
+
+    basin_ids: tuple[str, ...]
+    keys: np.ndarray
+    area_km2: np.ndarray
+    days: np.ndarray
+    precipitation: np.ndarray
+    pet: np.ndarray
+    observed: np.ndarray
+    rejected: np.ndarray
+    parameters: dict[str, np.ndarray]
+    climatology: Climatology | None = None
+    forecast_forcing: Mapping[str, np.ndarray] | None = None
+
+    @property
+    def n_basin(self) -> int:
+        return len(self.basin_ids)
+
+    def days_slice(self, a: int, b: int) -> Inputs:
+        """The inputs of day indices ``a .. b - 1`` (what one task of a block needs)."""
+        t = slice(a, b)
+        return replace(self, days=self.days[t], precipitation=self.precipitation[:, t], pet=self.pet[:, t],
+                       observed=self.observed[:, t], rejected=self.rejected[:, t])
+
+    def subset(self, b: slice) -> Inputs:
+        """The inputs of the basins ``b`` (a slice)."""
+        return replace(
+            self,
+            basin_ids=self.basin_ids[b],
+            keys=self.keys[b],
+            area_km2=self.area_km2[b],
+            precipitation=self.precipitation[b],
+            pet=self.pet[b],
+            observed=self.observed[b],
+            rejected=self.rejected[b],
+            parameters={k: v[b] for k, v in self.parameters.items()},
+            climatology=None if self.climatology is None else self.climatology.subset(b),
+            forecast_forcing=None if self.forecast_forcing is None else {
+                k: (v if k == "days" else v[b]) for k, v in self.forecast_forcing.items()},
+        )
+
+
+@dataclass(frozen=True)
+class Climatology:
+    """The forcing record used for climatological (ensemble streamflow prediction) forecasts.
+
+    days : (n,) int64 consecutive days; precipitation, pet : (basin, n) float64, mm d-1
+    """
+
+    days: np.ndarray
+    precipitation: np.ndarray
+    pet: np.ndarray
+
+    def subset(self, b: slice) -> Climatology:
+        return replace(self, precipitation=self.precipitation[b], pet=self.pet[b])
+
+
+@dataclass(frozen=True)
+class EnsembleState:
+    """The ensemble at the end of day ``day`` (everything a restart holds).
+
+    states : (basin, member, n_state) float64, mm
+    parameters : dict name -> (basin, member) float64
+    ar1 : dict forcing name -> (basin, member) float64, the AR(1) log errors on ``day``
+    collapse_days : (basin,) int64, consecutive days of collapsed spread so far
+    """
+
+    day: int
+    states: np.ndarray
+    parameters: dict[str, np.ndarray]
+    ar1: dict[str, np.ndarray]
+    collapse_days: np.ndarray
+
+    def subset(self, b: slice, m: slice = slice(None)) -> EnsembleState:
+        return EnsembleState(
+            day=self.day,
+            states=self.states[b, m],
+            parameters={k: v[b, m] for k, v in self.parameters.items()},
+            ar1={k: v[b, m] for k, v in self.ar1.items()},
+            collapse_days=self.collapse_days[b],
+        )
+
+    @staticmethod
+    def concatenate(parts: list[EnsembleState], axis: int) -> EnsembleState:
+        """Join the states of chunks along basins (``axis`` 0) or members (``axis`` 1)."""
+        p0 = parts[0]
+        return EnsembleState(
+            p0.day,
+            np.concatenate([p.states for p in parts], axis=axis),
+            {k: np.concatenate([p.parameters[k] for p in parts], axis=axis) for k in p0.parameters},
+            {k: np.concatenate([p.ar1[k] for p in parts], axis=axis) for k in p0.ar1},
+            np.concatenate([p.collapse_days for p in parts]) if axis == 0 else p0.collapse_days,
+        )
+
+
+@dataclass(frozen=True)
+class ObsError:
+    """Observation error of discharge: ``absolute`` sd, or ``relative`` x Q with a floor (m3 s-1)."""
+
+    kind: str = "relative"
+    absolute: float = 1.0
+    relative: float = 0.1
+    floor: float = 0.05
+
+    def variance(self, observed: np.ndarray) -> np.ndarray:
+        """(...) m3 s-1 -> (...) (m3 s-1)^2, by :func:`assim.filters.obs_variance` (NaN stays NaN)."""
+        from assim.filters import obs_variance
+
+        return obs_variance(observed, self.kind, sd=self.absolute, relative=self.relative, floor=self.floor)
+
+
+@dataclass(frozen=True)
+class Settings:
+    """Settings of one engine run (built from the config by :func:`settings_from_config`).
+
+    The fields mirror the config: ``mode`` ("openloop" or "assimilate"), ``members``,
+    ``seed``, ``spinup_days`` (``period``); the forcing error models ``precipitation`` and
+    ``pet``, ``parameter_sd`` (relative sd by parameter name) and ``state_noise`` (sd in mm
+    by state name) (``perturbation``); ``method``, ``update_states``, ``obs_error``,
+    ``transform*``, ``gate_sigma``, ``inflation``/``rtps``/``rtpp``, ``estimate`` and
+    ``shrinkage`` (the Liu & West factor a), ``collapse_*`` and ``gating_warn_fraction``
+    (``filter``); ``quantiles`` (None = members), ``write_states``, ``float32``
+    (``outputs``); ``basin_chunk``, ``member_chunk``, ``time_block_days``, ``scheduler``,
+    ``workers`` (``ensemble``; they never change the numbers).
+    """
+
+    mode: str = "assimilate"
+    members: int = 64
+    seed: int = 0
+    spinup_days: int = 0
+    precipitation: pt.LognormalAR1 = pt.LognormalAR1(0.3, 0.5)
+    pet: pt.LognormalAR1 = pt.LognormalAR1(0.1, 0.8)
+    parameter_sd: Mapping[str, float] = field(default_factory=dict)
+    state_noise: Mapping[str, float] = field(default_factory=dict)
+    method: str = "enkf"
+    update_states: tuple[str, ...] = ()
+    obs_error: ObsError = ObsError()
+    transform: str = "none"
+    transform_offset: float = 0.01
+    transform_lambda: float = 0.3
+    gate_sigma: float = 5.0
+    inflation: float = 1.0
+    rtps: float = 0.0
+    rtpp: float = 0.0
+    estimate: tuple[str, ...] = ()
+    shrinkage: float = 0.98
+    collapse_ratio: float = 0.1
+    collapse_days: int = 30
+    gating_warn_fraction: float = 0.2
+    quantiles: tuple[float, ...] | None = None
+    write_states: tuple[str, ...] = ()
+    float32: bool = True
+    basin_chunk: int = 64
+    member_chunk: int = 0
+    time_block_days: int = 365
+    scheduler: str = "threads"
+    workers: int = 0
+
+    @property
+    def assimilate(self) -> bool:
+        return self.mode == "assimilate"
+
+
+@dataclass(frozen=True)
+class Plan:
+    """Which days a run covers.
+
+    start : index into ``inputs.days`` of the first day to advance
+    stop : index of the last day (inclusive)
+    first_output : index of the first day written (after spin-up)
+    first_analysis : index of the first day assimilated (after spin-up)
+    """
+
+    start: int
+    stop: int
+    first_output: int
+    first_analysis: int
+
+    @property
+    def output_slice(self) -> slice:
+        return slice(max(self.start, self.first_output), self.stop + 1)
+
+
+@dataclass
+class BlockResult:
+    """What one task returns: outputs of its days, end state, hindcasts and counters."""
+
+    arrays: dict[str, np.ndarray]
+    state: EnsembleState | None  # None while it stays in the chunk's lane (assim.parallel)
+    hindcast: np.ndarray | None  # (basin, issue, lead, member) m3 s-1
+    n_used: np.ndarray  # (basin,) readings used
+    n_gated: np.ndarray  # (basin,)
+    collapse_first: np.ndarray  # (basin,) first day number a collapse warning was reached, -1 none
+    first_bad: tuple | None = None
+
+
+@dataclass
+class RunSummary:
+    """What a run returns besides the sink's file: end state, warnings, counts per basin."""
+
+    state: EnsembleState
+    warnings: list[str]
+    n_used: np.ndarray
+    n_gated: np.ndarray
+    first_collapse: np.ndarray
+    plan: Plan
+
+
+def settings_from_config(cfg: Mapping, model: Model, mode: str) -> Settings:
+    """Engine settings from a validated config (a mapping of sections).
+
+    Raises
+    ------
+    ConfigError
+        naming the key when a state or parameter name is not one of the model's.
+    """
+    ens, per, fil, out = cfg["ensemble"], cfg["perturbation"], cfg["filter"], cfg["outputs"]
+    names = model.state_names
+    for key, chosen in (("filter.update_states", fil["update_states"]),
+                        ("perturbation.state_noise", list(per["state_noise"]))):
+        for n in chosen:
+            if n not in names:
+                raise ConfigError(f"model {model.name!r} has no state {n!r}; states: {', '.join(names)}",
+                                  file=getattr(cfg, "source", None), variable=key)
+    pnames = model.parameter_names
+    for key, chosen in (("perturbation.parameters", list(per["parameters"])),
+                        ("filter.parameters.estimate", fil["parameters"]["estimate"])):
+        for n in chosen:
+            if n not in pnames:
+                raise ConfigError(f"model {model.name!r} has no parameter {n!r}; parameters: {', '.join(pnames)}",
+                                  file=getattr(cfg, "source", None), variable=key)
+    update = tuple(fil["update_states"]) or model.default_updated_states()
+    update = tuple(n for n in names if n in update)  # model order
+    if out["all_states"]:
+        write = names
+    elif out["states"]:
+        write = update
+    else:
+        write = ()
+    oe, tr, inf = fil["obs_error"], fil["transform"], fil["inflation"]
+    return Settings(
+        mode=mode,
+        members=int(ens["members"]),
+        seed=int(ens["seed"]),
+        spinup_days=int(cfg["period"]["spinup_days"]),
+        precipitation=pt.LognormalAR1(float(per["precipitation_cv"]), float(per["precipitation_ar1"])),
+        pet=pt.LognormalAR1(float(per["pet_cv"]), float(per["pet_ar1"])),
+        parameter_sd=dict(per["parameters"]),
+        state_noise=dict(per["state_noise"]),
+        method=fil["method"],
+        update_states=update,
+        obs_error=ObsError(oe["kind"], float(oe["absolute_m3s"]), float(oe["relative"]), float(oe["floor_m3s"])),
+        transform=tr["kind"],
+        transform_offset=float(tr["offset_m3s"]),
+        transform_lambda=float(tr["lambda"]),
+        gate_sigma=float(fil["gate_sigma"]),
+        inflation=float(inf["multiplicative"]),
+        rtps=float(inf["rtps"]),
+        rtpp=float(inf["rtpp"]),
+        estimate=tuple(p for p in pnames if p in fil["parameters"]["estimate"]),
+        shrinkage=float(fil["parameters"]["shrinkage"]),
+        collapse_ratio=float(fil["collapse_ratio"]),
+        collapse_days=int(fil["collapse_days"]),
+        gating_warn_fraction=float(fil["gating_warn_fraction"]),
+        quantiles=tuple(out["quantiles"]) if out["ensemble"] == "quantiles" else None,
+        write_states=write,
+        float32=bool(out["float32"]),
+        basin_chunk=int(ens["basin_chunk"]),
+        member_chunk=int(ens["member_chunk"]),
+        time_block_days=int(ens["time_block_days"]),
+        scheduler=str(ens["scheduler"]),
+        workers=int(ens["workers"]),
+    )
