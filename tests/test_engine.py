@@ -314,6 +314,41 @@ def test_nan_state_stops_the_run_naming_basin_and_date():
     assert "basin b1" in text and str(day) in text and "store" in text
 
 
+def test_a_genuine_error_propagates_and_the_block_is_not_run_again():
+    """Only a state gone bad replays a block (checked daily, to name it); an error of the
+    model with finite states is a bug and propagates at once. Common practice, no published
+    source: the step is called once per day up to the failing day, never again."""
+    calls = []
+
+    def step(state, forcing, params):
+        calls.append(1)
+        if len(calls) == 11:
+            raise ValueError("a bug in the model step")
+        return LR.step(state, forcing, params)
+
+    model = dataclasses.replace(LR, step=step)
+    inputs = make_inputs(LR, {"k": [0.1] * 2, "c": [0.0] * 2}, np.full((2, 40), 2.0), np.ones((2, 40)))
+    st = engine.Settings(mode="openloop", members=4, scheduler="synchronous")
+    with pytest.raises(ValueError, match="a bug in the model step"):
+        engine.run(model, inputs, st, Collect())
+    assert len(calls) == 11
+
+
+def test_an_open_loop_keeps_the_parameters_it_would_estimate():
+    """filter.parameters.estimate applies to the analysis only: an open loop with it set runs
+    (it failed with a KeyError before) and equals the open loop without it, bit for bit.
+    Common practice, no published source."""
+    rng = np.random.default_rng(3)
+    p, e = synthetic_weather(rng, 2, 60)
+    inputs = make_inputs(LR, {"k": [0.1, 0.2], "c": [0.0, 0.0]}, p, e)
+    st = engine.Settings(mode="openloop", members=6, parameter_sd={"k": 0.2}, scheduler="synchronous")
+    plain, with_estimate = Collect(), Collect()
+    engine.run(LR, inputs, st, plain)
+    engine.run(LR, inputs, dataclasses.replace(st, estimate=("k",)), with_estimate)
+    assert "k" not in with_estimate.blocks
+    assert np.array_equal(plain.get("discharge"), with_estimate.get("discharge"))
+
+
 def test_collapse_and_gating_are_warned():
     """No perturbation: the spread is zero, so the collapse warning fires after
     collapse_days readings; readings far from the ensemble are gated and warned about."""

@@ -53,7 +53,9 @@ from assim.models.base import Model
 
 
 class _Replay(Exception):
-    """A block's state went bad: run it again, checked every day."""
+    """The engine's own signal that a block's state went bad: :func:`advance` runs the block
+    again, checked every day, to name the first bad day and state. Nothing else replays a
+    block: any other exception propagates."""
 
 
 # ---------------------------------------------------------------- what a block prepares at once
@@ -447,22 +449,21 @@ def advance(
         :func:`fixed_parameters`, when no parameter is estimated (they are then the same in
         every block, and computing them is as costly as stepping the model over a month)
     check_daily : check that the state is finite every day (else at the end of the block
-        and on days with non-finite discharge; a failed block is then run again checked)
+        and on days with non-finite discharge; a block whose state went bad is then run
+        again checked, and only then: any other error propagates at once)
 
     Returns
     -------
     BlockResult
     """
-    try:
-        return _advance(model, inputs, state, settings, t0, t1, members, first_output, first_analysis, collect,
-                        issue_index, leads, forecast_forcing, fixed, check_daily)
-    except Exception:
-        if check_daily:
-            raise
-        # a state gone bad mid-block may have upset the filter: the checked run names it
-        return advance(model, inputs, state, settings, t0, t1, members=members, first_output=first_output,
-                       first_analysis=first_analysis, collect=collect, issue_index=issue_index, leads=leads,
-                       forecast_forcing=forecast_forcing, fixed=fixed, check_daily=True)
+    if not check_daily:
+        try:
+            return _advance(model, inputs, state, settings, t0, t1, members, first_output, first_analysis, collect,
+                            issue_index, leads, forecast_forcing, fixed, False)
+        except _Replay:
+            pass  # a state went bad: the block again, checked every day, names the first bad state
+    return _advance(model, inputs, state, settings, t0, t1, members, first_output, first_analysis, collect,
+                    issue_index, leads, forecast_forcing, fixed, True)
 
 
 def _advance(model, inputs, state, settings, t0, t1, members, first_output, first_analysis, collect,
@@ -497,7 +498,19 @@ def _advance(model, inputs, state, settings, t0, t1, members, first_output, firs
     collapse = np.array(state.collapse_days, dtype=np.int64)
     collapse_first = np.full(nb, -1, dtype=np.int64)
     for k in range(nt):
-        bad = run_day(blk, k, check_daily)
+        try:
+            bad = run_day(blk, k, check_daily)
+        except _Replay:
+            raise
+        except Exception:
+            # An error raised while a state is not finite (the filter upset by NaN) is the
+            # state going bad, which the checked run names; any other error is a bug and
+            # propagates as it is.
+            if np.isfinite(blk.x).all():
+                raise
+            if not check_daily:
+                raise _Replay from None
+            bad = first_bad_state(blk, int(days[k]))
         if bad is not None:
             return BlockResult({}, state, None, n_used, n_gated, collapse_first, first_bad=bad)
     if s.assimilate and nt:
