@@ -195,13 +195,24 @@ def _attrs(cfg: Config, model, settings, summary=None) -> dict[str, str]:
     return out
 
 
+def _show_warnings(lines) -> None:
+    """Emit each warning line once as an AssimWarning (the CLI prints each as one line); the
+    engine returns its warnings and never emits them, so nothing is shown twice."""
+    import warnings
+
+    from assim.errors import AssimWarning
+
+    for line in lines:
+        warnings.warn(str(line), AssimWarning, stacklevel=3)
+
+
 def _health_attrs(summary, inputs) -> dict[str, str]:
     import numpy as np
 
     n = summary.n_used + summary.n_gated
     frac = np.where(n > 0, summary.n_gated / np.maximum(n, 1), 0.0)
     return {
-        "warnings": " | ".join(summary.warnings) if summary.warnings else "none",
+        "warnings": " | ".join(str(w) for w in summary.warnings) if summary.warnings else "none",
         "readings_used": str(int(summary.n_used.sum())),
         "readings_gated": str(int(summary.n_gated.sum())),
         "gated_fraction_by_basin": " ".join(f"{b}={f:.3f}" for b, f in zip(inputs.basin_ids, frac, strict=True)),
@@ -253,15 +264,15 @@ def _product_lock(product: Path, *also: Path):
 
 
 def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
-    import sys
 
     from assim import engine, paths
     from assim.io.products import RunWriter, open_product
     from assim.io.restart import write_restart
+    from assim.settings import settings_from_config
 
     start, end = _period(cfg)
     model, inputs, _ = _inputs(cfg, start, end)
-    settings = engine.settings_from_config(cfg, model, mode)
+    settings = settings_from_config(cfg, model, mode)
     identity = _identity(cfg, model, inputs, mode)
     state = None
     if restart_from is not None:
@@ -288,8 +299,7 @@ def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
             writer.set_attributes(**_health_attrs(summary, inputs))
     finally:
         bar.close()
-    for w in engine.summarise_warnings(summary.warnings):
-        print(f"warning: {w}", file=sys.stderr)
+    _show_warnings(engine.summarise_warnings(summary.warnings))
     write_restart(paths.restart(cfg, mode),
                   _to_restart(summary.state, model, inputs, {**identity, **_readings_identity(cfg, summary.state.day)}))
     return open_product(path)
@@ -352,13 +362,14 @@ def _hindcast(cfg: Config) -> xr.Dataset:
     from assim import engine, paths
     from assim.errors import ConfigError
     from assim.io.products import HindcastWriter, open_product, read_forcing_forecast
+    from assim.settings import settings_from_config
 
     hc = cfg["hindcast"]
     kind = hc["forcing"]
     start, end = _period(cfg)
     model, inputs, _ = _inputs(cfg, start, end, climatology=kind == "climatology")
     leads, every = int(hc["leads"]), int(hc["every_days"])
-    base = engine.settings_from_config(cfg, model, "openloop")
+    base = settings_from_config(cfg, model, "openloop")
     plan = engine.plan(inputs, base, None)
     issues = engine.issue_indices(plan, every, leads, len(inputs.days))
     if not len(issues):
@@ -378,16 +389,15 @@ def _hindcast(cfg: Config) -> xr.Dataset:
     attrs.pop("filter_method")
     with HindcastWriter(path, basins=inputs.basin_ids, issue_days=inputs.days[issues], leads=leads,
                         members=base.members, float32=base.float32, attrs=attrs) as writer:
-        notes = []
         for experiment, mode in (("openloop", "openloop"), ("assimilation", "assimilate")):
-            settings = engine.settings_from_config(cfg, model, mode)
+            settings = settings_from_config(cfg, model, mode)
             bar = _progress(cfg, f"hindcast {experiment}")
             try:
                 summary = engine.run(model, inputs, settings, _HindcastSink(writer, experiment),
                                      hindcast=(every, leads, kind), progress=bar)
             finally:
                 bar.close()
-            notes += summary.warnings
+            _show_warnings(engine.summarise_warnings(summary.warnings))
             if mode == "assimilate":
                 writer.set_attributes(filter_method=settings.method, **_health_attrs(summary, inputs))
     return open_product(path)
@@ -490,12 +500,12 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
     readings were assimilated.
     """
     import dataclasses
-    import sys
 
     from assim import engine, paths
     from assim.errors import ConfigError, RestartError
     from assim.io.products import dates, forecast_lock, read_forcing_forecast, write_forecast
     from assim.io.restart import write_restart
+    from assim.settings import settings_from_config
 
     fc = cfg["forecast"]
     kind, leads = fc["forcing"], int(fc["leads"])
@@ -504,15 +514,14 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
     lock = paths.forecasts(cfg) / f".forecast-{iso}.lock"
     with forecast_lock(lock, [paths.forecast(cfg, iso), paths.forecast_restart(cfg, iso)]):
         restart_path, valid, passed_over = _latest_restart(cfg, issue_day)
-        for w in passed_over:
-            print(f"warning: {w}", file=sys.stderr)
+        _show_warnings(passed_over)
         if valid > issue_day:
             raise RestartError(f"the restart is valid at {dates([valid])[0].date()}, after the issue date {iso}",
                                file=restart_path, variable="valid_time")
         last = issue_day + (leads if kind == "observed" else 0)
         model, inputs, basins = _inputs(cfg, str(dates([valid])[0].date()), str(dates([last])[0].date()),
                                         climatology=kind == "climatology")
-        settings = dataclasses.replace(engine.settings_from_config(cfg, model, "assimilate"), spinup_days=0)
+        settings = dataclasses.replace(settings_from_config(cfg, model, "assimilate"), spinup_days=0)
         identity = _identity(cfg, model, inputs, "assimilate")
         state = _read_checked_restart(restart_path, model, inputs, identity)
         file_forcing = None  # read before anything is written: a bad file leaves no restart behind
@@ -522,6 +531,7 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
                                   file=cfg.source, variable="forecast.forcing_file")
             file_forcing = read_forcing_forecast(fc["forcing_file"], inputs.basin_ids, issue_day, leads)
         summary = engine.run(model, inputs, settings, None, state=state, until_day=issue_day)
+        _show_warnings(engine.summarise_warnings(summary.warnings))
         n_used = int(summary.n_used.sum())
         n_days = issue_day - valid
         if n_days == 0:
@@ -542,7 +552,7 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
             quantiles=fc["quantiles"], thresholds={n: thr[:, j] for j, n in enumerate(names)},
             analysis=analysis, float32=settings.float32,
             attrs={**_attrs(cfg, model, settings), "forcing": kind, "restart": str(restart_path),
-                   **({"warnings": " | ".join(passed_over + summary.warnings)}
+                   **({"warnings": " | ".join(passed_over + [str(w) for w in summary.warnings])}
                       if passed_over or summary.warnings else {})},
         )
     return ds

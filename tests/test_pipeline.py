@@ -192,6 +192,26 @@ def test_mismatched_restart_is_refused_by_run_and_cli(prepared, tmp_path, runs, 
     assert code == 2 and len(err.splitlines()) == 1 and "restart.nc" in err and "members" in err
 
 
+def test_a_health_warning_is_printed_once_and_kept_in_the_product(prepared, tmp_path):
+    """The engine returns its warnings; the CLI prints each once (it printed every one twice)
+    and the product keeps it. A spread ratio no ensemble can reach makes both basins'
+    collapse warnings fire. Common practice, no published source."""
+    cfg = _cfg(prepared, tmp_path / "results", period={"end": "2002-06-30"},
+               filter={"collapse_ratio": 1e6, "collapse_days": 5})
+    conf = tmp_path / "config.yaml"
+    conf.write_text(yaml.safe_dump(dict(cfg)))
+    out = subprocess.run([sys.executable, "-m", "assim", "run", "--config", str(conf), "--mode", "assimilate"],
+                         capture_output=True, text=True)
+    assert out.returncode == 0, out.stderr
+    lines = out.stderr.splitlines()
+    for b in IDS:
+        hits = [ln for ln in lines if f"basin {b}: ensemble collapse" in ln]
+        assert len(hits) == 1, out.stderr
+        assert hits[0].startswith("assim run: warning: ")
+    with xr.open_dataset(cfg.results / "analysis.nc") as ds:
+        assert all(f"basin {b}: ensemble collapse" in ds.attrs["warnings"] for b in IDS)
+
+
 # ---------------------------------------------------------------- operational forecasts
 
 

@@ -42,19 +42,19 @@ from assim.engine.records import (
     BlockResult,
     Climatology,
     EnsembleState,
+    HealthWarning,
     Inputs,
     ObsError,
     Plan,
     RunSummary,
     Settings,
-    settings_from_config,
 )
 
 __all__ = [
     "FORCINGS", "OBS_GATED", "OBS_MISSING", "OBS_REJECTED", "OBS_USED", "SECONDS_PER_DAY_OVER_1000",
-    "BlockResult", "Climatology", "EnsembleState", "Inputs", "ObsError", "Plan", "RunSummary", "Settings",
+    "BlockResult", "Climatology", "EnsembleState", "HealthWarning", "Inputs", "ObsError", "Plan", "RunSummary", "Settings",
     "advance", "analyse", "augmented_bounds", "climatology_index", "collapse_counts", "fixed_parameters",
     "forecast_issue", "forecast_leads", "health_warnings", "hindcast_forecasts", "initial_ensemble",
     "issue_indices", "lead_forcing", "liu_west_shrink", "member_quantiles", "parameter_ranges", "plan",
-    "quantile_arrays", "reduce_members", "run", "settings_from_config", "summarise_warnings",
+    "quantile_arrays", "reduce_members", "run", "summarise_warnings",
 ]

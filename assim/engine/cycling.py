@@ -12,7 +12,6 @@ chunking or the scheduler.
 
 from __future__ import annotations
 
-import warnings as _warnings
 from collections.abc import Callable
 from dataclasses import replace
 
@@ -20,7 +19,7 @@ import numpy as np
 
 from assim import parallel
 from assim.engine.block import advance
-from assim.engine.diagnostics import health_warnings, summarise_warnings
+from assim.engine.diagnostics import health_warnings
 from assim.engine.forecast import issue_indices
 from assim.engine.initial import fixed_parameters, initial_ensemble
 from assim.engine.outputs import reduce_members
@@ -223,6 +222,4 @@ def run(
             if progress is not None:
                 progress(t1 - p.start, total)
     warns = health_warnings(inputs.basin_ids, n_used, n_gated, first_collapse, settings)
-    for w in summarise_warnings(warns):
-        _warnings.warn(w, RuntimeWarning, stacklevel=2)
     return RunSummary(state, warns, n_used, n_gated, first_collapse, p)

@@ -12,8 +12,6 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from assim import perturb as pt
-from assim.errors import ConfigError
-from assim.models.base import Model
 
 SECONDS_PER_DAY_OVER_1000 = 86.4  # Q[m3 s-1] = q[mm d-1] * area[km2] / 86.4
 OBS_USED, OBS_MISSING, OBS_GATED, OBS_REJECTED = 0, 1, 2, 3
@@ -151,7 +149,8 @@ class ObsError:
 
 @dataclass(frozen=True)
 class Settings:
-    """Settings of one engine run (built from the config by :func:`settings_from_config`).
+    """Settings of one engine run (the entry layer builds it from the config,
+    :func:`assim.settings.settings_from_config`).
 
     The fields mirror the config: ``mode`` ("openloop" or "assimilate"), ``members``,
     ``seed``, ``spinup_days`` (``period``); the forcing error models ``precipitation`` and
@@ -234,80 +233,31 @@ class BlockResult:
     first_bad: tuple | None = None
 
 
+@dataclass(frozen=True)
+class HealthWarning:
+    """A warning about one basin of a run. The engine returns these and never emits them;
+    the entry layer writes them into the product and shows each once.
+
+    code : "ensemble_collapse" or "frequent_gating"; basin : the basin id;
+    message : one line, what happened and what to consider (``str()`` prefixes the basin)
+    """
+
+    code: str
+    basin: str
+    message: str
+
+    def __str__(self) -> str:
+        return f"basin {self.basin}: {self.message}"
+
+
 @dataclass
 class RunSummary:
     """What a run returns besides the sink's file: end state, warnings, counts per basin."""
 
     state: EnsembleState
-    warnings: list[str]
+    warnings: list[HealthWarning]
     n_used: np.ndarray
     n_gated: np.ndarray
     first_collapse: np.ndarray
     plan: Plan
 
-
-def settings_from_config(cfg: Mapping, model: Model, mode: str) -> Settings:
-    """Engine settings from a validated config (a mapping of sections).
-
-    Raises
-    ------
-    ConfigError
-        naming the key when a state or parameter name is not one of the model's.
-    """
-    ens, per, fil, out = cfg["ensemble"], cfg["perturbation"], cfg["filter"], cfg["outputs"]
-    names = model.state_names
-    for key, chosen in (("filter.update_states", fil["update_states"]),
-                        ("perturbation.state_noise", list(per["state_noise"]))):
-        for n in chosen:
-            if n not in names:
-                raise ConfigError(f"model {model.name!r} has no state {n!r}; states: {', '.join(names)}",
-                                  file=getattr(cfg, "source", None), variable=key)
-    pnames = model.parameter_names
-    for key, chosen in (("perturbation.parameters", list(per["parameters"])),
-                        ("filter.parameters.estimate", fil["parameters"]["estimate"])):
-        for n in chosen:
-            if n not in pnames:
-                raise ConfigError(f"model {model.name!r} has no parameter {n!r}; parameters: {', '.join(pnames)}",
-                                  file=getattr(cfg, "source", None), variable=key)
-    update = tuple(fil["update_states"]) or model.default_updated_states()
-    update = tuple(n for n in names if n in update)  # model order
-    if out["all_states"]:
-        write = names
-    elif out["states"]:
-        write = update
-    else:
-        write = ()
-    oe, tr, inf = fil["obs_error"], fil["transform"], fil["inflation"]
-    return Settings(
-        mode=mode,
-        members=int(ens["members"]),
-        seed=int(ens["seed"]),
-        spinup_days=int(cfg["period"]["spinup_days"]),
-        precipitation=pt.LognormalAR1(float(per["precipitation_cv"]), float(per["precipitation_ar1"])),
-        pet=pt.LognormalAR1(float(per["pet_cv"]), float(per["pet_ar1"])),
-        parameter_sd=dict(per["parameters"]),
-        state_noise=dict(per["state_noise"]),
-        method=fil["method"],
-        update_states=update,
-        obs_error=ObsError(oe["kind"], float(oe["absolute_m3s"]), float(oe["relative"]), float(oe["floor_m3s"])),
-        transform=tr["kind"],
-        transform_offset=float(tr["offset_m3s"]),
-        transform_lambda=float(tr["lambda"]),
-        gate_sigma=float(fil["gate_sigma"]),
-        inflation=float(inf["multiplicative"]),
-        rtps=float(inf["rtps"]),
-        rtpp=float(inf["rtpp"]),
-        estimate=tuple(p for p in pnames if p in fil["parameters"]["estimate"]),
-        shrinkage=float(fil["parameters"]["shrinkage"]),
-        collapse_ratio=float(fil["collapse_ratio"]),
-        collapse_days=int(fil["collapse_days"]),
-        gating_warn_fraction=float(fil["gating_warn_fraction"]),
-        quantiles=tuple(out["quantiles"]) if out["ensemble"] == "quantiles" else None,
-        write_states=write,
-        float32=bool(out["float32"]),
-        basin_chunk=int(ens["basin_chunk"]),
-        member_chunk=int(ens["member_chunk"]),
-        time_block_days=int(ens["time_block_days"]),
-        scheduler=str(ens["scheduler"]),
-        workers=int(ens["workers"]),
-    )
