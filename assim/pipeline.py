@@ -59,12 +59,11 @@ def report(cfg: Config) -> Path:
 
 def _day(text, what: str) -> int:
     """'YYYY-MM-DD' -> day number, or ConfigError naming ``what``."""
-    import numpy as np
-
+    from assim.conventions import day_number
     from assim.errors import ConfigError
 
     try:
-        return int((np.datetime64(str(text), "D") - np.datetime64("1970-01-01", "D")).astype(int))
+        return day_number(text)
     except ValueError:
         raise ConfigError(f"not a date YYYY-MM-DD: {text!r}", variable=what) from None
 
@@ -437,9 +436,9 @@ def _readings_digests(cfg: Config, through_days) -> dict[int, str]:
 
 def _readings_identity(cfg: Config, day: int) -> dict[str, str]:
     """Restart attributes recording which readings the states have taken in."""
-    from assim.io.products import dates
+    from assim.conventions import iso
 
-    return {"readings_through": str(dates([day])[0].date()), "readings_digest": _readings_digests(cfg, [day])[day]}
+    return {"readings_through": iso(day), "readings_digest": _readings_digests(cfg, [day])[day]}
 
 
 def _latest_restart(cfg: Config, issue_day: int):
@@ -501,25 +500,25 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
     """
     import dataclasses
 
-    from assim import engine, paths
+    from assim import conventions, engine, paths
     from assim.errors import ConfigError, RestartError
-    from assim.io.products import dates, forecast_lock, read_forcing_forecast, write_forecast
+    from assim.io.products import forecast_lock, read_forcing_forecast, write_forecast
     from assim.io.restart import write_restart
     from assim.settings import settings_from_config
 
     fc = cfg["forecast"]
     kind, leads = fc["forcing"], int(fc["leads"])
     issue_day = _day(issue_date, "--issue-date")
-    iso = str(dates([issue_day])[0].date())
+    iso = conventions.iso(issue_day)
     lock = paths.forecasts(cfg) / f".forecast-{iso}.lock"
     with forecast_lock(lock, [paths.forecast(cfg, iso), paths.forecast_restart(cfg, iso)]):
         restart_path, valid, passed_over = _latest_restart(cfg, issue_day)
         _show_warnings(passed_over)
         if valid > issue_day:
-            raise RestartError(f"the restart is valid at {dates([valid])[0].date()}, after the issue date {iso}",
+            raise RestartError(f"the restart is valid at {conventions.iso(valid)}, after the issue date {iso}",
                                file=restart_path, variable="valid_time")
         last = issue_day + (leads if kind == "observed" else 0)
-        model, inputs, basins = _inputs(cfg, str(dates([valid])[0].date()), str(dates([last])[0].date()),
+        model, inputs, basins = _inputs(cfg, conventions.iso(valid), conventions.iso(last),
                                         climatology=kind == "climatology")
         settings = dataclasses.replace(settings_from_config(cfg, model, "assimilate"), spinup_days=0)
         identity = _identity(cfg, model, inputs, "assimilate")
@@ -538,10 +537,10 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
             analysis = "not performed: the restart is already valid at the issue date"
         elif n_used == 0:
             analysis = (f"not performed: no gauge reading since the last restart "
-                        f"(valid at {dates([valid])[0].date()})")
+                        f"(valid at {conventions.iso(valid)})")
         else:
             analysis = (f"performed: {n_used} gauge readings assimilated over the {n_days} days since the "
-                        f"last restart (valid at {dates([valid])[0].date()})")
+                        f"last restart (valid at {conventions.iso(valid)})")
         write_restart(paths.forecast_restart(cfg, iso),
                       _to_restart(summary.state, model, inputs, {**identity, **_readings_identity(cfg, issue_day)}))
         q = engine.forecast_issue(model, inputs, settings, summary.state, leads, kind, file_forcing)

@@ -464,16 +464,3 @@ def test_collapse_counts_equal_the_day_by_day_counter():
         got_c, got_first = engine.collapse_counts(c0, has, low, days, limit)
         np.testing.assert_array_equal(got_c, c)
         np.testing.assert_array_equal(got_first, first)
-
-
-@pytest.mark.parametrize("n", [2, 5, 64, 128])
-def test_member_quantiles_match_numpy_and_hand_values(n):
-    """Hyndman & Fan (1996), definition 7, worked by hand on 1..5: the 0.3 quantile is at
-    position 0.3 x 4 = 1.2, 2 + 0.2 = 2.2; the median 3; extremes the min and the max. On
-    random rows equal to numpy.quantile (general-purpose reference) to 1e-13."""
-    q = np.array([0.0, 0.05, 0.3, 0.5, 0.95, 1.0])
-    np.testing.assert_allclose(engine.member_quantiles(np.array([5.0, 1.0, 4.0, 2.0, 3.0]), [0.3, 0.5, 0.0, 1.0]),
-                               [2.2, 3.0, 1.0, 5.0], rtol=1e-15)
-    x = np.random.default_rng(n).gamma(2.0, 3.0, (7, 11, n))
-    np.testing.assert_allclose(engine.member_quantiles(x, q), np.moveaxis(np.quantile(x, q, axis=-1), 0, -1),
-                               rtol=1e-13, atol=0)

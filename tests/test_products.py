@@ -17,7 +17,6 @@ from assim.errors import InputError, LockError
 from assim.io.products import (
     HindcastWriter,
     RunWriter,
-    exceedance_probability,
     forecast_lock,
     open_product,
     read_forcing_forecast,
@@ -153,16 +152,6 @@ def test_hindcast_writer_layout(tmp_path):
         assert ds["lead"].values.tolist() == [1, 2, 3]
         assert np.isfinite(ds["discharge"].values).all()
         assert "caution" in ds.attrs
-
-
-def test_exceedance_probability_counts_members_above():
-    """Fraction of members strictly above the threshold (common practice, no published
-    source); NaN where a basin lacks the level."""
-    q = np.array([[[1.0, 2.0, 3.0, 4.0]], [[5.0, 5.0, 5.0, 6.0]]])  # (basin 2, lead 1, member 4)
-    thr = np.array([[2.0, 10.0], [5.0, np.nan]])
-    p = exceedance_probability(q, thr)
-    np.testing.assert_array_equal(p[0, 0], [0.5, 0.0])
-    assert p[1, 0, 0] == 0.25 and np.isnan(p[1, 0, 1])
 
 
 def test_write_forecast(tmp_path):

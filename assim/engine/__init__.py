@@ -31,7 +31,7 @@ from assim.engine.forecast import (
     lead_forcing,
 )
 from assim.engine.initial import fixed_parameters, initial_ensemble, parameter_ranges
-from assim.engine.outputs import member_quantiles, quantile_arrays, reduce_members
+from assim.engine.outputs import quantile_arrays, reduce_members
 from assim.engine.records import (
     FORCINGS,
     OBS_GATED,
@@ -49,6 +49,7 @@ from assim.engine.records import (
     RunSummary,
     Settings,
 )
+from assim.members import member_quantiles
 
 __all__ = [
     "FORCINGS", "OBS_GATED", "OBS_MISSING", "OBS_REJECTED", "OBS_USED", "SECONDS_PER_DAY_OVER_1000",

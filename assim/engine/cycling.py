@@ -18,6 +18,7 @@ from dataclasses import replace
 import numpy as np
 
 from assim import parallel
+from assim.conventions import iso
 from assim.engine.block import advance
 from assim.engine.diagnostics import health_warnings
 from assim.engine.forecast import issue_indices
@@ -26,11 +27,6 @@ from assim.engine.outputs import reduce_members
 from assim.engine.records import BlockResult, EnsembleState, Inputs, Plan, RunSummary, Settings
 from assim.errors import RunError
 from assim.models.base import Model
-
-
-def _iso(day) -> str:
-    """Day number (days since 1970-01-01) -> 'YYYY-MM-DD'."""
-    return str(np.datetime64(int(day), "D"))
 
 
 def plan(inputs: Inputs, settings: Settings, state: EnsembleState | None, until_day: int | None = None) -> Plan:
@@ -45,12 +41,12 @@ def plan(inputs: Inputs, settings: Settings, state: EnsembleState | None, until_
     days = inputs.days
     start = 0 if state is None else int(state.day - days[0] + 1)
     if not 0 <= start <= len(days):
-        raise RunError(f"the restart is not valid on a day of the run period ({_iso(days[0])} to "
-                       f"{_iso(days[-1])})", variable="valid_time", place=_iso(state.day))
+        raise RunError(f"the restart is not valid on a day of the run period ({iso(days[0])} to "
+                       f"{iso(days[-1])})", variable="valid_time", place=iso(state.day))
     stop = len(days) - 1 if until_day is None else int(until_day - days[0])
     if not start - 1 <= stop < len(days):
-        raise RunError(f"--until is outside the run period ({_iso(days[0])} to {_iso(days[-1])}) or before "
-                       "the restart", variable="until", place=_iso(until_day))
+        raise RunError(f"--until is outside the run period ({iso(days[0])} to {iso(days[-1])}) or before "
+                       "the restart", variable="until", place=iso(until_day))
     first = min(settings.spinup_days, len(days))
     return Plan(start, stop, first, first)
 
@@ -201,7 +197,7 @@ def run(
                 basin, day, var = min(bad, key=lambda x: x[1])
                 raise RunError("the ensemble state became NaN or infinite; check the forcing, the "
                                "parameters and the filter settings", variable=var,
-                               place=f"basin {basin}, {np.datetime64('1970-01-01', 'D') + day}")
+                               place=f"basin {basin}, {iso(day)}")
             if j + ahead < len(blocks):
                 pending.append(submit_block(ex, j + ahead))
             grid = [flat_results[i * len(m_chunks):(i + 1) * len(m_chunks)] for i in range(len(b_chunks))]

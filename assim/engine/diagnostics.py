@@ -8,8 +8,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
-import numpy as np
-
+from assim.conventions import iso
 from assim.engine.records import HealthWarning, Settings
 
 # code -> what the line counting the basins left out says they have
@@ -29,11 +28,10 @@ def health_warnings(basin_ids, n_used, n_gated, first_collapse, settings: Settin
         return out
     for i, b in enumerate(basin_ids):
         if first_collapse[i] >= 0:
-            day = np.datetime64("1970-01-01", "D") + int(first_collapse[i])
             out.append(HealthWarning(
                 "ensemble_collapse", str(b),
                 f"ensemble collapse: the spread of predicted discharge stayed below {settings.collapse_ratio} x "
-                f"the observation error sd for {settings.collapse_days} days with readings (reached on {day}); "
+                f"the observation error sd for {settings.collapse_days} days with readings (reached on {iso(first_collapse[i])}); "
                 "consider inflation or larger perturbations"))
         n = n_used[i] + n_gated[i]
         if n and n_gated[i] / n > settings.gating_warn_fraction:

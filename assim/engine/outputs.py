@@ -7,6 +7,7 @@ from collections.abc import Sequence
 import numpy as np
 
 from assim.engine.records import Settings
+from assim.members import member_quantiles
 
 
 def reduce_members(arrays: dict[str, np.ndarray], settings: Settings) -> dict[str, np.ndarray]:
@@ -30,20 +31,3 @@ def quantile_arrays(arrays: dict[str, np.ndarray], quantiles: Sequence[float]) -
         if name in arrays:
             out[name + "_quantile"] = member_quantiles(arrays[name], quantiles).astype(arrays[name].dtype)
     return out
-
-
-def member_quantiles(values: np.ndarray, quantiles: Sequence[float]) -> np.ndarray:
-    """Quantiles over the last (member) axis, linear between order statistics: the sample
-    quantile of Hyndman & Fan (1996) definition 7, numpy's default. One sort of each row,
-    then the interpolation at fixed positions (numpy.quantile's partitioning is six times
-    slower on (basin, day, 128) blocks).
-
-    values : (..., member) float; quantiles : (q,) in [0, 1] -> (..., q)
-    """
-    s = np.sort(values, axis=-1)
-    n = s.shape[-1]
-    position = (n - 1) * np.asarray(quantiles, dtype=np.float64)  # Hyndman & Fan (1996), definition 7
-    lo = np.floor(position).astype(np.intp)
-    hi = np.minimum(lo + 1, n - 1)
-    below, above = s[..., lo], s[..., hi]
-    return below + (above - below) * (position - lo)

@@ -12,9 +12,9 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from assim import perturb as pt
+from assim.conventions import OBS_GATED, OBS_MISSING, OBS_REJECTED, OBS_USED  # noqa: F401 (re-exported)
 
 SECONDS_PER_DAY_OVER_1000 = 86.4  # Q[m3 s-1] = q[mm d-1] * area[km2] / 86.4
-OBS_USED, OBS_MISSING, OBS_GATED, OBS_REJECTED = 0, 1, 2, 3
 FORCINGS = ("precipitation", "pet")
 
 

@@ -26,6 +26,7 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
+from assim.conventions import CALENDAR, TIME_UNITS, iso
 from assim.errors import InputError
 from assim.io.common import atomic_path, global_attributes, labels_from_file, labels_to_file
 from assim.units import CANONICAL, canonical_unit
@@ -34,8 +35,6 @@ FORCING_FILE = "forcing.nc"
 OBSERVATIONS_FILE = "observations.nc"
 BASINS_FILE = "basins.nc"
 
-TIME_UNITS = "days since 1970-01-01"
-CALENDAR = "standard"
 
 # Bit flags of gauge readings and of daily values (observations.nc ``qc_flag``). A day's flag
 # is the OR of the flags of its readings plus ``insufficient_coverage``.
@@ -261,10 +260,6 @@ def _open(path: str | Path) -> xr.Dataset:
         raise InputError(f"not a readable NetCDF file ({type(exc).__name__})", file=path) from None
 
 
-def _fmt_day(t) -> str:
-    return str(np.datetime64(t, "D"))
-
-
 def _require(ds, path, name, dims, unit_kind=None) -> xr.DataArray:
     if name not in ds.variables:
         raise InputError("missing variable", file=path, variable=name)
@@ -319,13 +314,13 @@ def _check_time(ds, path) -> np.ndarray:
                        (d > 1, "missing day(s) before this date: the daily axis must be regular")):
         if mask.any():
             i = int(np.flatnonzero(mask)[0]) + 1
-            raise InputError(what, file=path, variable="time", place=_fmt_day(days[i]))
+            raise InputError(what, file=path, variable="time", place=iso(days[i]))
     return days
 
 
 def _first_bad(mask: np.ndarray, ids, days) -> str:
     b, t = np.argwhere(mask)[0]
-    return f"basin '{ids[b]}', {_fmt_day(days[t])}"
+    return f"basin '{ids[b]}', {iso(days[t])}"
 
 
 def check_forcing(ds: xr.Dataset, path, start=None, end=None) -> None:
@@ -572,8 +567,8 @@ def read_prepared(folder: str | Path, start=None, end=None) -> tuple[xr.Dataset,
                              variable="basin")
     o_days = obs["time"].values.astype("datetime64[D]")
     if o_days[0] < full[0] or o_days[-1] > full[-1]:
-        raise InputError(f"observations ({_fmt_day(o_days[0])} to {_fmt_day(o_days[-1])}) run outside "
-                         f"the forcing ({_fmt_day(full[0])} to {_fmt_day(full[-1])})",
+        raise InputError(f"observations ({iso(o_days[0])} to {iso(o_days[-1])}) run outside "
+                         f"the forcing ({iso(full[0])} to {iso(full[-1])})",
                          file=folder / OBSERVATIONS_FILE, variable="time")
     t = forcing["time"]
     flag_attrs = dict(obs["qc_flag"].attrs)

@@ -30,6 +30,7 @@ import pandas as pd
 import xarray as xr
 from xarray.backends.netCDF4_ import NETCDF4_PYTHON_LOCK
 
+from assim.conventions import CALENDAR, OBS_STATUS, TIME_UNITS
 from assim.errors import InputError
 from assim.io.common import (
     CONTRACT_ORDER,
@@ -41,19 +42,17 @@ from assim.io.common import (
     open_netcdf,
     output_lock,
 )
+from assim.members import exceedance_probability, member_quantiles
 
 # The lock xarray takes around every netCDF/HDF5 call. The streamed writers call netCDF4
 # directly, so they take it too: HDF5 is not thread-safe, and xarray may close a file from
 # any thread (when a lazily opened Dataset is garbage-collected) while a block is written.
 _NC_LOCK = NETCDF4_PYTHON_LOCK
 
-TIME_UNITS = "days since 1970-01-01 00:00:00"
-CALENDAR = "standard"
 DISCHARGE_ATTRS = {
     "standard_name": "water_volume_transport_in_river_channel",
     "units": "m3 s-1",
 }
-OBS_STATUS = {"used": 0, "missing": 1, "gated": 2, "rejected": 3}
 EXPERIMENTS = ("openloop", "assimilation")
 
 
@@ -380,23 +379,6 @@ class HindcastWriter(_StreamedFile):
             self.nc.setncatts({k: str(v) for k, v in attrs.items()})
 
 
-def exceedance_probability(discharge: np.ndarray, thresholds: np.ndarray) -> np.ndarray:
-    """Fraction of members strictly above each threshold.
-
-    Parameters
-    ----------
-    discharge : (basin, lead, member) m3 s-1
-    thresholds : (basin, threshold) m3 s-1, NaN where a basin has no such level
-
-    Returns
-    -------
-    (basin, lead, threshold) float64 in [0, 1], NaN where the threshold is NaN
-    """
-    above = discharge[:, :, :, None] > thresholds[:, None, None, :]
-    p = above.mean(axis=2)
-    return np.where(np.isnan(thresholds)[:, None, :], np.nan, p)
-
-
 def write_forecast(
     path,
     *,
@@ -422,7 +404,7 @@ def write_forecast(
     names = list(thresholds)
     thr = np.stack([np.asarray(thresholds[k], dtype=np.float64) for k in names], axis=1) if names else np.zeros((nb, 0))
     q = np.asarray(quantiles, dtype=np.float64)
-    dq = np.quantile(discharge, q, axis=2).transpose(1, 2, 0) if len(q) else np.zeros((nb, nl, 0))
+    dq = member_quantiles(discharge, q) if len(q) else np.zeros((nb, nl, 0))
     issue = dates([issue_day])[0]
     lead = np.arange(1, nl + 1)
     ds = xr.Dataset(
@@ -430,7 +412,7 @@ def write_forecast(
             "discharge": (("basin", "lead", "member"), discharge, {**DISCHARGE_ATTRS, "long_name": "forecast discharge"}),
             "discharge_quantile": (("basin", "lead", "quantile"), dq,
                                    {**DISCHARGE_ATTRS, "long_name": "quantiles of the forecast discharge"}),
-            "exceedance_probability": (("basin", "lead", "threshold"), exceedance_probability(discharge, thr),
+            "exceedance_probability": (("basin", "lead", "threshold"), exceedance_probability(discharge[:, :, None, :], thr[:, None, :]),
                                        {"units": "1", "long_name": "fraction of members above the threshold"}),
             "thresholds": (("basin", "threshold"), thr, {**DISCHARGE_ATTRS, "long_name": "named discharge thresholds"}),
         },

@@ -26,9 +26,10 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
+from assim.conventions import CALENDAR, TIME_UNITS
 from assim.errors import RestartError
 from assim.io.common import atomic_path, global_attributes
-from assim.io.products import CALENDAR, TIME_UNITS, dates, day_numbers
+from assim.io.products import dates, day_numbers
 
 
 @dataclass(frozen=True)

@@ -31,6 +31,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from assim.members import exceedance_probability, fraction_above
+
 __all__ = [
     "Reliability",
     "brier_score",
@@ -315,25 +317,6 @@ def crpss(crps, crps_ref) -> np.ndarray:
     return _nan_where(value, valid.sum(axis=-1) >= 1)
 
 
-def exceedance_probability(ens, threshold) -> np.ndarray:
-    """Fraction of members strictly above ``threshold``.
-
-    Parameters
-    ----------
-    ens : (..., member) float, m3 s-1
-    threshold : float or array broadcastable to ``ens.shape[:-1]``, m3 s-1
-
-    Returns
-    -------
-    (...) float64 in [0, 1]; NaN where the threshold or a member is NaN.
-    """
-    ens = np.asarray(ens, dtype=float)
-    thr = np.asarray(threshold, dtype=float)
-    p = (ens > thr[..., None]).mean(axis=-1)
-    ok = np.isfinite(thr) & np.all(np.isfinite(ens), axis=-1)
-    return _nan_where(p, ok)
-
-
 def brier_score(obs, ens, threshold) -> np.ndarray:
     """Brier score of the event "flow exceeds ``threshold``", one value per forecast.
 
@@ -352,7 +335,7 @@ def brier_score(obs, ens, threshold) -> np.ndarray:
     """
     y, x, valid = _ens_pairs(obs, ens)
     thr = np.broadcast_to(np.asarray(threshold, dtype=float), y.shape)
-    p = (x > thr[..., None]).mean(axis=-1)
+    p = fraction_above(x, thr)
     event = (y > thr).astype(float)
     value = (p - event) ** 2  # Brier (1950)
     return _nan_where(value, valid & np.isfinite(thr))
@@ -398,7 +381,7 @@ def reliability_table(obs, ens, threshold, bins: int = 10) -> Reliability:
     y, x, valid = _ens_pairs(obs, ens)
     thr = np.broadcast_to(np.asarray(threshold, dtype=float), y.shape)
     valid = valid & np.isfinite(thr)
-    p = (x > thr[..., None]).mean(axis=-1)
+    p = fraction_above(x, thr)
     event = (y > thr).astype(float)
     # A tiny tolerance puts k/N that falls on a bin edge into the upper bin despite rounding.
     k = np.clip(np.floor(p * bins + 1e-9).astype(int), 0, bins - 1)
