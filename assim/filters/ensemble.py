@@ -347,7 +347,7 @@ def _predicted(Y2, y2, r2, gamma, Yp, ones):
     axis fast), their variance var_y (B, m) (before inflation), the innovation and its
     expected variance ``g^2 var_y + R`` (B, m)."""
     N = Y2.shape[1]
-    YT = np.swapaxes(Y2, 1, 2)
+    YT = Y2.transpose(0, 2, 1)
     ybar = np.vecdot(YT, ones) / N
     np.subtract(YT, ybar[:, :, None], out=Yp)
     var_y = np.vecdot(Yp, Yp) / (N - 1)
@@ -398,7 +398,7 @@ def _perturbations(noise, rng, B, N, m):
     """Standard normal observation perturbations of ``enkf``, z (B, m, N): ``obs_noise``
     as given, else drawn from ``rng``."""
     z = noise if noise is not None else rng.standard_normal((B, N, m))
-    return np.swapaxes(z, 1, 2)
+    return z.transpose(0, 2, 1)
 
 
 # --- stage 3: member weights of each method ------------------------------------------------
@@ -830,9 +830,9 @@ def _spread_after(out, var_b, var_a, cols, active, all_active, redo):
 
 
 def _result(out, innovation, innovation_variance, var_y, var_b, var_after, used, gated, missing,
-            invalid, clipped, active, shape, yshape):
+            invalid, clipped, active, all_used, shape, yshape):
     """The :class:`Analysis`, reshaped to the caller's batch."""
-    if not bool(np.logical_and.reduce(used, axis=None)):
+    if not all_used:
         bad = missing | ~np.isfinite(innovation)
         innovation = np.where(bad, np.nan, innovation)
         innovation_variance = np.where(bad, np.nan, innovation_variance)
@@ -937,10 +937,14 @@ def ensemble_update(
     # The member vectors contracted with the states in one pass, V (B, k, N): ones (member
     # sums), the whitened predicted perturbations Y' and, for enkf and the serial
     # adjustment, the weights. Observation space is kept transposed, the member axis fast.
+    # On planes each vector is its own contiguous (B, N) array, contracted with each plane.
     contract_u = method == "enkf" or (method == "eakf" and m > 1)
-    V = np.empty((B, 1 + m + (m if contract_u else 0), N))
-    if not planes:
-        V[:, 0] = 1.0  # (on planes the contraction uses ``ones``)
+    k = 1 + m + (m if contract_u else 0)
+    if planes:
+        V = np.empty((k, B, N)).transpose(1, 0, 2)  # (row 0 unused: the contraction uses ``ones``)
+    else:
+        V = np.empty((B, k, N))
+        V[:, 0] = 1.0
     Yp = V[:, 1 : 1 + m]
     U = V[:, 1 + m :] if contract_u else None
 
@@ -949,7 +953,7 @@ def ensemble_update(
     xsq, states_ok = _squares(X2, XT, cols)
     used, gated, invalid = _screen(missing, innovation, var_y, innovation_variance, states_ok,
                                    gate_sigma)
-    active = np.logical_or.reduce(used, axis=1)
+    active = used[:, 0] if m == 1 else np.logical_or.reduce(used, axis=1)
     all_used = bool(np.logical_and.reduce(used, axis=None))
     all_active = all_used or bool(np.logical_and.reduce(active))
     s, dw, a = _whiten(Yp, var_y, innovation, r2, used, all_used, gamma)
@@ -1005,4 +1009,4 @@ def ensemble_update(
     redo = lost if outside is None else outside | lost
     var_after = _spread_after(out, var_b, var_a, cols, active, all_active, redo)
     return _result(out, innovation, innovation_variance, var_y, var_b, var_after, used, gated,
-                   missing, invalid, clipped, active, shape, yshape)
+                   missing, invalid, clipped, active, all_used, shape, yshape)
