@@ -32,22 +32,32 @@ perturbations, whitened innovation ``d``:
     regression coefficients follow from one pass over the states, so the states are read
     once for all observations. For one observation it is the ``etkf`` formula.
 
-Costs are O(N n_state n_obs) per basin plus O(n_obs^3) for the ``etkf`` eigenproblem. With
-one observation per basin (the common case) a fused path keeps observation space as (basin,
-member) vectors, with no (basin, n_obs, n_obs) matrices and no solve: the gain is the
-(basin, n_state) vector ``cov(x, h) / (var(h) + R)``. The states are read for their sums of
-squares and their contraction with the member vectors, and the result written by one
-product and one addition; the analysis spread follows from small quantities. States whose
-member axis is fastest in memory, one (basin, member) plane per state (a model's
-Fortran-ordered (batch, n_state) array, as the engine passes it), are worked on plane by
-plane along contiguous members and the analysis keeps that layout; other layouts are
-returned C-ordered. Every member sum and dot product is taken per basin, so a basin's numbers
-never depend on the other basins of the call. Inflation costs no extra pass: multiplicative
-inflation and RTPS are a per-column factor and shift in the update (RTPS's factor comes from
-the analysis spread known beforehand), and RTPP, with ``X'a = g X' + W'C^T`` and
-``X'b = g X'``, scales the weight perturbations ``W'`` by ``1 - alpha``. Spreads from sums of squares are recomputed
-from deviations for the basins where the mean exceeds 1000 standard deviations
-(cancellation), so they keep about 1e-9 relative precision.
+Costs are O(N n_state n_obs) per basin plus O(n_obs^3) for the ``etkf`` eigenproblem. Every
+call, with one observation per basin or many, runs the same stages, each written once below
+in this order: checks and the assimilation space (``_prepare``); observation space, gate and
+whitening (``_predicted``, ``_screen``, ``_whiten``); the member weights of each method; one
+pass over the states for their member sums (``_contract``); the increment's products with
+the prior (``_scalar_terms``, ``_matrix_terms``); inflation and the analysis moments
+(``_relax_weights`` for RTPP, ``_moments``, ``_lost``); the update with multiplicative
+inflation and RTPS folded in (``_update``, ``_redo_rtps``); clipping (``_clip_to_bounds``),
+restore (``_restore``), spread after (``_spread_after``) and the result (``_result``). Only
+the weights differ by the number of observations: with one per basin (the engine's case)
+``_scalar_weights`` keeps observation space as (basin, member) vectors, with no (basin,
+n_obs, n_obs) matrices and no solve (the gain is the (basin, n_state) vector
+``cov(x, h) / (var(h) + R)``); with several, ``_matrix_weights`` solves or diagonalises. The
+states are read for their sums of squares and their contraction with the member vectors,
+and the result written by one product and one addition; the analysis spread follows from
+small quantities. States whose member axis is fastest in memory, one (basin, member) plane
+per state (a model's Fortran-ordered (batch, n_state) array, as the engine passes it), are
+worked on plane by plane along contiguous members and the analysis keeps that layout; other
+layouts are returned C-ordered. Every member sum and dot product is taken per basin, so a
+basin's numbers never depend on the other basins of the call. Inflation costs no extra pass:
+multiplicative inflation and RTPS are a per-column factor and shift in the update (RTPS's
+factor comes from the analysis spread known beforehand), and RTPP, with
+``X'a = g X' + W'C^T`` and ``X'b = g X'``, scales the weight perturbations ``W'`` by
+``1 - alpha``. Spreads from sums of squares are recomputed from deviations for the basins
+where the mean exceeds 1000 standard deviations (cancellation), so they keep about 1e-9
+relative precision.
 
 Perturbed observations of ``enkf`` are centred per basin and observation (their member
 mean is removed). Centring makes the analysis mean exactly the Kalman update of the
@@ -99,8 +109,8 @@ class Analysis:
     Attributes
     ----------
     states : (..., member, n_state) float64, mm
-        Updated ensemble (same shape as the input states; with one observation, states
-        laid out member-fastest, one plane per state, come back in that layout).
+        Updated ensemble (same shape as the input states; states laid out member-fastest,
+        one plane per state, come back in that layout).
     innovation : (..., n_obs) float64
         Observed minus ensemble mean of predicted, in the assimilation space; NaN where the
         reading is missing or the prediction is not finite.
