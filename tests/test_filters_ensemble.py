@@ -1,6 +1,8 @@
 """Tests of assim.filters.ensemble: one ensemble Kalman analysis for many basins."""
 
 import itertools
+import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -15,9 +17,11 @@ from assim.filters import (
     kalman_predict,
     kalman_update,
 )
-from assim.filters import ensemble as ens
 from assim.models import get
 from assim.models.linear_reservoir import observation, transition
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "benchmarks"))
+import baseline_loop  # noqa: E402
 
 
 def _stats(X):
@@ -29,6 +33,17 @@ def _stats(X):
 
 def _bits(a):
     return np.ascontiguousarray(a).view(np.int64)
+
+
+def _planes(a):
+    """The same array with the member axis fastest in memory and each state a contiguous
+    (basin, member) plane: the layout of a model's Fortran-ordered (batch, n_state) array,
+    which the engine passes."""
+    return np.moveaxis(np.ascontiguousarray(np.moveaxis(a, -1, 0)), 0, -1)
+
+
+def _layout(a, layout):
+    return _planes(a) if layout == "planes" else np.ascontiguousarray(a)
 
 
 def _linear_problem(rng, B, N, n, m):
@@ -43,54 +58,55 @@ def _linear_problem(rng, B, N, n, m):
 # --- the deterministic square-root property ------------------------------------------------
 
 
+@pytest.mark.parametrize("layout", ["C", "planes"])
 @pytest.mark.parametrize("method", ["etkf", "eakf"])
-@pytest.mark.parametrize("N", [2, 3, 5, 40])
+@pytest.mark.parametrize("N", [2, 3, 5, 40, 500])
 @pytest.mark.parametrize("m", [1, 3])
-def test_square_root_filters_reproduce_the_kalman_update(method, N, m):
+@pytest.mark.parametrize("gamma", [1.0, 1.25])
+def test_square_root_filters_reproduce_the_kalman_update(method, N, m, gamma, layout):
     """Analysis mean and sample covariance equal the exact Kalman update of the forecast
-    ensemble's own mean and sample covariance, to 1e-10, for any ensemble size, batched.
+    ensemble's own mean and sample covariance (times gamma^2 with multiplicative inflation),
+    to 1e-10, for any ensemble size, batched, in both memory layouts.
 
     References: Hunt, Kostelich & Szunyogh (2007), eqs. 22-23 (mean and covariance of the
     transformed ensemble); Anderson (2001), the adjusted ensemble has the Kalman posterior
-    moments; reference numbers from assim.filters.kalman_update (checked against filterpy).
+    moments; Anderson & Anderson (1999), inflation multiplies the prior covariance by
+    gamma^2; reference numbers from assim.filters.kalman_update (checked against filterpy).
     """
     rng = np.random.default_rng(100 + N + 10 * m)
     X, H, Y, y, r = _linear_problem(rng, 6, N, 4, m)
-    a = ensemble_update(X, Y, y, r, method=method)
+    a = ensemble_update(_layout(X, layout), Y, y, r, method=method,
+                        inflation=Inflation(multiplicative=gamma))
     mean, P = _stats(X)
+    P = gamma**2 * P
     xk, Pk = kalman_update(mean, P, H, y, r[..., None] * np.eye(m))
+    # The gain written out from the ensemble, K = P H^T (H P H^T + R)^-1, gives the same mean.
+    HP = np.einsum("bmn,bnk->bmk", H, P)
+    S = np.einsum("bmk,blk->bml", HP, H) + r[..., None] * np.eye(m)
+    K = np.swapaxes(np.linalg.solve(S, HP), 1, 2)
+    gain_mean = mean + np.einsum("bnm,bm->bn", K, y - np.einsum("bmn,bn->bm", H, mean))
+    np.testing.assert_allclose(gain_mean, xk, rtol=0, atol=1e-10 * np.abs(xk).max())
     xa, Pa = _stats(a.states)
     np.testing.assert_allclose(xa, xk, rtol=0, atol=1e-10 * np.abs(xk).max())
     np.testing.assert_allclose(Pa, Pk, rtol=0, atol=1e-10 * np.abs(P).max())
     assert a.used.all() and a.updated.all()
 
 
-def test_general_path_equals_one_observation_path():
-    """The n_obs = 1 formulas are the general ones written for a scalar: the general
-    eigen/solve path and the serial adjustment give the same weights and states to 1e-12
-    (Hunt et al. 2007, eqs. 20 and 24; Anderson 2001)."""
+@pytest.mark.parametrize("layout", ["C", "planes"])
+@pytest.mark.parametrize("m", [1, 3])
+def test_serial_eakf_equals_the_sequential_textbook_update(m, layout):
+    """The serial adjustment, states read once for all observations, equals the plain
+    sequential algorithm (observation by observation, states updated at each), with
+    inflation and a missing reading, in both memory layouts (Anderson 2001, scalar
+    adjustment; Anderson 2003, regression onto the states and the remaining predictions).
+    """
     rng = np.random.default_rng(7)
-    B, N, g = 5, 9, 1.3
-    Ypw = rng.normal(size=(B, 1, N))
-    Ypw -= Ypw.mean(axis=2, keepdims=True)
-    A = g**2 * np.einsum("bmi,bki->bmk", Ypw, Ypw) / (N - 1)
-    dw = rng.normal(size=(B, 1))
-    z = rng.normal(size=(B, 1, N))
-    for method in ("enkf", "etkf"):
-        general, P, mean_w = ens._weights(method, dw, Ypw, A, z, g)
-        one, p, mean_one = ens._weights_one(method, dw[:, 0], Ypw[:, 0], A[:, 0, 0], z[:, 0], g)
-        np.testing.assert_allclose(general[:, 0], one, rtol=1e-12, atol=1e-14)
-        if method == "etkf":
-            np.testing.assert_allclose(P[:, 0, 0], p, rtol=1e-12)
-            np.testing.assert_allclose(mean_w[:, 0], mean_one, rtol=1e-12)
-            np.testing.assert_allclose(one.mean(axis=1), mean_one, rtol=1e-12, atol=1e-14)
-
-    for m in (1, 3):
-        X, H, Y, y, r = _linear_problem(rng, 5, 12, 3, m)
-        y[2, 0] = np.nan
-        fast = ensemble_update(X, Y, y, r, method="eakf", inflation=Inflation(multiplicative=g))
-        reference = _sequential_eakf(X, Y, y, r, g)
-        np.testing.assert_allclose(fast.states, reference, rtol=1e-11, atol=1e-11)
+    X, H, Y, y, r = _linear_problem(rng, 5, 12, 3, m)
+    y[2, 0] = np.nan
+    fast = ensemble_update(_layout(X, layout), Y, y, r, method="eakf",
+                           inflation=Inflation(multiplicative=1.3))
+    reference = _sequential_eakf(X, Y, y, r, 1.3)
+    np.testing.assert_allclose(fast.states, reference, rtol=1e-11, atol=1e-11)
 
 
 def _sequential_eakf(X, Y, y, r, gamma):
@@ -135,9 +151,11 @@ def test_etkf_and_serial_eakf_agree_on_moments_with_many_observations():
 # --- the stochastic EnKF -----------------------------------------------------------------
 
 
-def test_enkf_large_ensemble_matches_the_exact_update():
-    """Stochastic EnKF, N = 4000, scalar linear-Gaussian problem in 8 basins: analysis mean
-    and variance lie within 5 Monte Carlo standard errors of the exact update.
+@pytest.mark.parametrize("layout", ["C", "planes"])
+def test_enkf_large_ensemble_matches_the_exact_update(layout):
+    """Stochastic EnKF, N = 4000, scalar linear-Gaussian problem in 8 basins, both memory
+    layouts: analysis mean and variance lie within 5 Monte Carlo standard errors of the
+    exact update.
 
     Reference: Burgers, van Leeuwen & Evensen (1998): with perturbed observations the
     analysis ensemble has the Kalman posterior moments in expectation. Tolerances (delta
@@ -155,7 +173,8 @@ def test_enkf_large_ensemble_matches_the_exact_update():
     R = sf**2 * rng.uniform(0.2, 2.0, B)  # gains between 1/3 and 5/6
     y = mu + rng.normal(0, np.sqrt(sf**2 + R))
     X = mu[:, None, None] + sf[:, None, None] * rng.standard_normal((B, N, 1))
-    a = ensemble_update(X, X.copy(), y[:, None], R[:, None], method="enkf", rng=rng)
+    a = ensemble_update(_layout(X, layout), X.copy(), y[:, None], R[:, None], method="enkf",
+                        rng=rng)
     k = sf**2 / (sf**2 + R)
     mean_exact = mu + k * (y - mu)
     var_exact = (1 - k) * sf**2
@@ -203,6 +222,299 @@ def test_obs_noise_is_the_rng_draw_and_basins_are_independent():
     np.testing.assert_array_equal(a.states, b.states)
     part = ensemble_update(X[2:4], Y[2:4], y[2:4], r[2:4], obs_noise=z[2:4])
     np.testing.assert_array_equal(part.states, b.states[2:4])
+
+
+# --- the whole analysis against textbook formulas, both layouts ---------------------------
+
+
+def _textbook(method, X, Y, y, r, *, z=None, gamma=1.0, rtps=0.0, rtpp=0.0, lower=None,
+              upper=None, gate=None, mask=None):
+    """The analysis written out from the papers, basin by basin, with dense matrices:
+    expected states (B, N, n) and clipped water (B, n).
+
+    - prior: perturbations of states and predictions multiplied by gamma (Anderson &
+      Anderson 1999); the gate from the inflated predicted variance plus R;
+    - enkf: x_i + K (y + R^1/2 (z_i - mean z) - y_i), K = P H^T (H P H^T + R)^-1 from the
+      ensemble (Burgers et al. 1998; Evensen 2003, eqs. 48-52, with centred perturbations);
+    - etkf: Pa~ = [(N - 1) I + Y'^T R^-1 Y']^-1, wbar = Pa~ Y'^T R^-1 (y - ybar),
+      Wa = [(N - 1) Pa~]^1/2 (symmetric), x_i = xbar + X' (wbar + Wa_i) (Hunt et al. 2007,
+      section 2.3, eqs. 20-24; Bishop et al. 2001);
+    - eakf: one observation at a time, the scalar adjustment regressed onto the states
+      (Anderson 2001; Anderson 2003), :func:`_sequential_eakf`;
+    - RTPP: X'a <- (1 - a) X'a + a X'b (Zhang et al. 2004), then RTPS: X'a scaled by
+      a (sb - sa) / sa + 1 (Whitaker & Hamill 2012), X'b the inflated prior;
+    - bounds: numpy.clip of the updated columns of updated basins; the clipped water is
+      the clipped minus the unclipped states, summed over members.
+    """
+    B, N, n = X.shape
+    out = np.array(X, dtype=np.float64, order="C")
+    water = np.zeros((B, n))
+    cols = np.ones(n, bool) if mask is None else mask
+    lo = np.broadcast_to(-np.inf if lower is None else lower, X.shape)
+    hi = np.broadcast_to(np.inf if upper is None else upper, X.shape)
+    for b in range(B):
+        ybar, var = Y[b].mean(axis=0), Y[b].var(axis=0, ddof=1)
+        use = np.isfinite(y[b]) & np.isfinite(r[b])
+        if gate:
+            use &= ~(np.abs(y[b] - ybar) > gate * np.sqrt(gamma**2 * var + r[b]))
+        if not use.any():
+            continue
+        xbar = X[b].mean(axis=0)
+        Xf = gamma * (X[b] - xbar)
+        Yf = gamma * (Y[b][:, use] - ybar[use])
+        yo, ro = y[b, use], r[b, use]
+        if method == "enkf":
+            K = (Xf.T @ Yf) @ np.linalg.inv(Yf.T @ Yf + (N - 1) * np.diag(ro))
+            zc = z[b][:, use] - z[b][:, use].mean(axis=0)
+            D = yo + np.sqrt(ro) * zc
+            Xa = xbar + Xf + (D - (ybar[use] + Yf)) @ K.T
+        elif method == "etkf":
+            Rinv = np.diag(1.0 / ro)
+            Pt = np.linalg.inv((N - 1) * np.eye(N) + Yf @ Rinv @ Yf.T)
+            wbar = Pt @ Yf @ Rinv @ (yo - ybar[use])
+            lam, V = np.linalg.eigh((N - 1) * Pt)
+            Wa = (V * np.sqrt(lam)) @ V.T
+            Xa = xbar + (wbar[:, None] + Wa).T @ Xf
+        else:
+            Xa = _sequential_eakf(X[b : b + 1], Y[b : b + 1][..., use], yo[None], ro[None],
+                                  gamma)[0]
+        mean = Xa.mean(axis=0)
+        if rtpp:
+            Xa = mean + (1.0 - rtpp) * (Xa - mean) + rtpp * Xf
+        if rtps:
+            sa, sb = Xa.std(axis=0, ddof=1), Xf.std(axis=0, ddof=1)
+            Xa = mean + (rtps * (sb - sa) / sa + 1.0) * (Xa - mean)
+        Xc = np.clip(Xa, lo[b], hi[b])
+        water[b, cols] = (Xc - Xa).sum(axis=0)[cols]
+        out[b][:, cols] = Xc[:, cols]
+    return out, water
+
+
+def _bounded_problem(rng, B, N, n, m):
+    """Stores around 100 mm, predictions linear in them, readings about two spreads away
+    (the analysis moves every basin), a missing reading in basin 3 and a gated one in
+    basin 4 (at 4 sigma)."""
+    X = rng.normal(100.0, 10.0, (B, N, n)) * rng.uniform(0.5, 1.5, (B, 1, n))
+    H = rng.uniform(0.2, 1.0, (B, m, n))
+    Y = np.einsum("bmn,bin->bim", H, X)
+    y = Y.mean(axis=1) + 2.0 * Y.std(axis=1) * rng.choice([-1.0, 1.0], (B, m))
+    r = (0.3 * Y.std(axis=1)) ** 2
+    y[3, 0] = np.nan
+    y[4] = Y[4].mean(axis=0) + 50.0 * Y[4].std(axis=0)
+    return X, Y, y, r
+
+
+def _bounds_case(X, case):
+    """Bounds (B, 1, n) in few basins (0 and 1: the clipping path of a few basins) or in
+    every basin (the in-place path): lower bounds at the prior mean less 0.2 spreads on
+    every column, an upper bound at the mean plus 0.2 spreads on column 2."""
+    mean, sd = X.mean(axis=1, keepdims=True), X.std(axis=1, ddof=1, keepdims=True)
+    lower = np.full(mean.shape, -np.inf)
+    upper = np.full(mean.shape, np.inf)
+    basins = slice(0, 2) if case == "few" else slice(None)
+    lower[basins] = (mean - 0.2 * sd)[basins]
+    upper[basins, :, 2] = (mean + 0.2 * sd)[basins, :, 2]
+    return lower, upper
+
+
+OPTIONS = {
+    "plain": dict(),
+    "inflated": dict(gamma=1.2),
+    "rtps": dict(gamma=1.1, rtps=0.6),
+    "rtpp": dict(rtpp=0.4),
+    "rtpp+rtps": dict(gamma=1.1, rtps=0.3, rtpp=0.2),
+}
+
+
+@pytest.mark.parametrize("layout", ["C", "planes"])
+@pytest.mark.parametrize("m", [1, 2])
+@pytest.mark.parametrize("method", ["enkf", "etkf", "eakf"])
+@pytest.mark.parametrize("option", list(OPTIONS))
+@pytest.mark.parametrize("bounds", ["few", "many"])
+def test_analysis_equals_the_textbook_update(method, m, layout, option, bounds):
+    """States and clipped water equal the analysis written out from the papers
+    (:func:`_textbook`: Burgers et al. 1998 and Evensen 2003; Bishop et al. 2001 and Hunt
+    et al. 2007; Anderson 2001/2003; Anderson & Anderson 1999; Zhang et al. 2004 RTPP;
+    Whitaker & Hamill 2012 RTPS; clipping by numpy.clip) to 1e-10 of the states'
+    magnitude, with a gate (4 sigma), a missing reading and bounds met by a few basins or
+    by every basin, for one and two observations and both memory layouts."""
+    rng = np.random.default_rng(31 + m)
+    B, N, n = 16, 20, 3
+    X, Y, y, r = _bounded_problem(rng, B, N, n, m)
+    z = rng.standard_normal(Y.shape)
+    lower, upper = _bounds_case(X, bounds)
+    opts = OPTIONS[option]
+    infl = Inflation(multiplicative=opts.get("gamma", 1.0), rtps=opts.get("rtps", 0.0),
+                     rtpp=opts.get("rtpp", 0.0))
+    a = ensemble_update(_layout(X, layout), Y, y, r, method=method, obs_noise=z, inflation=infl,
+                        gate_sigma=4.0, lower=lower, upper=upper)
+    expected, water = _textbook(method, X, Y, y, r, z=z, gate=4.0, lower=lower, upper=upper,
+                                **opts)
+    scale = np.abs(X).max()
+    np.testing.assert_allclose(a.states, expected, rtol=0, atol=1e-10 * scale)
+    np.testing.assert_allclose(a.clipped, water, rtol=0, atol=1e-10 * scale * N)
+    # the case is what it says: both bounds met, in few or many basins; gate and missing
+    assert (water > 0).any() and (water < 0).any()
+    met = (np.abs(water) > 0).any(axis=1).sum()
+    assert met == 2 if bounds == "few" else met > B // 8
+    assert a.gated[4].all() and a.missing[3, 0] and a.updated.sum() == B - (2 if m == 1 else 1)
+    np.testing.assert_array_equal(_bits(a.states[4]), _bits(X[4]))
+    np.testing.assert_allclose(a.spread_after, a.states.std(axis=1, ddof=1), rtol=1e-9,
+                               atol=1e-12 * scale)
+
+
+@pytest.mark.parametrize("layout", ["C", "planes"])
+def test_update_mask_equals_the_textbook_update(layout):
+    """With update_mask the updated columns equal the textbook analysis (Hunt et al. 2007,
+    each column regressed on its own), bounds clip only those, the others are returned bit
+    for bit."""
+    rng = np.random.default_rng(35)
+    X, Y, y, r = _bounded_problem(rng, 12, 15, 3, 1)
+    mask = np.array([True, False, True])
+    lower, upper = _bounds_case(X, "many")
+    infl = Inflation(multiplicative=1.2, rtps=0.5)
+    a = ensemble_update(_layout(X, layout), Y, y, r, method="etkf", inflation=infl,
+                        lower=lower, upper=upper, update_mask=mask)
+    expected, water = _textbook("etkf", X, Y, y, r, gamma=1.2, rtps=0.5, lower=lower,
+                                upper=upper, mask=mask)
+    np.testing.assert_allclose(a.states, expected, rtol=0, atol=1e-10 * np.abs(X).max())
+    np.testing.assert_allclose(a.clipped, water, rtol=0, atol=1e-8 * np.abs(X).max())
+    np.testing.assert_array_equal(_bits(a.states[..., 1]), _bits(X[..., 1]))
+    assert (water[:, 0] > 0).any() and not water[:, 1].any()
+
+
+@pytest.mark.parametrize("layout", ["C", "planes"])
+@pytest.mark.parametrize("m", [1, 2])
+def test_enkf_equals_the_member_loop(m, layout):
+    """The stochastic EnKF equals benchmarks/baseline_loop.py's member-by-member EnKF
+    (Burgers et al. 1998, centred perturbed observations) from the same standard normals,
+    with a missing reading, a gated one and bounds met, in both memory layouts."""
+    rng = np.random.default_rng(36)
+    X, Y, y, r = _bounded_problem(rng, 10, 24, 3, m)
+    z = rng.standard_normal(Y.shape)
+    lower, upper = (np.broadcast_to(v, X.shape) for v in _bounds_case(X, "many"))
+    a = ensemble_update(_layout(X, layout), Y, y, r, method="enkf", obs_noise=z,
+                        gate_sigma=4.0, lower=lower, upper=upper)
+    b = baseline_loop.enkf_update(X, Y, y, r, z, gate_sigma=4.0, lower=lower, upper=upper)
+    np.testing.assert_allclose(a.states, b, rtol=0, atol=1e-10 * np.abs(X).max())
+    assert np.abs(a.clipped).max() > 0
+
+
+# --- the memory layouts and basin independence --------------------------------------------
+
+
+FIELDS = (
+    "states", "innovation", "innovation_variance", "predicted_spread", "spread_before",
+    "spread_after", "clipped",
+)
+FLAGS = ("used", "gated", "missing", "invalid", "updated")
+
+INFLATIONS = (
+    None,
+    Inflation(multiplicative=1.2),
+    Inflation(rtps=0.6),
+    Inflation(rtpp=0.4),
+    Inflation(multiplicative=1.1, rtps=0.3, rtpp=0.2),
+)
+
+
+def _problem(rng, B=9, N=16, n=4, m=1):
+    """Stores around 100 mm, predictions linear in them plus noise, readings near the
+    ensemble; basin 1 has no reading, basin 2 a reading far outside (gated at 3 sigma),
+    basin 3 a NaN state in column 1, basin 4 a mean 1e5 times its spread (cancellation)."""
+    X = rng.normal(100.0, 10.0, (B, N, n)) * rng.uniform(0.3, 2.0, (B, 1, n))
+    X[4] = 1e6 + rng.normal(0.0, 10.0, (N, n))
+    Y = np.einsum("bin,nm->bim", X, rng.uniform(0.0, 0.05, (n, m)))
+    Y = np.abs(Y + rng.normal(0.0, 0.3, Y.shape))
+    Y[4] = np.abs(rng.normal(5.0, 0.5, (N, m)))
+    y = Y.mean(axis=1) + 2.0 * Y.std(axis=1) * rng.standard_normal((B, m))
+    y = np.abs(y)
+    r = (0.02 * y) ** 2
+    y[1, 0] = np.nan
+    y[2, 0] += 50.0 * Y[2].std()
+    X[3, 5, 1] = np.nan
+    return X, Y, y, r
+
+
+def _assert_same(fast, general):
+    # A spread or a clipped amount computed from the states is as precise as the states:
+    # 1e-12 of the basin's largest state (the cancellation basin's states are 1e6).
+    magnitude = np.nanmax(np.abs(general.states), axis=(-2, -1))[:, None]
+    for name in FIELDS:
+        a, b = getattr(fast, name), getattr(general, name)
+        assert a.shape == b.shape, name
+        np.testing.assert_array_equal(np.isnan(a), np.isnan(b), err_msg=name)
+        scale = max(1.0, float(np.nanmax(np.abs(b))) if np.isfinite(b).any() else 1.0)
+        if name in ("spread_before", "spread_after", "clipped"):
+            scale = np.maximum(magnitude, 1.0)
+        np.testing.assert_array_less(
+            np.abs(np.nan_to_num(a - b)), 1e-12 * (np.abs(np.nan_to_num(b)) + scale), err_msg=name
+        )
+    for name in FLAGS:
+        np.testing.assert_array_equal(getattr(fast, name), getattr(general, name), err_msg=name)
+
+
+@pytest.mark.parametrize("m", [1, 2])
+@pytest.mark.parametrize("method", ["enkf", "etkf", "eakf"])
+def test_both_memory_layouts_give_the_same_analysis(method, m):
+    """States laid out as (state, basin, member) planes (member axis fastest, the engine's
+    layout) and C-ordered states give the same states and diagnostics to 1e-12, with and
+    without inflation (multiplicative, RTPS, RTPP), gate, bounds (clipping), update mask,
+    log transform and missing, gated and invalid readings; planes come back as planes
+    (common practice, no published source: the layout must not change the numbers)."""
+    rng = np.random.default_rng(42)
+    X, Y, y, r = _problem(rng, m=m)
+    Xp = _planes(X)
+    noise = rng.standard_normal(Y.shape)
+    mask = np.array([True, False, True, True])
+    lower, upper = np.full(X.shape, 80.0), np.full(X.shape, np.inf)
+    upper[..., 2] = 120.0
+    clipped_somewhere = False
+    for infl, gate, bounds, masked, transform in itertools.product(
+        INFLATIONS, (None, 3.0), (False, True), (False, True), (None, "log")
+    ):
+        kw = dict(method=method, inflation=infl, gate_sigma=gate)
+        if method == "enkf":
+            kw["obs_noise"] = noise
+        if bounds:
+            kw.update(lower=lower, upper=upper)
+        if masked:
+            kw["update_mask"] = mask
+        if transform:
+            kw["transform"] = Transform("log", offset=1.0)
+        planes = ensemble_update(Xp, Y, y, r, **kw)
+        c_order = ensemble_update(X, Y, y, r, **kw)
+        _assert_same(planes, c_order)
+        assert planes.states.strides == Xp.strides  # the analysis keeps the states' layout
+        assert c_order.states.flags.c_contiguous
+        assert planes.updated.sum() >= 5  # the analysis did something
+        assert np.nanmax(np.abs(planes.states - X)) > 1.0
+        clipped_somewhere |= bool(np.abs(planes.clipped).max() > 0.0)
+        if gate:
+            assert planes.gated[2, 0] and not planes.used[2, 0]
+        assert planes.missing[1, 0] and planes.invalid[3, 0] != masked
+    assert clipped_somewhere
+
+
+@pytest.mark.parametrize("layout", ["C", "planes"])
+@pytest.mark.parametrize("method", ["enkf", "etkf", "eakf"])
+def test_analysis_does_not_depend_on_the_other_basins(method, layout):
+    """A basin's analysis is the same, bit for bit, whatever other basins share the call
+    and wherever it sits in the batch, in a large batch and in a small one (DESIGN.md,
+    Determinism; common practice, no published source)."""
+    rng = np.random.default_rng(3)
+    X, Y, y, r = _problem(rng, B=300)  # (large enough for the plane-by-plane update)
+    noise = rng.standard_normal(Y.shape)
+    kw = dict(method=method, gate_sigma=3.0, lower=85.0, inflation=Inflation(1.1, rtps=0.5))
+    whole = ensemble_update(_layout(X, layout), Y, y, r, obs_noise=noise, **kw)
+    order = np.array([7, 0, 5, 250])
+    part = ensemble_update(
+        _layout(X[order], layout), Y[order], y[order], r[order], obs_noise=noise[order], **kw
+    )
+    for name in FIELDS + FLAGS:
+        a = np.ascontiguousarray(getattr(part, name))
+        b = np.ascontiguousarray(getattr(whole, name)[order])
+        np.testing.assert_array_equal(a.view(np.uint8), b.view(np.uint8), err_msg=name)
 
 
 # --- cycling on the linear reservoir -----------------------------------------------------
@@ -388,9 +700,10 @@ def test_gate_rejects_large_innovations_and_reports_them():
 
 
 def test_bounds_are_honoured_and_the_clipped_water_reported():
-    """States pushed outside [lower, upper] are clipped; Analysis.clipped is the signed
-    water added per basin and state, summed over members: the bounded minus the unbounded
-    analysis (common practice, no published source)."""
+    """States pushed outside [lower, upper] are clipped (numpy.clip of the unbounded
+    analysis); Analysis.clipped is the signed water added per basin and state, summed over
+    members: the clipped minus the unbounded analysis (common practice, no published
+    source)."""
     rng = np.random.default_rng(9)
     B, N = 4, 30
     X = np.stack([rng.uniform(0, 10, (B, N)), rng.uniform(40, 50, (B, N))], axis=-1)
@@ -401,8 +714,10 @@ def test_bounds_are_honoured_and_the_clipped_water_reported():
     upper = np.array([np.inf, 60.0])
     free = ensemble_update(X, Y, y, r, method="eakf")
     a = ensemble_update(X, Y, y, r, method="eakf", lower=lower, upper=upper)
-    assert np.all(a.states >= lower) and np.all(a.states <= upper)
-    np.testing.assert_allclose(a.clipped, (a.states - free.states).sum(axis=1), atol=1e-12)
+    expected = np.clip(free.states, lower, upper)
+    expected[3] = X[3]  # no reading: returned as it is
+    np.testing.assert_array_equal(a.states, expected)
+    np.testing.assert_allclose(a.clipped, (expected - free.states).sum(axis=1), atol=1e-12)
     assert a.clipped[0, 0] > 0 and a.clipped[1, 1] < 0  # water added, water removed
     np.testing.assert_array_equal(a.clipped[3], 0.0)
     np.testing.assert_allclose(a.clipped_total, a.clipped.sum(axis=-1))
@@ -411,8 +726,9 @@ def test_bounds_are_honoured_and_the_clipped_water_reported():
 
 
 def test_clipping_many_basins_reports_the_same_water():
-    """When most basins leave their bounds (the in-place path), the clipped water is still
-    the bounded minus the unbounded analysis, and exactly zero in columns never clipped."""
+    """When most basins leave their bounds (the in-place path), the states are still
+    numpy.clip of the unbounded analysis, the clipped water the clipped minus the unbounded
+    analysis, and exactly zero in columns never clipped."""
     rng = np.random.default_rng(19)
     B, N = 40, 16
     X = np.stack([rng.uniform(0, 10, (B, N)), rng.uniform(40, 50, (B, N))], axis=-1)
@@ -421,7 +737,9 @@ def test_clipping_many_basins_reports_the_same_water():
     free = ensemble_update(X, Y, y, np.ones((B, 1)), method="etkf")
     a = ensemble_update(X, Y, y, np.ones((B, 1)), method="etkf", lower=0.0)
     assert (a.clipped[:, 0] > 0).sum() > B // 8
-    np.testing.assert_allclose(a.clipped, (a.states - free.states).sum(axis=1), atol=1e-10)
+    expected = np.clip(free.states, 0.0, None)
+    np.testing.assert_array_equal(a.states, expected)
+    np.testing.assert_allclose(a.clipped, (expected - free.states).sum(axis=1), atol=1e-10)
     np.testing.assert_array_equal(a.clipped[:, 1], 0.0)
     np.testing.assert_allclose(a.spread_after, a.states.std(axis=1, ddof=1), rtol=1e-10)
     assert np.all(a.states >= 0.0)

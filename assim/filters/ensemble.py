@@ -32,22 +32,32 @@ perturbations, whitened innovation ``d``:
     regression coefficients follow from one pass over the states, so the states are read
     once for all observations. For one observation it is the ``etkf`` formula.
 
-Costs are O(N n_state n_obs) per basin plus O(n_obs^3) for the ``etkf`` eigenproblem. With
-one observation per basin (the common case) a fused path keeps observation space as (basin,
-member) vectors, with no (basin, n_obs, n_obs) matrices and no solve: the gain is the
-(basin, n_state) vector ``cov(x, h) / (var(h) + R)``. The states are read for their sums of
-squares and their contraction with the member vectors, and the result written by one
-product and one addition; the analysis spread follows from small quantities. States whose
-member axis is fastest in memory, one (basin, member) plane per state (a model's
-Fortran-ordered (batch, n_state) array, as the engine passes it), are worked on plane by
-plane along contiguous members and the analysis keeps that layout; other layouts are
-returned C-ordered. Every member sum and dot product is taken per basin, so a basin's numbers
-never depend on the other basins of the call. Inflation costs no extra pass: multiplicative
-inflation and RTPS are a per-column factor and shift in the update (RTPS's factor comes from
-the analysis spread known beforehand), and RTPP, with ``X'a = g X' + W'C^T`` and
-``X'b = g X'``, scales the weight perturbations ``W'`` by ``1 - alpha``. Spreads from sums of squares are recomputed
-from deviations for the basins where the mean exceeds 1000 standard deviations
-(cancellation), so they keep about 1e-9 relative precision.
+Costs are O(N n_state n_obs) per basin plus O(n_obs^3) for the ``etkf`` eigenproblem. Every
+call, with one observation per basin or many, runs the same stages, each written once below
+in this order: checks and the assimilation space (``_prepare``); observation space, gate and
+whitening (``_predicted``, ``_screen``, ``_whiten``); the member weights of each method; one
+pass over the states for their member sums (``_contract``); the increment's products with
+the prior (``_scalar_terms``, ``_matrix_terms``); inflation and the analysis moments
+(``_relax_weights`` for RTPP, ``_moments``, ``_lost``); the update with multiplicative
+inflation and RTPS folded in (``_update``, ``_redo_rtps``); clipping (``_clip_to_bounds``),
+restore (``_restore``), spread after (``_spread_after``) and the result (``_result``). Only
+the weights differ by the number of observations: with one per basin (the engine's case)
+``_scalar_weights`` keeps observation space as (basin, member) vectors, with no (basin,
+n_obs, n_obs) matrices and no solve (the gain is the (basin, n_state) vector
+``cov(x, h) / (var(h) + R)``); with several, ``_matrix_weights`` solves or diagonalises. The
+states are read for their sums of squares and their contraction with the member vectors,
+and the result written by one product and one addition; the analysis spread follows from
+small quantities. States whose member axis is fastest in memory, one (basin, member) plane
+per state (a model's Fortran-ordered (batch, n_state) array, as the engine passes it), are
+worked on plane by plane along contiguous members and the analysis keeps that layout; other
+layouts are returned C-ordered. Every member sum and dot product is taken per basin, so a
+basin's numbers never depend on the other basins of the call. Inflation costs no extra pass:
+multiplicative inflation and RTPS are a per-column factor and shift in the update (RTPS's
+factor comes from the analysis spread known beforehand), and RTPP, with
+``X'a = g X' + W'C^T`` and ``X'b = g X'``, scales the weight perturbations ``W'`` by
+``1 - alpha``. Spreads from sums of squares are recomputed from deviations for the basins
+where the mean exceeds 1000 standard deviations (cancellation), so they keep about 1e-9
+relative precision.
 
 Perturbed observations of ``enkf`` are centred per basin and observation (their member
 mean is removed). Centring makes the analysis mean exactly the Kalman update of the
@@ -99,8 +109,8 @@ class Analysis:
     Attributes
     ----------
     states : (..., member, n_state) float64, mm
-        Updated ensemble (same shape as the input states; with one observation, states
-        laid out member-fastest, one plane per state, come back in that layout).
+        Updated ensemble (same shape as the input states; states laid out member-fastest,
+        one plane per state, come back in that layout).
     innovation : (..., n_obs) float64
         Observed minus ensemble mean of predicted, in the assimilation space; NaN where the
         reading is missing or the prediction is not finite.
@@ -144,6 +154,9 @@ class Analysis:
     def clipped_total(self) -> np.ndarray:
         """(...) float64, mm: clipped water summed over members and states (signed)."""
         return self.clipped.sum(axis=-1)
+
+
+# --- stage 1: checks, the flat batch and the assimilation space ---------------------------
 
 
 def _fail(message, variable, place=None):
@@ -198,6 +211,44 @@ def _check(states, predicted, observed, obs_variance, method, update_mask, obs_n
     return X, Y, y, r, mask, noise
 
 
+def _prepare(states, predicted, observed, obs_variance, method, rng, update_mask, transform,
+             obs_noise):
+    """Check the arguments, flatten the batch and move to the assimilation space.
+
+    Returns X2 (B, N, n) (a view of ``states`` when it can), Y2 (B, N, m) and y2 (B, m) in
+    the assimilation space, r2 (B, m), missing (B, m) bool, cols (the updated columns),
+    noise (B, N, m) or None, and the shapes of ``states`` and ``observed``."""
+    X, Y, y, r, mask, noise = _check(
+        states, predicted, observed, obs_variance, method, update_mask, obs_noise
+    )
+    if method == "enkf" and noise is None and rng is None:
+        _fail("method 'enkf' needs rng or obs_noise for the perturbed observations", "rng")
+    batch, N, n, m = X.shape[:-2], X.shape[-2], X.shape[-1], Y.shape[-1]
+    B = math.prod(batch)
+    X2 = X.reshape(B, N, n)
+    Y2 = Y.reshape(B, N, m)
+    y2 = y.reshape(B, m)
+    r2 = np.ascontiguousarray(r).reshape(B, m)
+    missing = ~(np.isfinite(y2) & np.isfinite(r2))
+    bad = r2 <= 0.0  # (NaN compares False; where the reading is missing it is allowed)
+    if bad.any() and (bad := bad & ~missing).any():
+        b, j = np.argwhere(bad)[0]
+        _fail(
+            f"must be > 0 where a reading is present, got {r2[b, j]!r}",
+            "obs_variance",
+            f"batch index {np.unravel_index(b, batch) if batch else ()}, observation {j}",
+        )
+    if transform is not None and transform.kind != "none":
+        y2 = transform.forward(y2)
+        Y2 = transform.forward(Y2)
+    cols = np.arange(n) if mask is None else np.flatnonzero(mask)
+    if noise is not None:
+        noise = noise.reshape(B, N, m)
+    return X2, Y2, y2, r2, missing, cols, noise, X.shape, y.shape
+
+
+# --- member sums, dot products and variances, per basin ----------------------------------
+
 _vecmat = getattr(np, "vecmat", None)  # numpy >= 2.2
 
 
@@ -223,29 +274,45 @@ def _cross(a: np.ndarray, vt: np.ndarray) -> np.ndarray:
     return np.einsum("bki,bin->bkn", vt, a)
 
 
+def _planes_of(X2: np.ndarray) -> np.ndarray | None:
+    """The states as (n, B, N) planes if their member axis is the fastest in memory and
+    each state is one contiguous (basin, member) plane (a model's Fortran-ordered
+    (batch, n_state) array, the engine's layout), else None (worked on as (B, N, n))."""
+    B, N, _ = X2.shape
+    st = X2.strides
+    if st[1] == X2.itemsize and (B == 1 or st[0] == N * X2.itemsize):
+        return X2.transpose(2, 0, 1)
+    return None
+
+
+def _squares(X2, XT, cols):
+    """Member sums of squares of the states (B, n), one pass, and which basins have every
+    updated column finite (B,) bool: a NaN or infinite state shows in its sum of squares."""
+    xsq = np.vecdot(XT, XT).T if XT is not None else np.einsum("bin,bin->bn", X2, X2)
+    if not cols.size:
+        return xsq, np.zeros(X2.shape[0], bool)
+    full = cols.size == X2.shape[2]
+    return xsq, np.logical_and.reduce(np.isfinite(xsq if full else xsq[:, cols]), axis=1)
+
+
+def _contract(X2, XT, V, ones):
+    """``V^T X`` per basin (B, k, n) for the member vectors V (B, k, N), whose row 0 is the
+    ones (member sums): one pass over C-ordered states for all k vectors, or on planes one
+    pass per vector along contiguous members."""
+    if XT is None:
+        return _cross(X2, V)
+    k = V.shape[1]
+    sums = np.empty((XT.shape[0], XT.shape[1], k))
+    np.vecdot(XT, ones, out=sums[:, :, 0])
+    for j in range(1, k):
+        np.vecdot(XT, V[:, j], out=sums[:, :, j])
+    return sums.transpose(1, 2, 0)
+
+
 def _exact_variance(a: np.ndarray) -> np.ndarray:
     """Two-pass ensemble variance (ddof = 1) of a (B, N, k) array, (B, k)."""
     dev = a - (_sum(a) / a.shape[1])[:, None, :]
     return np.einsum("bik,bik->bk", dev, dev) / (a.shape[1] - 1)
-
-
-def _redo_rtps(Xa: np.ndarray, lost: np.ndarray, scale: np.ndarray, sd_prior: np.ndarray, rtps: float) -> None:
-    """Redo, in place, the RTPS factor of the basins ``lost`` from their states, where the
-    spread from small quantities was not precise enough: the update was a scaling by
-    ``scale`` about the mean, so it can be undone and applied again exactly.
-
-    Xa : (B, N, k) analysis; lost : (B,) bool; scale : (B, k) factor used;
-    sd_prior : (lost basins, k) prior spread
-    """
-    sub = Xa[lost]
-    sub_mean = _sum(sub) / sub.shape[1]
-    sd_now = np.sqrt(_exact_variance(sub))
-    s_used = scale[lost]
-    ok = s_used > 0.0
-    sd_pre = np.where(ok, sd_now / np.where(ok, s_used, 1.0), 0.0)
-    s_exact = rtps_factor(sd_prior, sd_pre, rtps)
-    ratio = np.where(ok, s_exact / np.where(ok, s_used, 1.0), 1.0)
-    Xa[lost] = sub_mean[:, None, :] + ratio[:, None, :] * (sub - sub_mean[:, None, :])
 
 
 # Variances from member sums of squares lose about (mean / sd)^2 N eps of their relative
@@ -282,47 +349,182 @@ def _variance_of(a: np.ndarray, rows: np.ndarray) -> np.ndarray:
     return _variance(sub, _sum(sub), np.einsum("bin,bin->bn", sub, sub))
 
 
+# --- stage 2: observation space, screening (gate) and whitening ---------------------------
+
+
+def _predicted(Y2, y2, r2, gamma, Yp, ones):
+    """Predicted mean ybar (B, m), perturbations written into ``Yp`` (B, m, N; the member
+    axis fast), their variance var_y (B, m) (before inflation), the innovation and its
+    expected variance ``g^2 var_y + R`` (B, m)."""
+    N = Y2.shape[1]
+    YT = Y2.transpose(0, 2, 1)
+    ybar = np.vecdot(YT, ones) / N
+    np.subtract(YT, ybar[:, :, None], out=Yp)
+    var_y = np.vecdot(Yp, Yp) / (N - 1)
+    innovation = y2 - ybar
+    innovation_variance = (var_y if gamma == 1.0 else gamma**2 * var_y) + r2
+    return ybar, var_y, innovation, innovation_variance
+
+
+def _screen(missing, innovation, var_y, innovation_variance, states_ok, gate_sigma):
+    """Which observations enter the analysis (B, m) bool: ``used``, ``gated`` (innovation
+    gate, from the prior statistics) and ``invalid`` (present but unusable: the transform
+    undefined at the reading or a prediction, a prediction or an updated state not
+    finite)."""
+    present = ~missing
+    usable = present & np.isfinite(innovation) & np.isfinite(var_y) & states_ok[:, None]
+    invalid = present ^ usable
+    if gate_sigma:
+        # (the variance can be negative only where the reading is missing, hence unusable)
+        limit = gate_sigma * np.sqrt(np.maximum(innovation_variance, 0.0))
+        gated = usable & (np.abs(innovation) > limit)
+        used = usable ^ gated
+    else:
+        gated = np.zeros_like(usable)
+        used = usable
+    return used, gated, invalid
+
+
+def _whiten(Yp, var_y, innovation, r2, used, all_used, gamma):
+    """Divide each observation by its error sd (R = I); an unused one gets weight 0, so it
+    contributes exactly nothing. Scales ``Yp`` in place; returns s = R^-1/2 (B, m), the
+    whitened innovation d (B, m) and the whitened inflated predicted variance a (B, m)."""
+    if all_used:
+        s = 1.0 / np.sqrt(r2)
+        dw = innovation * s
+        a = var_y * (s * s)
+    else:
+        s = np.where(used, 1.0 / np.sqrt(np.where(used, r2, 1.0)), 0.0)
+        Yp[~used] = 0.0
+        dw = np.where(used, innovation, 0.0) * s
+        a = np.where(used, var_y, 0.0) * (s * s)
+    Yp *= s[:, :, None]
+    if gamma != 1.0:
+        a = gamma**2 * a
+    return s, dw, a
+
+
+def _perturbations(noise, rng, B, N, m):
+    """Standard normal observation perturbations of ``enkf``, z (B, m, N): ``obs_noise``
+    as given, else drawn from ``rng``."""
+    z = noise if noise is not None else rng.standard_normal((B, N, m))
+    return z.transpose(0, 2, 1)
+
+
+# --- stage 3: member weights of each method ------------------------------------------------
+#
+# Every method adds to the states the increment W^T C^T (member weights W (B, m, N), the
+# state-prediction cross-covariance C^T (B, m, n)). The weights are kept as W = f U with a
+# per-observation factor f that is moved onto C^T (f None: W = U). With one observation the
+# innovation variance is a scalar and the weights closed formulas: no (m, m) matrix, no
+# solve, no eigenproblem.
+
+
 def _sqrt_weight(a: np.ndarray) -> np.ndarray:
     """``((1 + a)^-1/2 - 1) / a``, written so that it holds at ``a = 0`` (value -1/2)."""
     root = np.sqrt(1.0 + np.maximum(a, 0.0))
     return -1.0 / (root * (1.0 + root))
 
 
-def _weights_one(method, dw, yp, a, z, gamma):
-    """Member weights for one observation: the general formulas with n_obs = 1.
+def _scalar_weights(method, Yp, dw, a, z, gamma, U, ones):
+    """Member weights for one observation, W = f u.
 
-    dw (B,), yp (B, N), a (B,), z (B, N) or None. Returns W (B, N) and, for the
-    deterministic methods, the factor p (B,) with W = mean_w + p yp, and mean_w (B,)
-    (both None for enkf)."""
+    Yp (B, 1, N) whitened predicted perturbations; dw, a (B, 1); z (B, 1, N) or None
+    (enkf; any centring is already in dw); U (B, 1, N) the buffer for u when u is
+    contracted with the states (enkf), else None. Returns u (B, 1, N), f (B, 1), the
+    weights' member mean wbar (B, 1) and what :func:`_scalar_terms` needs."""
+    N = Yp.shape[2]
     if method == "enkf":
-        w = yp * -gamma
-        w += z
-        w += dw[:, None]
-        w *= (gamma**2 / (1.0 + a))[:, None]
-        return w, None, None
-    mean_w = gamma**2 * dw / (1.0 + a)  # Hunt et al. (2007), eq. 20
-    p = gamma**3 * _sqrt_weight(a)
-    w = yp * p[:, None]  # Hunt et al. (2007), eq. 24
-    w += mean_w[:, None]
-    return w, p, mean_w
+        # Burgers et al. (1998): w_i = g^2 (a + 1)^-1 (d + z_i - g y'_i) = f u_i
+        f = gamma**2 / (1.0 + a)
+        if gamma == 1.0:
+            u = np.subtract(z, Yp, out=U)
+        else:
+            u = np.multiply(Yp, -gamma, out=U)
+            u += z
+        u += dw[:, :, None]
+        usum = np.vecdot(u, ones)
+        ubar = usum / N
+        # sum of (u - ubar)^2 from sums: u is z plus small terms, its spread about 1 and its
+        # mean the whitened innovation, so this loses nothing unless the innovation is
+        # thousands of spreads (such basins are recomputed from the states, _scalar_terms)
+        uu = np.vecdot(u, u) - usum * ubar
+        return u, f, f * ubar, (a, usum, uu)
+    # Hunt et al. (2007), eqs. 20 and 24: w_i = wbar + p y'_i = p u_i (for eakf, one
+    # observation gives the same ensemble: Anderson 2001)
+    wbar = gamma**2 * dw / (1.0 + a)
+    f = gamma**3 * _sqrt_weight(a)
+    u = Yp + (wbar / f)[:, :, None]
+    return u, f, wbar, (a, None, None)
 
 
-def _weights(method, dw, Ypw, A, z, gamma):
-    """Member weights for n_obs observations, transposed: W (B, n_obs, N).
+def _scalar_terms(method, N, sums, Ct, xbar, f, terms, gamma):
+    """The increment's products with the prior perturbations for one observation.
 
-    dw (B, m), Ypw (B, m, N), A (B, m, m), z (B, m, N) or None. For the deterministic
-    methods also returns P (B, m, m), symmetric, and mean_w (B, m) with
-    W = mean_w + P Ypw (both None for enkf)."""
-    m = A.shape[-1]
+    sums (B, k, n_u): member sums of the states with (ones, y', u); Ct (B, 1, n_u); xbar
+    (B, n_u) the prior mean. Returns C^T (B, 1, n_u), ``W'X'`` (B, 1, n_u), ``W'W'^T``
+    (B, 1, 1) and the basins (B,) bool whose ``W'W'^T`` from sums of squares is imprecise
+    (None where that cannot happen)."""
+    a, usum, uu = terms
     if method == "enkf":
-        rhs = dw[:, :, None] + z - gamma * Ypw
-        return gamma**2 * np.linalg.solve(A + np.eye(m), rhs), None, None  # Burgers et al. (1998)
+        # w' = f (u - ubar): w'^T X' = f (X^T u - sum(u) xbar) and w'^T w'
+        WX = f[:, :, None] * (sums[:, 2:3] - usum[:, :, None] * xbar[:, None, :])
+        WtW = (f * f * uu)[:, :, None]
+        ubar = usum[:, 0] / N
+        # a mean of u too large for its sums of squares (see _scalar_weights)
+        imprecise = ~(ubar * ubar <= (_CANCELLATION_RATIO / (N - 1)) * uu[:, 0])
+        return Ct, WX, WtW, imprecise
+    # w' = p y', so w'^T X' = (N - 1) p C and w'^T w' = (N - 1) p^2 a / g^2.
+    WX = (N - 1) * (f[:, :, None] * Ct)
+    WtW = (((N - 1) / gamma**2) * (f * a * f))[:, :, None]
+    return Ct, WX, WtW, None
+
+
+def _matrix_weights(method, Yp, dw, z, gamma, U, s, ybar, y2, used):
+    """Member weights for several observations, W (B, m, N) (f = 1).
+
+    Yp (B, m, N) whitened predicted perturbations (replaced, for the serial adjustment, by
+    those of each observation at its turn); dw (B, m); z (B, m, N) or None; U (B, m, N) the
+    buffer for the centred weights W' contracted with the states (enkf, eakf), else None.
+    Returns W, wbar (B, m) and what :func:`_matrix_terms` needs."""
+    B, m, N = Yp.shape
+    A = gamma**2 * np.einsum("bmi,bki->bmk", Yp, Yp) / (N - 1)
+    if method == "eakf":
+        ybar_w = np.where(used, ybar, 0.0) * s
+        y_w = np.where(used, y2, 0.0) * s
+        W, YP, inv_var = _eakf_observation_space(Yp, ybar_w, y_w, used, gamma)
+        Yp[...] = YP
+        wbar = W.mean(axis=2)
+        np.subtract(W, wbar[:, :, None], out=U)
+        return W, wbar, (A, None, inv_var, W)
+    if method == "enkf":
+        rhs = dw[:, :, None] + z - gamma * Yp
+        W = gamma**2 * np.linalg.solve(A + np.eye(m), rhs)  # Burgers et al. (1998)
+        wbar = np.add.reduce(W, axis=2) / N
+        np.subtract(W, wbar[:, :, None], out=U)
+        return W, wbar, (A, None, None, None)
     lam, V = np.linalg.eigh(A)
     Vt = np.swapaxes(V, 1, 2)
     inv = (V / (1.0 + lam)[:, None, :]) @ Vt
-    mean_w = gamma**2 * np.einsum("bjl,bl->bj", inv, dw)  # Hunt et al. (2007), eq. 20
+    wbar = gamma**2 * np.einsum("bjl,bl->bj", inv, dw)  # Hunt et al. (2007), eq. 20
     P = gamma**3 * ((V * _sqrt_weight(lam)[:, None, :]) @ Vt)
-    return mean_w[:, :, None] + P @ Ypw, P, mean_w  # Hunt et al. (2007), eq. 24
+    return wbar[:, :, None] + P @ Yp, wbar, (A, P, None, None)  # Hunt et al. (2007), eq. 24
+
+
+def _matrix_terms(method, N, sums, Ct, xbar, U, Yp, terms, gamma):
+    """:func:`_scalar_terms` for several observations: sums (B, k, n_u) of the states
+    with (ones, Y', W'), U the centred weights W' (B, m, N) (enkf, eakf)."""
+    A, P, inv_var, DY = terms
+    m = Ct.shape[1]
+    if P is not None:
+        # W' = P Y', so W' X' = (N - 1) P C^T and W' W'^T = (N - 1) P A P / g^2.
+        return Ct, (N - 1) * (P @ Ct), ((N - 1) / gamma**2) * (P @ A @ P), None
+    if inv_var is not None:
+        # The serial adjustment's "cross-covariance" is its regression coefficients; the
+        # prior states enter inflated, X_1 = xbar + g X'.
+        Ct = _eakf_regression(gamma * Ct, DY, Yp, inv_var)
+    WX = sums[:, 1 + m :] - U.sum(axis=2)[:, :, None] * xbar[:, None, :]
+    return Ct, WX, np.einsum("bmi,bki->bmk", U, U), None
 
 
 def _eakf_observation_space(Ypw, ybar_w, y_w, used, gamma):
@@ -372,6 +574,155 @@ def _eakf_regression(G, DY, YP, inv_var):
         cov = G[:, j] + np.einsum("bk,bkn->bn", Q[:, :j, j], b[:, :j])
         b[:, j] = cov * inv_var[:, j, None]
     return b
+
+
+
+# --- stage 4: inflation (RTPP, RTPS) and the analysis moments ------------------------------
+#
+# Inflation costs no extra pass over the states. Multiplicative inflation g enters the
+# weights (above) and the update as a factor and shift per column; RTPP, with
+# X'a = g X' + W'^T C^T and X'b = g X', scales the weight perturbations W' by 1 - alpha;
+# RTPS is a factor on the analysis perturbations, known beforehand from the analysis spread
+# computed from small quantities (the prior spread, W'X' and W'W'^T).
+
+
+def _relax_weights(u, f, wbar, WX, WtW, rtpp):
+    """RTPP (Zhang et al. 2004) on the weights: the perturbations of u (B, m, N) about
+    their mean ``wbar / f`` shrink by ``1 - rtpp``, and the products with them too."""
+    shrink = 1.0 - rtpp
+    ubar = wbar if f is None else wbar / f
+    u = ubar[:, :, None] + relax_to_prior_perturbations(u - ubar[:, :, None], 0.0, rtpp)
+    return u, shrink * WX, shrink**2 * WtW
+
+
+def _per_obs_sum(a):
+    """Sum over the observation axis of a (B, m, n) array, (B, n)."""
+    return a[:, 0] if a.shape[1] == 1 else a.sum(axis=1)
+
+
+def _moments(Ct, WX, WtW, wbar, xbar_u, var_u, gamma, N):
+    """Analysis mean and variance (B, n_u) from small quantities, X'a = g X' + W'^T C^T:
+    sum X'a^2 = g^2 sum X'^2 + 2 g C (W'X') + C (W'W'^T) C^T."""
+    WtWC = WtW * Ct if Ct.shape[1] == 1 else WtW @ Ct
+    var_a = ((gamma**2 * (N - 1)) * var_u + _per_obs_sum(Ct * ((2.0 * gamma) * WX + WtWC))) / (
+        N - 1
+    )
+    mean_a = xbar_u + _per_obs_sum(wbar[:, :, None] * Ct)
+    return var_a, mean_a
+
+
+def _lost(var_a, mean_a, var_u, gamma, active, imprecise):
+    """Basins (B,) whose analysis spreads are recomputed from the states: the analysis
+    spread lost most of the prior's, or the mean is too large for sums of squares."""
+    exact = (var_a > (1e-6 * gamma**2) * var_u) & (mean_a * mean_a <= _CANCELLATION_RATIO * var_a)
+    lost = ~np.logical_and.reduce(exact, axis=1)
+    if imprecise is not None:
+        lost |= imprecise
+    lost &= active
+    return lost
+
+
+def _redo_rtps(Xa: np.ndarray, lost: np.ndarray, scale: np.ndarray, sd_prior: np.ndarray, rtps: float) -> None:
+    """Redo, in place, the RTPS factor of the basins ``lost`` from their states, where the
+    spread from small quantities was not precise enough: the update was a scaling by
+    ``scale`` about the mean, so it can be undone and applied again exactly.
+
+    Xa : (B, N, k) analysis; lost : (B,) bool; scale : (B, k) factor used;
+    sd_prior : (lost basins, k) prior spread
+    """
+    sub = Xa[lost]
+    sub_mean = _sum(sub) / sub.shape[1]
+    sd_now = np.sqrt(_exact_variance(sub))
+    s_used = scale[lost]
+    ok = s_used > 0.0
+    sd_pre = np.where(ok, sd_now / np.where(ok, s_used, 1.0), 0.0)
+    s_exact = rtps_factor(sd_prior, sd_pre, rtps)
+    ratio = np.where(ok, s_exact / np.where(ok, s_used, 1.0), 1.0)
+    Xa[lost] = sub_mean[:, None, :] + ratio[:, None, :] * (sub - sub_mean[:, None, :])
+
+
+# --- stage 5: the update of the states ------------------------------------------------------
+
+
+def _per_column(v, planes):
+    """A per-(basin, column) quantity v (B, n) broadcast against the work array: (B, 1, n),
+    or (n, B, 1) on planes."""
+    return np.ascontiguousarray(v.T)[:, :, None] if planes else v[:, None, :]
+
+
+def _write(Xw, u, K, planes, G=None, c=None):
+    """``(Xw + u^T K) G + c`` per basin and column, a new array: Xw (B, N, n) and the
+    result in that layout, or on planes Xw (n, B, N) and the result (n, B, N); u (B, m, N);
+    K (B, m, n); G and c, if given, (B, n) (G may be a number).
+
+    On planes a large batch is done one plane at a time, so that each plane is still in
+    cache for the next operation; either way each element gets the same operations."""
+    m = u.shape[1]
+    if not planes:
+        if m == 1:
+            out = np.einsum("bi,bn->bin", u[:, 0], K[:, 0])
+        else:
+            out = np.matmul(np.ascontiguousarray(np.swapaxes(u, 1, 2)), K)
+        out += Xw
+        if G is not None:
+            out *= G if np.ndim(G) == 0 else G[:, None, :]
+        if c is not None:
+            out += c[:, None, :]
+        return out
+    out = np.empty(Xw.shape)
+    KT = np.ascontiguousarray(K[:, 0].T if m == 1 else K.transpose(2, 0, 1))  # (n, B[, m])
+    GT = None if G is None or np.ndim(G) == 0 else np.ascontiguousarray(G.T)
+    cT = None if c is None else np.ascontiguousarray(c.T)
+    if m == 1 and u[:, 0].size <= 4096:
+        np.multiply(KT[:, :, None], u[None, :, 0], out=out)
+        out += Xw
+        if G is not None:
+            out *= G if GT is None else GT[:, :, None]
+        if c is not None:
+            out += cT[:, :, None]
+        return out
+    for j in range(out.shape[0]):  # (over the state columns)
+        if m == 1:
+            plane = np.multiply(u[:, 0], KT[j][:, None], out=out[j])
+        else:
+            plane = out[j]
+            plane[...] = _vm(KT[j], u)
+        plane += Xw[j]
+        if G is not None:
+            plane *= G if GT is None else GT[j][:, None]
+        if c is not None:
+            plane += cT[j][:, None]
+    return out
+
+
+def _update(Xw, u, f, Ct, var_u, var_a, mean_a, xbar_u, gamma, rtps, planes):
+    """The analysis in one pass over the states: Xa = G X + u^T (f C')^T + c per basin and
+    column, with multiplicative inflation (inflation.inflate) and RTPS (Whitaker & Hamill
+    2012: the analysis perturbations scaled about the analysis mean) folded into G, C', c.
+
+    Returns Xa (B, N, n_u) (a view of the planes when ``planes``), the analysis variance
+    after RTPS (B, n_u) and the RTPS factor (B, n_u) or None."""
+    K = Ct if f is None else f[:, :, None] * Ct
+    scale = None
+    if rtps > 0.0:
+        scale = rtps_factor(gamma * np.sqrt(var_u), np.sqrt(var_a), rtps)
+        G = gamma * scale
+        K = K * scale[:, None, :]
+        c = scale * ((1.0 - gamma) * xbar_u - mean_a) + mean_a
+        var_a = scale**2 * var_a
+        if bool(np.logical_and.reduce(G > 0.0, axis=None)):
+            work = _write(Xw, u, K / G[:, None, :], planes, G, c)
+        else:
+            work = _write(_per_column(G, planes) * Xw, u, K, planes, None, c)
+    elif gamma == 1.0:
+        work = _write(Xw, u, K, planes)
+    else:
+        # G = gamma everywhere: (X + u K^T / g) g + (1 - g) xbar
+        work = _write(Xw, u, K / gamma, planes, gamma, (1.0 - gamma) * xbar_u)
+    return (work.transpose(1, 2, 0) if planes else work), var_a, scale
+
+
+# --- stage 6: bounds, restore, spread after, result ----------------------------------------
 
 
 def _bounds(bound, name, cols, full, shape, B):
@@ -436,280 +787,83 @@ def _clip(Xa, lo, hi, active):
     return clipped, outside
 
 
-def _per_column(v, planes):
-    """A per-(basin, column) quantity v (B, n) broadcast against the work array: (B, 1, n),
-    or (n, B, 1) on planes."""
-    return np.ascontiguousarray(v.T)[:, :, None] if planes else v[:, None, :]
 
 
-def _add_outer(Xw, u, K, planes, G=None, c=None):
-    """``(Xw + u K^T) G + c`` per basin and column, a new array: Xw (B, N, n) and the result
-    in that layout, or on planes Xw (n, B, N) and the result (n, B, N); u (B, N); K, and G
-    and c if given, (B, n) (G may be a number).
-
-    On planes a large batch is done one plane at a time, so that each plane is still in
-    cache for the next operation; either way each element gets the same operations."""
-    if not planes:
-        out = np.einsum("bi,bn->bin", u, K)
-        out += Xw
-        if G is not None:
-            out *= G if np.ndim(G) == 0 else G[:, None, :]
-        if c is not None:
-            out += c[:, None, :]
-        return out
-    out = np.empty(Xw.shape)
-    KT = np.ascontiguousarray(K.T)
-    GT = None if G is None or np.ndim(G) == 0 else np.ascontiguousarray(G.T)
-    cT = None if c is None else np.ascontiguousarray(c.T)
-    if u.size <= 4096:
-        np.multiply(KT[:, :, None], u[None], out=out)
-        out += Xw
-        if G is not None:
-            out *= G if GT is None else GT[:, :, None]
-        if c is not None:
-            out += cT[:, :, None]
-        return out
-    for j in range(out.shape[0]):  # (over the state columns)
-        plane = np.multiply(u, KT[j][:, None], out=out[j])
-        plane += Xw[j]
-        if G is not None:
-            plane *= G if GT is None else GT[j][:, None]
-        if c is not None:
-            plane += cT[j][:, None]
-    return out
-
-
-def _one_observation(
-    X2, Y2, y2, r2, missing, method, rng, noise, infl, gamma, gate_sigma, lower, upper, cols,
-    full, centre_noise, shape, yshape,
-):
-    """The analysis for one observation per basin: the general formulas with n_obs = 1.
-
-    Shapes as in :func:`_analysis` after flattening the batch: X2 (B, N, n), Y2 (B, N, 1),
-    y2, r2, missing (B, 1). Observation space is a (B, N) vector per quantity, so there are
-    no (B, n_obs, n_obs) matrices and no solve; the gain is the (B, n) vector
-    ``cov(x, h) / (var(h) + R)`` in whitened form. The member weights are kept as
-    ``w = f u`` with a per-basin factor ``f`` moved onto the cross-covariance, which saves
-    a pass over them. C-ordered states are read twice (sums of squares; one contraction
-    with all member vectors); states on planes once per quantity along contiguous members.
-    The analysis is written by one product and one addition. Every member sum and dot
-    product is a per-basin (``vecdot``, ``vecmat``) call, so a basin's numbers never depend
-    on the others in the batch. Returns the :class:`Analysis`."""
-    B, N, n = X2.shape
-    enkf = method == "enkf"
-    # Member axis fastest in memory, each state a (basin, member) plane (the engine's
-    # layout: a model's (batch, n_state) array in Fortran order): work on the planes, where
-    # every pass runs along contiguous members, and return the analysis in that layout.
-    st = X2.strides
-    planes = st[1] == X2.itemsize and (B == 1 or st[0] == N * X2.itemsize)
-    XT = X2.transpose(2, 0, 1) if planes else None  # (n, B, N)
-    plain_g = gamma == 1.0
-    ones = np.empty(N)
-    ones.fill(1.0)
-    # The member vectors contracted with the states, V (B, k, N): ones (member sums), the
-    # whitened predicted perturbations y' and, for enkf, the weights u. On planes each is
-    # its own contiguous (B, N) array, contracted with each plane.
-    V = None if planes else np.empty((B, 3 if enkf else 2, N))
-    ybar = np.vecdot(Y2[:, :, 0], ones) / N
-    if planes:
-        yp = np.subtract(Y2[:, :, 0], ybar[:, None])
-    else:
-        V[:, 0] = 1.0
-        yp = np.subtract(Y2[:, :, 0], ybar[:, None], out=V[:, 1])
-    var_y = np.vecdot(yp, yp) / (N - 1)
-    r1 = r2[:, 0]
-    innovation = y2[:, 0] - ybar
-    innovation_variance = (var_y if plain_g else gamma**2 * var_y) + r1
-
-    # Sums of squares of the prior states (one pass); a NaN or infinite state shows in them.
-    xsq = np.vecdot(XT, XT).T if planes else np.einsum("bin,bin->bn", X2, X2)
-    if not cols.size:
-        states_ok = np.zeros(B, bool)
-    else:
-        states_ok = np.logical_and.reduce(np.isfinite(xsq if full else xsq[:, cols]), axis=1)
-    present = ~missing[:, 0]
-    usable = present & np.isfinite(innovation) & np.isfinite(var_y) & states_ok
-    invalid = present ^ usable
-    if gate_sigma:
-        # (the variance can be negative only where the reading is missing, hence unusable)
-        limit = gate_sigma * np.sqrt(np.maximum(innovation_variance, 0.0))
-        gated = usable & (np.abs(innovation) > limit)
-        used = usable ^ gated
-    else:
-        gated = np.zeros(B, bool)
-        used = usable
-    all_used = bool(np.logical_and.reduce(used))
-
-    # Whitening: an unused observation gets weight 0, so it contributes exactly nothing.
-    if all_used:
-        s = 1.0 / np.sqrt(r1)
-        dw = innovation * s
-        a = var_y * (s * s)
-    else:
-        s = np.where(used, 1.0 / np.sqrt(np.where(used, r1, 1.0)), 0.0)
-        yp[~used] = 0.0
-        dw = np.where(used, innovation, 0.0) * s
-        a = np.where(used, var_y, 0.0) * (s * s)
-    yp *= s[:, None]
-    if not plain_g:
-        a = gamma**2 * a  # whitened predicted variance, inflated
-    ysum = np.vecdot(yp, ones)  # (zero but for rounding)
-
-    if enkf:
-        # Burgers et al. (1998): w_i = g^2 (a + 1)^-1 (d + z_i - g y'_i) = f u_i
-        z = noise.reshape(B, N) if noise is not None else rng.standard_normal((B, N))
-        if centre_noise:
-            # Centring z_i - mean(z) is folded into the innovation: d - mean(z) + z_i.
-            dw = dw - np.vecdot(z, ones) / N
-        f = gamma**2 / (1.0 + a)
-        u = None if planes else V[:, 2]
-        if plain_g:
-            u = np.subtract(z, yp, out=u)
-        else:
-            u = np.multiply(yp, -gamma, out=u)
-            u += z
-        u += dw[:, None]
-        usum = np.vecdot(u, ones)
-        ubar = usum / N
-        # sum of (u - ubar)^2 from sums: u is z plus small terms, its spread about 1 and its
-        # mean the whitened innovation, so this loses nothing unless the innovation is
-        # thousands of spreads (such basins are recomputed from the states below)
-        uu = np.vecdot(u, u) - usum * ubar
-        wbar = f * ubar
-    else:
-        # Hunt et al. (2007), eqs. 20 and 24: w_i = wbar + p y'_i = p u_i
-        wbar = gamma**2 * dw / (1.0 + a)
-        f = gamma**3 * _sqrt_weight(a)
-        u = yp + (wbar / f)[:, None]
-
-    # The member sums, X^T y' and (enkf) X^T u: one pass over the states for all, or on
-    # planes one pass each along contiguous members.
-    if planes:
-        vectors = (ones, yp, u) if enkf else (ones, yp)
-        sums = np.empty((n, B, len(vectors)))
-        for k, v in enumerate(vectors):
-            np.vecdot(XT, v, out=sums[:, :, k])
-        sums = sums.transpose(1, 2, 0)  # (B, k, n)
-    else:
-        sums = _cross(X2, V)
-    xsum = sums[:, 0]
-    xbar = xsum / N
-    var_b = _variance(X2, xsum, xsq)
-    # Cross-covariance (B, n) from the raw states: y' sums to zero over members, so
-    # y'^T X equals y'^T X'; the second term removes what rounding leaves.
-    Ct = (sums[:, 1] - ysum[:, None] * xbar) / (N - 1)
-    if enkf:
-        # w' = f (u - ubar): w'^T X' = f (X^T u - sum(u) xbar) and w'^T w'
-        WX = f[:, None] * (sums[:, 2] - usum[:, None] * xbar)
-        WtW = f * f * uu
-    if full:
-        Xu, xbar_u, var_u = X2, xbar, var_b
-    else:
-        Xu, xbar_u, var_u, Ct = X2[:, :, cols], xbar[:, cols], var_b[:, cols], Ct[:, cols]
-        if enkf:
-            WX = WX[:, cols]
-    if not enkf:
-        # w' = p y', so w'^T X' = (N - 1) p C and w'^T w' = (N - 1) p^2 a / g^2.
-        WX = (N - 1) * (f[:, None] * Ct)
-        WtW = ((N - 1) / gamma**2) * (f * a * f)
-    if infl.rtpp > 0.0:
-        # RTPP with X'a = g X' + w' C^T and X'b = g X' relaxes the weight perturbations
-        # towards zero: the increment's spread part shrinks, nothing else changes.
-        shrink = 1.0 - infl.rtpp
-        ubar = wbar / f
-        u = ubar[:, None] + relax_to_prior_perturbations(u - ubar[:, None], 0.0, infl.rtpp)
-        WX = shrink * WX
-        WtW = shrink**2 * WtW
-    # Analysis spread and mean from small quantities, X'a = g X' + w' C^T:
-    # sum X'a^2 = g^2 sum X'^2 + 2 g C (w'^T X') + C^2 (w'^T w').
-    var_a = ((gamma**2 * (N - 1)) * var_u + Ct * ((2.0 * gamma) * WX + WtW[:, None] * Ct)) / (
-        N - 1
-    )
-    mean_a = xbar_u + wbar[:, None] * Ct
-    # basins whose spreads are recomputed from the states: the analysis spread lost most of
-    # the prior's, or the mean is too large for sums of squares (also that of u, enkf)
-    exact = (var_a > (1e-6 * gamma**2) * var_u) & (mean_a * mean_a <= _CANCELLATION_RATIO * var_a)
-    lost = ~np.logical_and.reduce(exact, axis=1)
-    if enkf:
-        lost |= ~(ubar * ubar <= (_CANCELLATION_RATIO / (N - 1)) * uu)
-    lost &= used
-
-    # The analysis in one pass: Xa = G X + u (f C')^T + c per basin and column, inflation
-    # and RTPS (the scaled analysis perturbations about the analysis mean) folded into G,
-    # C', c.
-    K = f[:, None] * Ct
-    Xw = Xu if not planes else XT if full else XT[cols]
-    if infl.rtps > 0.0:
-        scale = rtps_factor(gamma * np.sqrt(var_u), np.sqrt(var_a), infl.rtps)
-        G = gamma * scale
-        K = K * scale
-        c = scale * ((1.0 - gamma) * xbar_u - mean_a) + mean_a
-        var_a = scale**2 * var_a
-        if bool(np.logical_and.reduce(G > 0.0, axis=None)):
-            work = _add_outer(Xw, u, K / G, planes, G, c)
-        else:
-            work = _add_outer(_per_column(G, planes) * Xw, u, K, planes, None, c)
-    elif plain_g:
-        work = _add_outer(Xw, u, K, planes)
-    else:
-        # G = gamma everywhere: (X + u K^T / g) g + (1 - g) xbar
-        work = _add_outer(Xw, u, K / gamma, planes, gamma, (1.0 - gamma) * xbar_u)
-    Xa = work.transpose(1, 2, 0) if planes else work
-    if infl.rtps > 0.0 and lost.any():
-        _redo_rtps(Xa, lost, scale, gamma * np.sqrt(var_u[lost]), infl.rtps)
-
+def _clip_to_bounds(Xa, lower, upper, cols, shape, active):
+    """Clip the analysis Xa (B, N, n_u) in place to the bounds, basins ``active`` only.
+    Returns the clipped water (B, n) (mm summed over members, 0 outside ``cols``) and
+    which basins had a member outside (B,) bool, or None when there is nothing to clip."""
+    B = Xa.shape[0]
+    n = shape[-1]
     clipped = np.zeros((B, n))
-    outside = None
-    if lower is not None or upper is not None:
-        lo = None if lower is None else _bounds(lower, "lower", cols, full, shape, B)
-        hi = None if upper is None else _bounds(upper, "upper", cols, full, shape, B)
-        if lo is not None or hi is not None:
-            clipped[:, cols], outside = _clip(Xa, lo, hi, used)
+    if lower is None and upper is None:
+        return clipped, None
+    full = cols.size == n
+    lo = None if lower is None else _bounds(lower, "lower", cols, full, shape, B)
+    hi = None if upper is None else _bounds(upper, "upper", cols, full, shape, B)
+    if lo is None and hi is None:
+        return clipped, None
+    clipped[:, cols], outside = _clip(Xa, lo, hi, active)
+    return clipped, outside
 
-    if full:
+
+def _restore(Xa, X2, cols, active, all_active):
+    """The analysis of every column (B, N, n), in the states' layout: the updated columns
+    from Xa, the others and the basins not ``active`` the prior bit for bit."""
+    if cols.size == X2.shape[2]:
         out = Xa
     else:
         out = X2.copy(order="K")
         out[:, :, cols] = Xa
-    if not all_used:
-        out[~used] = X2[~used]
+    if not all_active:
+        out[~active] = X2[~active]
+    return out
 
-    # Spread after: unchanged columns and basins keep the prior value; the updated ones
-    # come from the small-quantity formula unless clipping or cancellation call for the
-    # two-pass computation.
-    redo = lost if outside is None else outside | lost
+
+def _spread_after(out, var_b, var_a, cols, active, all_active, redo):
+    """Ensemble variance after the analysis (B, n): unchanged columns and basins keep the
+    prior value, the updated ones come from the small-quantity formula (var_a, B x n_u)
+    except the basins ``redo`` (clipped or imprecise), recomputed from the states."""
+    full = cols.size == var_b.shape[1]
     any_redo = bool(np.logical_or.reduce(redo))
-    if full and all_used and not any_redo:
-        var_after = var_a
+    if full and all_active and not any_redo:
+        return var_a
+    var_after = var_b.copy()
+    keep = active & ~redo
+    if full:
+        var_after[keep] = var_a[keep]
     else:
-        var_after = var_b.copy()
-        keep = used & ~redo
-        if full:
-            var_after[keep] = var_a[keep]
-        else:
-            var_after[np.ix_(keep, cols)] = var_a[keep]
-        if any_redo:
-            var_after[redo] = _variance_of(out, redo)
+        var_after[np.ix_(keep, cols)] = var_a[keep]
+    if any_redo:
+        var_after[redo] = _variance_of(out, redo)
+    return var_after
 
-    batch = yshape[:-1]
+
+def _result(out, innovation, innovation_variance, var_y, var_b, var_after, used, gated, missing,
+            invalid, clipped, active, all_used, shape, yshape):
+    """The :class:`Analysis`, reshaped to the caller's batch."""
     if not all_used:
-        bad = missing[:, 0] | ~np.isfinite(innovation)
+        bad = missing | ~np.isfinite(innovation)
         innovation = np.where(bad, np.nan, innovation)
         innovation_variance = np.where(bad, np.nan, innovation_variance)
+    state_shape = shape[:-2] + (shape[-1],)
     return Analysis(
         states=out.reshape(shape),
         innovation=innovation.reshape(yshape),
         innovation_variance=innovation_variance.reshape(yshape),
         predicted_spread=np.sqrt(var_y).reshape(yshape),
-        spread_before=np.sqrt(var_b).reshape(shape[:-2] + (n,)),
-        spread_after=np.sqrt(var_after).reshape(shape[:-2] + (n,)),
+        spread_before=np.sqrt(var_b).reshape(state_shape),
+        spread_after=np.sqrt(var_after).reshape(state_shape),
         used=used.reshape(yshape),
         gated=gated.reshape(yshape),
         missing=missing.reshape(yshape),
         invalid=invalid.reshape(yshape),
-        clipped=clipped.reshape(shape[:-2] + (n,)),
-        updated=used.reshape(batch),
+        clipped=clipped.reshape(state_shape),
+        updated=active.reshape(shape[:-2]),
     )
+
+
+# --- the analysis ---------------------------------------------------------------------------
 
 
 def ensemble_update(
@@ -778,245 +932,91 @@ def ensemble_update(
         Shapes that do not fit, an unknown method, ``enkf`` without ``rng`` or
         ``obs_noise``, or a non-positive ``obs_variance`` at a present reading.
     """
-    return _analysis(
-        states, predicted, observed, obs_variance, method, rng, inflation, gate_sigma, lower,
-        upper, update_mask, transform, obs_noise, centre_noise, True,
+    X2, Y2, y2, r2, missing, cols, noise, shape, yshape = _prepare(
+        states, predicted, observed, obs_variance, method, rng, update_mask, transform, obs_noise
     )
-
-
-def _analysis(
-    states, predicted, observed, obs_variance, method, rng, inflation, gate_sigma, lower,
-    upper, update_mask, transform, obs_noise, centre_noise, fused,
-):
-    """:func:`ensemble_update`; ``fused`` takes the one-observation path when n_obs = 1
-    (False: the general path for any n_obs, the reference in the tests)."""
-    X, Y, y, r, mask, noise = _check(
-        states, predicted, observed, obs_variance, method, update_mask, obs_noise
-    )
-    if method == "enkf" and noise is None and rng is None:
-        _fail("method 'enkf' needs rng or obs_noise for the perturbed observations", "rng")
     infl = _NO_INFLATION if inflation is None else inflation
     gamma = float(infl.multiplicative)
-    batch, N, n, m = X.shape[:-2], X.shape[-2], X.shape[-1], Y.shape[-1]
-    B = math.prod(batch)
-    X2 = X.reshape(B, N, n)
-    Y2 = Y.reshape(B, N, m)
-    y2 = y.reshape(B, m)
-    r2 = np.ascontiguousarray(r).reshape(B, m)
-
-    missing = ~(np.isfinite(y2) & np.isfinite(r2))
-    bad = r2 <= 0.0  # (NaN compares False; where the reading is missing it is allowed)
-    if bad.any() and (bad := bad & ~missing).any():
-        b, j = np.argwhere(bad)[0]
-        _fail(
-            f"must be > 0 where a reading is present, got {r2[b, j]!r}",
-            "obs_variance",
-            f"batch index {np.unravel_index(b, batch) if batch else ()}, observation {j}",
-        )
-    if transform is not None and transform.kind != "none":
-        y2 = transform.forward(y2)
-        Y2 = transform.forward(Y2)
-
-    cols = np.arange(n) if mask is None else np.flatnonzero(mask)
+    B, N, n = X2.shape
+    m = Y2.shape[2]
     full = cols.size == n
-    if fused and m == 1:
-        return _one_observation(
-            X2, Y2, y2, r2, missing, method, rng, noise, infl, gamma, gate_sigma, lower, upper,
-            cols, full, centre_noise, X.shape, y.shape,
-        )
-
-    serial = method == "eakf" and m > 1
-    # The vectors contracted with the states in one pass, V (basin, k, member): ones (member
-    # sums), the whitened predicted perturbations Y' (for the serial adjustment, those of
-    # each observation at its turn) and, for enkf and the serial adjustment, the centred
-    # weights W'. Observation space is kept transposed, the member axis the fast one.
-    k = 1 + m + (m if method == "enkf" or serial else 0)
-    V = np.empty((B, k, N))
-    V[:, 0] = 1.0
-    Ypw = V[:, 1 : 1 + m]
-    ybar = _sum(Y2) / N
-    np.subtract(np.swapaxes(Y2, 1, 2), ybar[:, :, None], out=Ypw)
-    var_y = np.einsum("bmi,bmi->bm", Ypw, Ypw) / (N - 1)
-    innovation = y2 - ybar
-    innovation_variance = gamma**2 * var_y + r2
-
-    # Sums of squares of the prior states (one pass); a NaN or infinite state shows in them.
-    xsq = np.einsum("bin,bin->bn", X2, X2)
-    states_ok = np.isfinite(xsq[:, cols]).all(axis=-1) if cols.size else np.zeros(B, bool)
-
-    usable = ~missing & np.isfinite(innovation) & np.isfinite(var_y) & states_ok[:, None]
-    invalid = ~missing & ~usable
-    if gate_sigma:
-        # (the variance can be negative only where the reading is missing, hence unusable)
-        gated = usable & (np.abs(innovation) > gate_sigma * np.sqrt(np.maximum(innovation_variance, 0.0)))
+    XT = _planes_of(X2)
+    planes = XT is not None
+    ones = np.empty(N)
+    ones.fill(1.0)
+    # The member vectors contracted with the states in one pass, V (B, k, N): ones (member
+    # sums), the whitened predicted perturbations Y' and, for enkf and the serial
+    # adjustment, the weights. Observation space is kept transposed, the member axis fast.
+    # On planes each vector is its own contiguous (B, N) array, contracted with each plane.
+    contract_u = method == "enkf" or (method == "eakf" and m > 1)
+    k = 1 + m + (m if contract_u else 0)
+    if planes:
+        V = np.empty((k, B, N)).transpose(1, 0, 2)  # (row 0 unused: the contraction uses ``ones``)
     else:
-        gated = np.zeros_like(usable)
-    used = usable & ~gated
-    active = used.any(axis=-1)
+        V = np.empty((B, k, N))
+        V[:, 0] = 1.0
+    Yp = V[:, 1 : 1 + m]
+    U = V[:, 1 + m :] if contract_u else None
 
-    # Whitening: unused observations get weight 0, so they contribute exactly nothing.
-    all_used = bool(used.all())
-    if all_used:
-        s = 1.0 / np.sqrt(r2)
-    else:
-        s = np.where(used, 1.0 / np.sqrt(np.where(used, r2, 1.0)), 0.0)
-        Ypw[~used] = 0.0
-    Ypw *= s[:, :, None]
-    dw = np.where(used, innovation, 0.0) * s
-    A = gamma**2 * np.einsum("bmi,bki->bmk", Ypw, Ypw) / (N - 1)
+    # Observation space, screening, whitening.
+    ybar, var_y, innovation, innovation_variance = _predicted(Y2, y2, r2, gamma, Yp, ones)
+    xsq, states_ok = _squares(X2, XT, cols)
+    used, gated, invalid = _screen(missing, innovation, var_y, innovation_variance, states_ok,
+                                   gate_sigma)
+    active = used[:, 0] if m == 1 else np.logical_or.reduce(used, axis=1)
+    all_used = bool(np.logical_and.reduce(used, axis=None))
+    all_active = all_used or bool(np.logical_and.reduce(active))
+    s, dw, a = _whiten(Yp, var_y, innovation, r2, used, all_used, gamma)
 
-    W = P = p = None
-    if serial:
-        ybar_w = np.where(used, ybar, 0.0) * s
-        y_w = np.where(used, y2, 0.0) * s
-        W, YP, inv_var = _eakf_observation_space(Ypw, ybar_w, y_w, used, gamma)
-        Ypw[...] = YP
-        wbar = W.mean(axis=2)
-        Wc = np.subtract(W, wbar[:, :, None], out=V[:, 1 + m :])
-    else:
-        z = None
-        if method == "enkf":
-            z = noise.reshape(B, N, m) if noise is not None else rng.standard_normal((B, N, m))
-            z = np.swapaxes(z, 1, 2)
-            if not all_used and m > 1:  # (with one observation unused basins are restored)
-                z = np.where(used[:, :, None], z, 0.0)
-            if centre_noise:
-                # Centring z_i - mean(z) is folded into the innovation: d - mean(z) + z_i.
-                dw = dw - np.add.reduce(z, axis=2) / N
-        if m == 1:
-            zj = None if z is None else z[:, 0]
-            w, p, wbar = _weights_one(method, dw[:, 0], Ypw[:, 0], A[:, 0, 0], zj, gamma)
-            W = w[:, None, :]
-            P = None if p is None else p[:, None, None]
-        else:
-            W, P, wbar = _weights(method, dw, Ypw, A, z, gamma)
-        if method == "enkf":
-            wbar = np.add.reduce(W, axis=2) / N
-            Wc = np.subtract(W, wbar[:, :, None], out=V[:, 1 + m :])
-        else:
-            wbar = wbar.reshape(B, m)
-
-    # One pass over the prior states for the member sums, X^T Y' and (enkf, serial) X^T W'.
-    sums = _cross(X2, V)
-    xsum = sums[:, 0]
-    xbar = xsum / N
-    var_b = _variance(X2, xsum, xsq)
-
-    Xu = X2 if full else X2[:, :, cols]
-    xbar_u = xbar if full else xbar[:, cols]
-    var_u = var_b if full else var_b[:, cols]
-    # Cross-covariance C^T (B, n_obs, n_u) from the raw states: Y' sums to zero over
-    # members, so Y'^T X equals Y'^T X'; the second term removes what rounding leaves.
-    Ct = (sums[:, 1 : 1 + m] - Ypw.sum(axis=2)[:, :, None] * xbar[:, None, :]) / (N - 1)
-    if not full:
-        Ct = Ct[:, :, cols]
-    if serial:
-        # The increment's "cross-covariance" is the regression coefficients; the prior
-        # states enter inflated, X_1 = xbar + g X'.
-        Ct = _eakf_regression(gamma * Ct, W, Ypw, inv_var)
-
-    # Analysis spread and mean from small quantities, X'a = g X' + W'^T C^T:
-    # sum X'a^2 = g^2 sum X'^2 + 2 g C.(W' X') + C (W' W'^T) C^T.
-    if method == "enkf" or serial:
-        WX = sums[:, 1 + m :] - Wc.sum(axis=2)[:, :, None] * xbar[:, None, :]
-        if not full:
-            WX = WX[:, :, cols]
-        WtW = np.einsum("bmi,bki->bmk", Wc, Wc)
-    else:
-        # W' = P Y', so W' X' = (N - 1) P C^T and W' W'^T = (N - 1) P A P / g^2.
-        WX = (N - 1) * (P @ Ct)
-        WtW = ((N - 1) / gamma**2) * (P @ A @ P)
-    if infl.rtpp > 0.0:
-        # RTPP with X'a = g X' + W'^T C^T and X'b = g X' relaxes the weight perturbations
-        # W' towards zero: the increment's spread part shrinks, nothing else changes.
-        shrink = 1.0 - infl.rtpp
-        W = wbar[:, :, None] + relax_to_prior_perturbations(W - wbar[:, :, None], 0.0, infl.rtpp)
-        w = W[:, 0]
-        WX = shrink * WX
-        WtW = shrink**2 * WtW
-    var_a = (
-        gamma**2 * (N - 1) * var_u
-        + 2.0 * gamma * np.einsum("bmn,bmn->bn", Ct, WX)
-        + np.einsum("bmn,bmk,bkn->bn", Ct, WtW, Ct)
-    ) / (N - 1)
-    mean_a = xbar_u + np.einsum("bm,bmn->bn", wbar, Ct)
-    lost = ~(var_a > 1e-6 * gamma**2 * var_u) | ~(mean_a * mean_a <= _CANCELLATION_RATIO * var_a)
-    lost = np.logical_or.reduce(lost, axis=-1) & active  # basins whose spreads are recomputed from the states
-
-    # The analysis in one pass over the states: Xa = G X + W^T C'^T + c, per basin and
-    # column, with inflation (inflation.inflate) and RTPS (the scaled analysis
-    # perturbations about the analysis mean) folded into G, C' and c.
-    G = None  # (only needed when the update is not plain: gamma != 1 or RTPS)
-    Cs = Ct
-    c = (1.0 - gamma) * xbar_u if gamma != 1.0 else None
-    if infl.rtps > 0.0:
-        scale = rtps_factor(gamma * np.sqrt(var_u), np.sqrt(var_a), infl.rtps)
-        G = gamma * scale
-        Cs = Ct * scale[:, None, :]
-        c = scale * ((1.0 - gamma) * xbar_u - mean_a) + mean_a
-        var_a = scale**2 * var_a
-    plain = c is None
-    if not plain and G is None:
-        G = np.full_like(var_a, gamma)
-    divide = not plain and bool(np.all(G > 0.0))
-    if divide:
-        Cs = Cs / G[:, None, :]
+    # Member weights (W = f u).
+    z = None
+    if method == "enkf":
+        z = _perturbations(noise, rng, B, N, m)
+        if centre_noise:
+            # Centring z_i - mean(z) is folded into the innovation: d - mean(z) + z_i.
+            dw = dw - np.vecdot(z, ones) / N
     if m == 1:
-        Xa = np.einsum("bi,bn->bin", w, Cs[:, 0])
+        u, f, wbar, terms = _scalar_weights(method, Yp, dw, a, z, gamma, U, ones)
     else:
-        Xa = np.matmul(np.ascontiguousarray(np.swapaxes(W, 1, 2)), Cs)
-    if plain:
-        Xa += Xu
-    elif divide:
-        Xa += Xu
-        Xa *= G[:, None, :]
-        Xa += c[:, None, :]
+        f = None
+        u, wbar, terms = _matrix_weights(method, Yp, dw, z, gamma, U, s, ybar, y2, used)
+
+    # One pass over the prior states for the member sums, X^T Y' and (enkf, serial) X^T U;
+    # the prior mean and variance.
+    sums = _contract(X2, XT, V, ones)
+    xbar = sums[:, 0] / N
+    var_b = _variance(X2, sums[:, 0], xsq)
+    if not full:
+        sums, xbar = sums[:, :, cols], xbar[:, cols]
+    var_u = var_b if full else var_b[:, cols]
+    # Cross-covariance C^T (B, m, n_u) from the raw states: Y' sums to zero over members, so
+    # Y'^T X equals Y'^T X'; the second term removes what rounding leaves.
+    ysum = np.vecdot(Yp, ones)
+    Ct = (sums[:, 1 : 1 + m] - ysum[:, :, None] * xbar[:, None, :]) / (N - 1)
+    if m == 1:
+        Ct, WX, WtW, imprecise = _scalar_terms(method, N, sums, Ct, xbar, f, terms, gamma)
     else:
-        Xa += G[:, None, :] * Xu
-        Xa += c[:, None, :]
+        Ct, WX, WtW, imprecise = _matrix_terms(method, N, sums, Ct, xbar, U, Yp, terms, gamma)
+
+    # Inflation and the analysis moments.
+    if infl.rtpp > 0.0:
+        u, WX, WtW = _relax_weights(u, f, wbar, WX, WtW, infl.rtpp)
+    var_a, mean_a = _moments(Ct, WX, WtW, wbar, xbar, var_u, gamma, N)
+    lost = _lost(var_a, mean_a, var_u, gamma, active, imprecise)
+
+    # The update, in one pass over the states.
+    if planes:
+        Xw = XT if full else XT[cols]
+    else:
+        Xw = X2 if full else X2[:, :, cols]
+    Xa, var_a, scale = _update(Xw, u, f, Ct, var_u, var_a, mean_a, xbar, gamma, infl.rtps, planes)
     if infl.rtps > 0.0 and lost.any():
         _redo_rtps(Xa, lost, scale, gamma * np.sqrt(var_u[lost]), infl.rtps)
 
-    clipped = np.zeros((B, n))
-    outside = np.zeros(B, bool)
-    if lower is not None or upper is not None:
-        lo = None if lower is None else _bounds(lower, "lower", cols, full, X.shape, B)
-        hi = None if upper is None else _bounds(upper, "upper", cols, full, X.shape, B)
-        clipped[:, cols], outside = _clip(Xa, lo, hi, active)
-
-    if full:
-        out = Xa
-    else:
-        out = X2.copy()
-        out[:, :, cols] = Xa
-    if not active.all():
-        out[~active] = X2[~active]
-
-    # Spread after: unchanged columns and basins keep the prior value; the updated ones
-    # come from the small-quantity formula unless clipping, relaxation, the serial path or
-    # cancellation call for the two-pass computation.
-    var_after = var_b.copy()
-    redo = outside | lost  # basins whose spread after is recomputed from the states
-    keep = active & ~redo
-    if full:
-        var_after[keep] = var_a[keep]
-    else:
-        var_after[np.ix_(keep, cols)] = var_a[keep]
-    if redo.any():
-        var_after[redo] = _variance_of(out, redo)
-
-    invalid_innov = missing | ~np.isfinite(innovation)
-    return Analysis(
-        states=out.reshape(X.shape),
-        innovation=np.where(invalid_innov, np.nan, innovation).reshape(y.shape),
-        innovation_variance=np.where(invalid_innov, np.nan, innovation_variance).reshape(y.shape),
-        predicted_spread=np.sqrt(var_y).reshape(y.shape),
-        spread_before=np.sqrt(var_b).reshape(batch + (n,)),
-        spread_after=np.sqrt(var_after).reshape(batch + (n,)),
-        used=used.reshape(y.shape),
-        gated=gated.reshape(y.shape),
-        missing=missing.reshape(y.shape),
-        invalid=invalid.reshape(y.shape),
-        clipped=clipped.reshape(batch + (n,)),
-        updated=active.reshape(batch),
-    )
+    # Bounds, restore, spread after, result.
+    clipped, outside = _clip_to_bounds(Xa, lower, upper, cols, shape, active)
+    out = _restore(Xa, X2, cols, active, all_active)
+    redo = lost if outside is None else outside | lost
+    var_after = _spread_after(out, var_b, var_a, cols, active, all_active, redo)
+    return _result(out, innovation, innovation_variance, var_y, var_b, var_after, used, gated,
+                   missing, invalid, clipped, active, all_used, shape, yshape)
