@@ -71,17 +71,10 @@ def _day(text, what: str) -> int:
 
 
 def _model(cfg: Config, basins: xr.Dataset):
-    import importlib
-
+    """The registered model of ``basins`` (plugins were imported when ``cfg`` was loaded)."""
     from assim import models
-    from assim.errors import ConfigError, InputError
+    from assim.errors import InputError
 
-    for name in cfg["model"]["plugins"]:
-        try:
-            importlib.import_module(name)
-        except ImportError as exc:
-            raise ConfigError(f"cannot import model plugin ({exc})", file=cfg.source,
-                              variable="model.plugins", place=name) from None
     try:
         return models.get(basins.attrs["model"])
     except KeyError as exc:
