@@ -1,6 +1,6 @@
 """Load and validate the configuration (one YAML file, one JSON schema).
 
-The schema ``config/schemas/config.schema.yaml`` documents every key and its default; the CLI
+The schema ``assim/schemas/config.schema.yaml`` (package data) documents every key and its default; the CLI
 and the Snakefile validate against the same file. Unknown keys are errors. Validating a config
 imports its model plugins (``model.plugins``), so a user model is registered before anything
 reads a basin.
@@ -20,7 +20,8 @@ import yaml
 
 from assim.errors import ConfigError
 
-SCHEMA_PATH = Path(__file__).resolve().parents[1] / "config" / "schemas" / "config.schema.yaml"
+# Package data: installed with assim, so a wheel validates configs without the repository.
+SCHEMA_PATH = Path(__file__).resolve().parent / "schemas" / "config.schema.yaml"
 
 
 class Config(dict):

@@ -1,9 +1,11 @@
 """Tests of assim.config: one schema, every default documented, unknown keys refused."""
 
+from pathlib import Path
+
 import pytest
 import yaml
 
-from assim.config import SCHEMA_PATH, load_config, read_schema, validate
+from assim.config import load_config, read_schema, validate
 from assim.errors import ConfigError
 
 
@@ -37,7 +39,7 @@ def test_defaults_are_valid_against_the_schema_itself():
 
 
 def test_demo_config_is_valid():
-    cfg = load_config(SCHEMA_PATH.parents[1] / "config.yaml")
+    cfg = load_config(Path(__file__).resolve().parents[1] / "config" / "config.yaml")
     assert cfg["data"]["raw"] == "sample_basin"
 
 
