@@ -180,8 +180,8 @@ def _progress(cfg: Config, label: str):
 def _attrs(cfg: Config, model, settings, summary=None) -> dict[str, str]:
     out = {
         "model": model.name,
-        "members": str(settings.members),
-        "seed": str(settings.seed),
+        "members": int(settings.members),
+        "seed": int(settings.seed),
         "filter_method": settings.method if settings.assimilate else "none",
         "updated_states": " ".join(settings.update_states),
         "config_digest": cfg.digest(),
@@ -196,8 +196,8 @@ def _health_attrs(summary, inputs) -> dict[str, str]:
     frac = np.where(n > 0, summary.n_gated / np.maximum(n, 1), 0.0)
     return {
         "warnings": " | ".join(summary.warnings) if summary.warnings else "none",
-        "readings_used": str(int(summary.n_used.sum())),
-        "readings_gated": str(int(summary.n_gated.sum())),
+        "readings_used": int(summary.n_used.sum()),
+        "readings_gated": int(summary.n_gated.sum()),
         "gated_fraction_by_basin": " ".join(f"{b}={f:.3f}" for b, f in zip(inputs.basin_ids, frac, strict=True)),
         "ensemble_collapse": " ".join(
             f"{b}" for b, c in zip(inputs.basin_ids, summary.first_collapse, strict=True) if c >= 0) or "none",
@@ -368,7 +368,7 @@ def _hindcast(cfg: Config) -> xr.Dataset:
             "days": inputs.days[issues],
             **{n: np.stack([p[n] for p in parts], axis=1) for n in ("precipitation", "pet")}})
     path = paths.hindcast(cfg)
-    attrs = {**_attrs(cfg, model, base), "forcing": kind, "every_days": str(every)}
+    attrs = {**_attrs(cfg, model, base), "forcing": kind, "every_days": every}
     attrs.pop("filter_method")
     with HindcastWriter(path, basins=inputs.basin_ids, issue_days=inputs.days[issues], leads=leads,
                         members=base.members, float32=base.float32, attrs=attrs) as writer:

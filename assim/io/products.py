@@ -32,9 +32,8 @@ from xarray.backends.netCDF4_ import NETCDF4_PYTHON_LOCK
 
 from assim.errors import InputError
 from assim.io.common import (
-    CONTRACT_ORDER,
-    LABELS,
     atomic_path,
+    attribute_values,
     global_attributes,
     labels_from_file,
     labels_to_file,
@@ -54,6 +53,16 @@ DISCHARGE_ATTRS = {
     "units": "m3 s-1",
 }
 OBS_STATUS = {"used": 0, "missing": 1, "gated": 2, "rejected": 3}
+# Simulated discharge of a day is the mean over the day (the model's daily step), bounded by
+# the variable ``time_bnds`` (CF-1.8 section 7.3).
+DAILY_MEAN = {"cell_methods": "time: mean"}
+# Engine array -> variable of analysis.nc: a reader of `discharge` gets the analysis.
+_ANALYSIS_NAMES = {
+    "discharge": "discharge_background",
+    "discharge_analysis": "discharge",
+    "discharge_quantile": "discharge_background_quantile",
+    "discharge_analysis_quantile": "discharge_quantile",
+}
 EXPERIMENTS = ("openloop", "assimilation")
 
 
@@ -109,8 +118,8 @@ class _StreamedFile:
 
     # helpers
     def _basin(self, basins):
-        # a string label, not a coordinate variable (assim.io.common.LABELS)
-        v = self.nc.createVariable(LABELS["basin"], str, ("basin",))
+        # string labels named like their dimension (assim.io.common.LABELS)
+        v = self.nc.createVariable("basin", str, ("basin",))
         v[:] = np.array([str(b) for b in basins], dtype=object)
         v.cf_role = "timeseries_id"
         v.long_name = "basin identifier"
@@ -168,10 +177,12 @@ class RunWriter(_StreamedFile):
         ``write_block`` indices count from the first of ``days``
     attrs : extra global attributes
 
-    ``write_block(start, arrays)`` writes arrays covering output days
+    ``write_block(start, arrays)`` writes the engine's arrays covering output days
     ``start .. start + n - 1``: ``discharge``, ``discharge_analysis`` and the states and
     parameters (basin, n, member), or ``discharge_quantile`` (and
     ``discharge_analysis_quantile``) (basin, n, quantile), and the diagnostics (basin, n).
+    In an assimilation run's file the analysis is ``discharge`` and the engine's
+    ``discharge`` (the background) is ``discharge_background`` (:data:`_ANALYSIS_NAMES`).
     """
 
     def __init__(
@@ -227,6 +238,10 @@ class RunWriter(_StreamedFile):
         nc.createDimension("time", nt)
         self._basin(self.basins)
         self._days("time", self.days, "day of the simulated discharge")
+        nc.createDimension("nv", 2)
+        nc.variables["time"].bounds = "time_bnds"
+        v = nc.createVariable("time_bnds", "i4", ("time", "nv"))
+        v[:] = np.stack([self.days, self.days + 1], axis=1).astype(np.int32)  # the UTC day [d, d + 1)
         cb = max(1, min(nb, 64))
         diag_chunks = (cb, self.time_chunk)
         if self.quantiles is None:
@@ -234,20 +249,21 @@ class RunWriter(_StreamedFile):
             self._int_coord("member", np.arange(self.members), long_name="ensemble member")
             ens_dims = ("basin", "member", "time")  # on disk: time last (CF-1.8 section 2.4)
             chunks = (1, self.members, self.time_chunk)
+            if self.assimilate:
+                self._float_var(
+                    "discharge_background",
+                    ens_dims,
+                    chunks,
+                    {**DISCHARGE_ATTRS, **DAILY_MEAN,
+                     "long_name": "background discharge (before the day's reading is assimilated)"},
+                )
             self._float_var(
                 "discharge",
                 ens_dims,
                 chunks,
-                {**DISCHARGE_ATTRS, "long_name": "background discharge (before the day's reading is assimilated)"
-                 if self.assimilate else "simulated discharge"},
+                {**DISCHARGE_ATTRS, **DAILY_MEAN,
+                 "long_name": "discharge after the day's update" if self.assimilate else "simulated discharge"},
             )
-            if self.assimilate:
-                self._float_var(
-                    "discharge_analysis",
-                    ens_dims,
-                    chunks,
-                    {**DISCHARGE_ATTRS, "long_name": "discharge after the day's update"},
-                )
             for s in self.state_names:
                 when = "after the update" if self.assimilate else "at the end of the day"
                 self._float_var(s, ens_dims, chunks,
@@ -260,12 +276,13 @@ class RunWriter(_StreamedFile):
             v[:] = np.asarray(self.quantiles)
             v.long_name = "probability of non-exceedance"
             chunks = (cb, len(self.quantiles), self.time_chunk)  # small rows: several basins a chunk
-            self._float_var("discharge_quantile", ("basin", "quantile", "time"), chunks,
-                            {**DISCHARGE_ATTRS, "long_name": "quantiles of the background discharge"
-                             if self.assimilate else "quantiles of the simulated discharge"})
             if self.assimilate:
-                self._float_var("discharge_analysis_quantile", ("basin", "quantile", "time"), chunks,
-                                {**DISCHARGE_ATTRS, "long_name": "quantiles of the discharge after the update"})
+                self._float_var("discharge_background_quantile", ("basin", "quantile", "time"), chunks,
+                                {**DISCHARGE_ATTRS, **DAILY_MEAN,
+                                 "long_name": "quantiles of the background discharge"})
+            self._float_var("discharge_quantile", ("basin", "quantile", "time"), chunks,
+                            {**DISCHARGE_ATTRS, **DAILY_MEAN, "long_name": "quantiles of the discharge after the update"
+                             if self.assimilate else "quantiles of the simulated discharge"})
         if self.assimilate:
             d2 = ("basin", "time")
             self._float_var("observed_discharge", d2, diag_chunks,
@@ -297,7 +314,7 @@ class RunWriter(_StreamedFile):
 
     def _copy_earlier(self):
         with xr.open_dataset(self.earlier, decode_times=False, mask_and_scale=False) as old:
-            names = [n for n, v in self.nc.variables.items() if "time" in v.dimensions and n != "time"
+            names = [n for n, v in self.nc.variables.items() if "time" in v.dimensions and n not in ("time", "time_bnds")
                      and n in old.variables]
             step = self.time_chunk
             for name in names:
@@ -316,7 +333,9 @@ class RunWriter(_StreamedFile):
     def _write_block(self, start: int, arrays: Mapping[str, np.ndarray]) -> None:
         start += self.offset
         n = None
+        names = _ANALYSIS_NAMES if self.assimilate else {}
         for name, values in arrays.items():
+            name = names.get(name, name)
             if name not in self.nc.variables:
                 continue
             values = np.asarray(values)
@@ -330,7 +349,7 @@ class RunWriter(_StreamedFile):
     def set_attributes(self, **attrs) -> None:
         """Global attributes known only at the end (diagnostics, warnings)."""
         with _NC_LOCK:
-            self.nc.setncatts({k: str(v) for k, v in attrs.items()})
+            self.nc.setncatts(attribute_values(attrs))
 
 
 class HindcastWriter(_StreamedFile):
@@ -357,7 +376,7 @@ class HindcastWriter(_StreamedFile):
         nc.createDimension("issue_time", len(self.issue_days))
         nc.createDimension("lead", self.leads)
         nc.createDimension("member", self.members)
-        v = nc.createVariable(LABELS["experiment"], str, ("experiment",))
+        v = nc.createVariable("experiment", str, ("experiment",))
         v[:] = np.array(EXPERIMENTS, dtype=object)
         v.long_name = "origin of the initial states"
         self._basin(self.basins)
@@ -377,7 +396,7 @@ class HindcastWriter(_StreamedFile):
 
     def set_attributes(self, **attrs) -> None:
         with _NC_LOCK:
-            self.nc.setncatts({k: str(v) for k, v in attrs.items()})
+            self.nc.setncatts(attribute_values(attrs))
 
 
 def exceedance_probability(discharge: np.ndarray, thresholds: np.ndarray) -> np.ndarray:
@@ -457,7 +476,7 @@ def write_forecast(
     fdtype = "f4" if float32 else "f8"
     for v in ("discharge", "discharge_quantile"):
         encoding[v] = {"dtype": fdtype, "zlib": float32, "_FillValue": np.nan}
-    encoding.update({LABELS[d]: {"dtype": str} for d in ("basin", "threshold")})
+    encoding.update({d: {"dtype": str} for d in ("basin", "threshold")})
     with atomic_path(path) as tmp:
         labels_to_file(ds).to_netcdf(tmp, encoding=encoding, format="NETCDF4")
     ds.attrs["product_path"] = str(path)
@@ -465,11 +484,22 @@ def write_forecast(
 
 
 def open_product(path, variables=(), *, any_of=(), load=False) -> xr.Dataset:
-    """Open a written product lazily in the contract's layout (dimension order
-    ``(basin, time, member)``, ``(experiment, basin, issue_time, lead, member)``, string ids
-    as the index of ``basin``, ``experiment``, ``threshold``), with
+    """Open a written product lazily, in its one dimension order (the order on disk, time
+    last as CF-1.8 section 2.4 recommends: ``(basin, member, time)``,
+    ``(experiment, basin, lead, member, issue_time)``, forecasts ``(basin, lead, member)``),
+    string labels as the index of ``basin``, ``experiment``, ``threshold``, with
     ``attrs["product_path"]`` set; see :func:`assim.io.common.open_netcdf`."""
-    return open_netcdf(path, variables, any_of=any_of, order=CONTRACT_ORDER, load=load)
+    return open_netcdf(path, variables, any_of=any_of, load=load)
+
+
+def background(ds: xr.Dataset, *, quantile: bool = False) -> str:
+    """Name of the variable of a run product holding each day's discharge simulated before
+    that day's reading: ``discharge_background`` in analysis.nc, ``discharge`` in
+    openloop.nc (``*_quantile`` for a quantile product). Skill at lead 0 and the
+    hydrographs use it, so the assimilation is never scored on the readings it took in."""
+    suffix = "_quantile" if quantile else ""
+    name = f"discharge_background{suffix}"
+    return name if name in ds.variables else f"discharge{suffix}"
 
 
 def read_run_extent(path) -> dict | None:
