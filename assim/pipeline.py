@@ -7,6 +7,7 @@ Each function takes a validated :class:`assim.config.Config`, reads inputs throu
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from pathlib import Path
 
 import xarray as xr
@@ -14,17 +15,34 @@ import xarray as xr
 from assim.config import Config
 
 
-def prep(cfg: Config) -> dict[str, xr.Dataset]:
-    """Raw records -> prepared layer; returns {"forcing", "observations", "basins"} Datasets.
+@dataclass(frozen=True)
+class PreparedLayer:
+    """What ``assim.prep`` wrote: the three Datasets of the prepared layer (each with
+    ``attrs["product_path"]``) and their folder."""
 
-    Holds the prepared folder's lock while writing (a second ``prep`` is refused)."""
+    folder: Path
+    forcing: xr.Dataset
+    observations: xr.Dataset
+    basins: xr.Dataset
+
+
+def prep(cfg: Config) -> PreparedLayer:
+    """Raw records -> prepared layer (forcing.nc, observations.nc, basins.nc).
+
+    Holds the prepared folder's lock while writing: every caller, the CLI or a second
+    ``assim.prep`` in the same process, takes it, and a second prep is refused (LockError).
+
+    Returns
+    -------
+    PreparedLayer : the Datasets written and their folder
+    """
     from assim import preparation
     from assim.io.common import output_lock
 
     folder = Path(cfg["data"]["prepared"])
     with output_lock(folder / ".prepared.lock", "the prepared layer",
                      [folder / n for n in ("forcing.nc", "observations.nc", "basins.nc")]):
-        return preparation.prepare(cfg)
+        return PreparedLayer(folder, **preparation.prepare(cfg))
 
 
 def check(cfg: Config) -> str:

@@ -9,12 +9,12 @@ Dimensions are named ``basin`` (string ids, ``cf_role: timeseries_id``), ``time`
 ``issue_time`` (CF "days since 1970-01-01", standard calendar, 00:00 UTC of the day),
 ``member`` (0..N-1), ``lead`` (integer days), ``quantile``, ``threshold``, ``experiment``.
 
-On disk the time dimension comes last, as CF-1.8 section 2.4 recommends:
-``(basin, member, time)``, ``(basin, quantile, time)`` and
-``(experiment, basin, lead, member, issue_time)``. :func:`open_product` returns the
-contract's order, ``(basin, time, member)`` and ``(experiment, basin, issue_time, lead,
-member)``; any reader that names its dimensions (``.transpose(...)``, ``.sel(...)``) is
-unaffected by the order.
+Each product has one dimension order, the same on disk and as :func:`open_product` (and
+every entry point) returns it, with time last as CF-1.8 section 2.4 recommends:
+``(basin, member, time)``, ``(basin, quantile, time)``, ``(experiment, basin, lead, member,
+issue_time)``; forecasts ``(basin, lead, member)``. Readers name their dimensions
+(``.transpose(...)``, ``.sel(...)``). In analysis.nc ``discharge`` is the analysis (after the
+day's update) and ``discharge_background`` the background (before it).
 """
 
 from __future__ import annotations
