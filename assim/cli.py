@@ -1,7 +1,8 @@
 """The ``assim`` command line: a thin layer over :mod:`assim.pipeline`.
 
 Exit status 0 on success; 2 on bad input or config, with one line on stderr naming file,
-variable and place (never a traceback for a user error).
+variable and place (never a traceback for a user error). Every subcommand that succeeds ends
+its standard output with the caution (:data:`assim.caution.CAUTION`), once.
 """
 
 from __future__ import annotations
@@ -145,6 +146,5 @@ def main(argv: Sequence[str] | None = None) -> int:
         print(f"assim {args.command}: interrupted; no partial output was kept", file=sys.stderr)
         return 130
     print(message)
-    if args.command not in ("check", "prep"):
-        print(f"CAUTION: {CAUTION}")
+    print(f"CAUTION: {CAUTION}")
     return 0

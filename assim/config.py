@@ -1,7 +1,9 @@
 """Load and validate the configuration (one YAML file, one JSON schema).
 
-The schema ``config/schemas/config.schema.yaml`` documents every key and its default; the CLI
-and the Snakefile validate against the same file. Unknown keys are errors.
+The schema ``assim/schemas/config.schema.yaml`` (package data) documents every key and its default; the CLI
+and the Snakefile validate against the same file. Unknown keys are errors. Validating a config
+imports its model plugins (``model.plugins``), so a user model is registered before anything
+reads a basin.
 """
 
 from __future__ import annotations
@@ -18,7 +20,8 @@ import yaml
 
 from assim.errors import ConfigError
 
-SCHEMA_PATH = Path(__file__).resolve().parents[1] / "config" / "schemas" / "config.schema.yaml"
+# Package data: installed with assim, so a wheel validates configs without the repository.
+SCHEMA_PATH = Path(__file__).resolve().parent / "schemas" / "config.schema.yaml"
 
 
 class Config(dict):
@@ -111,7 +114,29 @@ def validate(raw: Mapping, source: str = "<config>") -> Config:
                           variable=bad)
     cfg = Config(_fill_defaults(schema, dict(raw)))
     cfg.source = source
+    load_plugins(cfg)
     return cfg
+
+
+def load_plugins(cfg: Config) -> None:
+    """Import the modules of ``model.plugins``, each registering a user model.
+
+    Called once, by :func:`validate`, so that every reader (raw basins.yaml, the prepared
+    basins.nc, restarts) finds the model in the registry whatever command runs.
+
+    Raises
+    ------
+    ConfigError
+        naming the config file, ``model.plugins`` and the module that failed to import.
+    """
+    import importlib
+
+    for name in cfg["model"]["plugins"]:
+        try:
+            importlib.import_module(name)
+        except ImportError as exc:
+            raise ConfigError(f"cannot import model plugin ({exc})", file=cfg.source,
+                              variable="model.plugins", place=name) from None
 
 
 def load_config(path: str | Path | None = None, **overrides: Any) -> Config:

@@ -7,6 +7,7 @@ Each function takes a validated :class:`assim.config.Config`, reads inputs throu
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from pathlib import Path
 
 import xarray as xr
@@ -14,17 +15,34 @@ import xarray as xr
 from assim.config import Config
 
 
-def prep(cfg: Config) -> dict[str, xr.Dataset]:
-    """Raw records -> prepared layer; returns {"forcing", "observations", "basins"} Datasets.
+@dataclass(frozen=True)
+class PreparedLayer:
+    """What ``assim.prep`` wrote: the three Datasets of the prepared layer (each with
+    ``attrs["product_path"]``) and their folder."""
 
-    Holds the prepared folder's lock while writing (a second ``prep`` is refused)."""
+    folder: Path
+    forcing: xr.Dataset
+    observations: xr.Dataset
+    basins: xr.Dataset
+
+
+def prep(cfg: Config) -> PreparedLayer:
+    """Raw records -> prepared layer (forcing.nc, observations.nc, basins.nc).
+
+    Holds the prepared folder's lock while writing: every caller, the CLI or a second
+    ``assim.prep`` in the same process, takes it, and a second prep is refused (LockError).
+
+    Returns
+    -------
+    PreparedLayer : the Datasets written and their folder
+    """
     from assim import preparation
     from assim.io.common import output_lock
 
     folder = Path(cfg["data"]["prepared"])
     with output_lock(folder / ".prepared.lock", "the prepared layer",
                      [folder / n for n in ("forcing.nc", "observations.nc", "basins.nc")]):
-        return preparation.prepare(cfg)
+        return PreparedLayer(folder, **preparation.prepare(cfg))
 
 
 def check(cfg: Config) -> str:
@@ -70,17 +88,10 @@ def _day(text, what: str) -> int:
 
 
 def _model(cfg: Config, basins: xr.Dataset):
-    import importlib
-
+    """The registered model of ``basins`` (plugins were imported when ``cfg`` was loaded)."""
     from assim import models
-    from assim.errors import ConfigError, InputError
+    from assim.errors import InputError
 
-    for name in cfg["model"]["plugins"]:
-        try:
-            importlib.import_module(name)
-        except ImportError as exc:
-            raise ConfigError(f"cannot import model plugin ({exc})", file=cfg.source,
-                              variable="model.plugins", place=name) from None
     try:
         return models.get(basins.attrs["model"])
     except KeyError as exc:
@@ -186,8 +197,8 @@ def _progress(cfg: Config, label: str):
 def _attrs(cfg: Config, model, settings, summary=None) -> dict[str, str]:
     out = {
         "model": model.name,
-        "members": str(settings.members),
-        "seed": str(settings.seed),
+        "members": int(settings.members),
+        "seed": int(settings.seed),
         "filter_method": settings.method if settings.assimilate else "none",
         "updated_states": " ".join(settings.update_states),
         "config_digest": cfg.digest(),
@@ -213,8 +224,8 @@ def _health_attrs(summary, inputs) -> dict[str, str]:
     frac = np.where(n > 0, summary.n_gated / np.maximum(n, 1), 0.0)
     return {
         "warnings": " | ".join(str(w) for w in summary.warnings) if summary.warnings else "none",
-        "readings_used": str(int(summary.n_used.sum())),
-        "readings_gated": str(int(summary.n_gated.sum())),
+        "readings_used": int(summary.n_used.sum()),
+        "readings_gated": int(summary.n_gated.sum()),
         "gated_fraction_by_basin": " ".join(f"{b}={f:.3f}" for b, f in zip(inputs.basin_ids, frac, strict=True)),
         "ensemble_collapse": " ".join(
             f"{b}" for b, c in zip(inputs.basin_ids, summary.first_collapse, strict=True) if c >= 0) or "none",
@@ -385,7 +396,7 @@ def _hindcast(cfg: Config) -> xr.Dataset:
             "days": inputs.days[issues],
             **{n: np.stack([p[n] for p in parts], axis=1) for n in ("precipitation", "pet")}})
     path = paths.hindcast(cfg)
-    attrs = {**_attrs(cfg, model, base), "forcing": kind, "every_days": str(every)}
+    attrs = {**_attrs(cfg, model, base), "forcing": kind, "every_days": every}
     attrs.pop("filter_method")
     with HindcastWriter(path, basins=inputs.basin_ids, issue_days=inputs.days[issues], leads=leads,
                         members=base.members, float32=base.float32, attrs=attrs) as writer:

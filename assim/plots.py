@@ -33,7 +33,7 @@ from assim import paths
 from assim.caution import CAUTION_SHORT
 from assim.errors import InputError
 from assim.io.common import atomic_path
-from assim.io.products import open_product
+from assim.io.products import background, open_product
 from assim.io.skill import read_skill
 
 EXPERIMENT_STYLE = {
@@ -149,9 +149,9 @@ def plot_hydrograph(runs: Mapping[str, xr.Dataset], observed: xr.DataArray | Non
         sel = ds.sel(basin=basin, time=slice(t0, t1))
         x = pd.DatetimeIndex(sel["time"].values)
         if "discharge" in sel:
-            bands = _bands(sel["discharge"].transpose("time", "member").values.astype(float))
+            bands = _bands(sel[background(sel)].transpose("time", "member").values.astype(float))
         else:
-            bands = _quantile_bands(sel["discharge_quantile"].transpose("quantile", "time"))
+            bands = _quantile_bands(sel[background(sel, quantile=True)].transpose("quantile", "time"))
         style = EXPERIMENT_STYLE[exp]
         if bands is not None:
             _draw_ensemble(ax, x, bands, style["color"], style["label"])

@@ -22,7 +22,6 @@ ones: they neither enter the mean nor cover time.
 
 from __future__ import annotations
 
-import importlib
 from collections.abc import Mapping
 from pathlib import Path
 
@@ -225,15 +224,6 @@ def potential_evaporation(method: str, weather: raw_io.Weather, latitude) -> np.
 # ---------------------------------------------------------------------------------- prepare
 
 
-def _import_plugins(cfg: Mapping) -> None:
-    for name in cfg.get("model", {}).get("plugins", []):
-        try:
-            importlib.import_module(name)
-        except ImportError as exc:
-            raise ConfigError(f"cannot import model plugin ({exc})", file=getattr(cfg, "source", None),
-                              variable="model.plugins", place=name) from None
-
-
 _RATING_FIELDS = ("a", "b", "h0", "stage_min_m", "stage_max_m")
 
 
@@ -305,7 +295,6 @@ def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
     folder = Path(data["raw"])
     if not folder.is_dir():
         raise InputError("raw folder not found (config data.raw)", file=folder)
-    _import_plugins(cfg)
     all_basins = raw_io.read_basins_yaml(folder / raw_io.BASINS_FILE)
     basins = raw_io.read_basins_yaml(folder / raw_io.BASINS_FILE, select=data.get("basins") or ())
     ids = [b.id for b in basins]
@@ -361,8 +350,6 @@ def prepare(cfg: Mapping) -> dict[str, xr.Dataset]:
     ------
     InputError
         naming the file, the variable or column and the first bad place.
-    ConfigError
-        for a bad model plugin.
     """
     datasets, _ = build(cfg)
     out = Path(cfg["data"]["prepared"])

@@ -1,9 +1,11 @@
 """Tests of assim.config: one schema, every default documented, unknown keys refused."""
 
+from pathlib import Path
+
 import pytest
 import yaml
 
-from assim.config import SCHEMA_PATH, load_config, read_schema, validate
+from assim.config import load_config, read_schema, validate
 from assim.errors import ConfigError
 
 
@@ -37,7 +39,7 @@ def test_defaults_are_valid_against_the_schema_itself():
 
 
 def test_demo_config_is_valid():
-    cfg = load_config(SCHEMA_PATH.parents[1] / "config.yaml")
+    cfg = load_config(Path(__file__).resolve().parents[1] / "config" / "config.yaml")
     assert cfg["data"]["raw"] == "sample_basin"
 
 
@@ -87,3 +89,79 @@ def test_digest_changes_with_content():
     b = load_config(None, ensemble={"seed": 1})
     assert a.digest("ensemble") != b.digest("ensemble")
     assert a.digest("filter") == b.digest("filter")
+
+
+# ---------------------------------------------------------------------------------- plugins
+
+
+def _documented_plugin() -> str:
+    """The user model of DEVELOPERS.md ("Adding a model"), exactly as documented."""
+    import re
+    from pathlib import Path
+
+    text = (Path(__file__).resolve().parents[1] / "DEVELOPERS.md").read_text(encoding="utf-8")
+    blocks = re.findall(r"```python\n(# my_bucket\.py\n.*?)```", text, flags=re.S)
+    assert len(blocks) == 1, "DEVELOPERS.md must show the my_bucket.py example once"
+    return blocks[0]
+
+
+def test_plugin_that_does_not_import_is_a_config_error(tmp_path):
+    """Common practice, no published source: a plugin that cannot be imported is refused
+    when the config is loaded, naming model.plugins and the module."""
+    with pytest.raises(ConfigError) as info:
+        load_config(None, model={"plugins": ["no_such_assim_plugin_module"]})
+    assert "model.plugins" in str(info.value) and "no_such_assim_plugin_module" in str(info.value)
+    with pytest.raises(ConfigError, match="model.plugins"):
+        load_config(None, model={"plugins": ["not a module name"]})
+
+
+def test_user_model_plugin_runs_prep_run_forecast_through_the_cli(tmp_path):
+    """Common practice, no published source: a user model registered as DEVELOPERS.md
+    documents (module on PYTHONPATH, listed in model.plugins, named in basins.yaml) goes
+    through prep, the assimilation run and a forecast on the command line, and the products
+    say they were made with it: the restarts hold the bucket's one state, not a built-in
+    model's."""
+    import os
+    import subprocess
+    import sys
+
+    import numpy as np
+    import xarray as xr
+    from _scenario import make_raw, write_config
+
+    plugin_dir = tmp_path / "plugins"
+    plugin_dir.mkdir()
+    (plugin_dir / "my_bucket.py").write_text(_documented_plugin(), encoding="utf-8")
+    raw = make_raw(tmp_path / "raw", ["oskerrin"], "2012-01-01", "2012-03-31")
+    doc = yaml.safe_load((raw / "basins.yaml").read_text())
+    for b in doc["basins"]:
+        b["model"], b["parameters"] = "bucket", {"k": 0.2}
+    (raw / "basins.yaml").write_text(yaml.safe_dump(doc, sort_keys=False))
+    conf = write_config(tmp_path, {
+        "data": {"raw": str(raw), "prepared": str(tmp_path / "prepared")},
+        "results": str(tmp_path / "results"),
+        "period": {"start": "2012-01-01", "end": "2012-03-20", "spinup_days": 10},
+        "ensemble": {"members": 4, "seed": 3, "scheduler": "synchronous", "progress": False},
+        "forecast": {"leads": 3, "forcing": "observed"},
+        "model": {"plugins": ["my_bucket"]},
+    })
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(plugin_dir), os.environ.get("PYTHONPATH", "")]),
+           "PYTHONWARNINGS": "ignore"}
+
+    def cli(*args):
+        r = subprocess.run([sys.executable, "-m", "assim", *args, "--config", str(conf)],
+                           capture_output=True, text=True, env=env, cwd=tmp_path, timeout=300)
+        assert r.returncode == 0, (args, r.stderr)
+        return r
+
+    cli("prep")
+    cli("run", "--mode", "openloop")
+    cli("run", "--mode", "assimilate")
+    cli("forecast", "--issue-date", "2012-03-20")
+    with xr.open_dataset(tmp_path / "prepared" / "basins.nc") as b:
+        assert b.attrs["model"] == "bucket"
+    with xr.open_dataset(tmp_path / "results" / "forecasts" / "forecast-2012-03-20.nc") as f:
+        assert f.attrs["model"] == "bucket"
+        assert np.isfinite(f["discharge"].values).all()
+    with xr.open_dataset(tmp_path / "results" / "forecasts" / "restart-2012-03-20.nc") as r:
+        assert [str(s) for s in r["state"].values] == ["store"] and "parameter_k" in r

@@ -37,7 +37,7 @@ pytestmark = pytest.mark.slow
 # variables each product must hold when it exists under its product name
 REQUIRED = {
     "openloop.nc": ("discharge",),
-    "analysis.nc": ("discharge", "discharge_analysis", "obs_status", "innovation", "clipped_water"),
+    "analysis.nc": ("discharge", "discharge_background", "obs_status", "innovation", "clipped_water"),
     "hindcast.nc": ("discharge",),
     "skill.nc": (),
     "restart.nc": ("states", "valid_time", "collapse_days"),

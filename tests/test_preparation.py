@@ -328,7 +328,9 @@ def test_assim_prep_is_the_entry_point(good, tmp_path):
 
     cfg, _ = good
     out = assim.prep(config(Path(cfg["data"]["raw"]), tmp_path / "p"))
-    assert set(out) == {"forcing", "observations", "basins"}
+    assert out.folder == tmp_path / "p"
+    for ds, name in ((out.forcing, "forcing.nc"), (out.observations, "observations.nc"), (out.basins, "basins.nc")):
+        assert ds.attrs["product_path"] == str(tmp_path / "p" / name)
 
 
 def test_second_prep_in_one_process_takes_the_lock(good, tmp_path):

@@ -333,10 +333,14 @@ def make_study(tmp_path, *, days=150, members=8, leads=3, every=7, hindcast=True
     ens_assim = tr[..., None] * rng.lognormal(0.0, 0.08, size=(nb, days, members))
     out = {"openloop": ens_open, "assimilation": ens_assim}
     for name, ens in (("openloop.nc", ens_open), ("analysis.nc", ens_assim)):
-        ds = xr.Dataset({"discharge": (("basin", "time", "member"), ens, q_attrs)}, coords=coords,
+        # the product layout: (basin, member, time); in analysis.nc `discharge` is the
+        # analysis and `discharge_background` the background that lead 0 scores
+        ens_disk = ens.transpose(0, 2, 1)
+        key = "discharge_background" if name == "analysis.nc" else "discharge"
+        ds = xr.Dataset({key: (("basin", "member", "time"), ens_disk, q_attrs)}, coords=coords,
                         attrs=global_attributes("synthetic run"))
         if name == "analysis.nc":
-            ds["discharge_analysis"] = (("basin", "time", "member"), ens * 0.98, q_attrs)
+            ds["discharge"] = (("basin", "member", "time"), ens_disk * 0.98, q_attrs)
             ds["observed_discharge"] = (("basin", "time"), q_obs[:, 10 : 10 + days], q_attrs)
             ds["spread_before"] = (("basin", "time"), ens.std(axis=-1), q_attrs)
             ds["spread_after"] = (("basin", "time"), 0.8 * ens.std(axis=-1), q_attrs)

@@ -6,7 +6,6 @@ to do, changing one stage's setting reruns only what depends on it, and a config
 the schema stops the workflow before any rule runs.
 """
 
-import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -91,19 +90,17 @@ def test_products_carry_the_caution(finished):
 
 
 def test_products_are_cf_clean(finished):
-    """compliance-checker's CF-1.8 suite (reference tool) reports no errors."""
-    checker = shutil.which("compliance-checker", path=str(Path(sys.executable).parent))
-    assert checker
+    """compliance-checker's CF-1.8 suite (reference tool) reports no failure in any NetCDF
+    file the workflow declares (restarts included), and plain xarray selects a basin by its
+    id in each."""
+    from _cf import cf_failures
+
     for p in _declared_outputs(finished):
-        if not p.endswith(".nc") or "restart" in p:
+        if not p.endswith(".nc"):
             continue
-        r = subprocess.run(
-            [checker, "--test=cf:1.8", "--criteria=normal", "--format=text", str(finished / p)],
-            capture_output=True,
-            text=True,
-        )
-        # compliance-checker exits 0 only when the file passes at the chosen criteria.
-        assert r.returncode == 0, f"{p}\n{r.stdout[-3000:]}"
+        assert cf_failures(finished / p) == ([], []), p
+        with xr.open_dataset(finished / p) as ds:
+            assert "basin" not in ds.sel(basin=str(ds["basin"].values[0])).dims, p
 
 
 def test_dry_run_afterwards_has_nothing_to_do(finished):

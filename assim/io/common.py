@@ -9,6 +9,8 @@ import tempfile
 from collections.abc import Iterable, Iterator
 from pathlib import Path
 
+import numpy as np
+
 from assim._version import __version__
 from assim.caution import CAUTION
 from assim.errors import AssimWarning, RunError
@@ -55,16 +57,30 @@ def _umask() -> int:
     return mask
 
 
-def global_attributes(title: str, *, product: bool = True, **extra: str) -> dict[str, str]:
+def attribute_values(attrs) -> dict:
+    """NetCDF attribute values: numbers stay numbers (so a reader gets 16, not "16"),
+    anything else becomes text."""
+    def value(v):
+        if isinstance(v, bool) or not isinstance(v, int | float | np.integer | np.floating):
+            return str(v)
+        return v
+
+    return {k: value(v) for k, v in attrs.items()}
+
+
+def global_attributes(title: str, *, product: bool = True, feature_type: str | None = "timeSeries",
+                      **extra) -> dict:
     """CF-1.8 global attributes for a file written by assim.
 
-    Products (everything but the prepared inputs) carry the caution text.
+    Products (everything but the prepared inputs) carry the caution text, once. Numbers in
+    ``extra`` stay numbers; anything else is stored as text. ``feature_type`` None: not a
+    discrete sampling geometry (a restart holds one instant).
     """
 
     now = _dt.datetime.now(_dt.UTC).replace(microsecond=0).isoformat()
     attrs = {
         "Conventions": CONVENTIONS,
-        "featureType": "timeSeries",
+        **({"featureType": feature_type} if feature_type else {}),
         "title": title,
         "institution": "assim (research software)",
         "source": f"assim {__version__}",
@@ -72,37 +88,35 @@ def global_attributes(title: str, *, product: bool = True, **extra: str) -> dict
     }
     if product:
         attrs["caution"] = CAUTION
-        attrs["comment"] = CAUTION
-    attrs.update({k: str(v) for k, v in extra.items()})
+    attrs.update(attribute_values(extra))
     return attrs
 
 
-# String labels of a dimension are written as auxiliary coordinate variables
-# (``basin_id(basin)``, CF-1.8 appendix H.2.1), because a coordinate variable proper must be
-# numeric and monotonic; readers turn them back into the string index of the dimension.
-LABELS = {
-    "basin": "basin_id",
-    "threshold": "threshold_name",
-    "experiment": "experiment_name",
-    "metric": "metric_name",
-}
-
-# The dimension order of the products contract; on disk time comes last (CF-1.8 section 2.4).
-CONTRACT_ORDER = ("experiment", "basin", "issue_time", "time", "lead", "quantile", "member", "threshold", "metric")
-
+# String labels of a dimension (basin ids, threshold, experiment and metric names) are stored
+# as a string variable named like the dimension, ``basin(basin)`` with ``cf_role:
+# timeseries_id``, so that ``xr.open_dataset(p).sel(basin="id")`` works on every file. The
+# netCDF-4 data model allows string coordinate variables; CF-1.8 section 1.3 still calls a
+# coordinate variable numeric (a mismatch with netCDF-4 raised in CF issue 174), and
+# compliance-checker 5 reports no failure for them (its monotonicity check of coordinate
+# variables raises on strings and is skipped). Files written before kept the labels as
+# ``basin_id(basin)``, ...: readers still accept those.
+LABELS = ("basin", "threshold", "experiment", "metric")
+_EARLIER_LABELS = {"basin": "basin_id", "threshold": "threshold_name", "experiment": "experiment_name",
+                   "metric": "metric_name"}
 
 def labels_to_file(ds):
-    """Replace string index coordinates (``basin``, ...) by their ``*_id``/``*_name`` labels."""
-    for dim, name in LABELS.items():
+    """String labels of the dimensions as variable-length strings (netCDF-4 ``string``)."""
+    for dim in LABELS:
         if dim in ds.variables and ds[dim].dtype.kind in "OUS":
             var = ds[dim]
-            ds = ds.drop_vars(dim).assign_coords({name: (dim, var.values.astype(object), dict(var.attrs))})
+            ds = ds.assign_coords({dim: (dim, var.values.astype(str).astype(object), dict(var.attrs))})
     return ds
 
 
 def labels_from_file(ds):
-    """Inverse of :func:`labels_to_file`: the labels become the dimensions' string index."""
-    for dim, name in LABELS.items():
+    """The dimensions' string labels as str; labels of files written before under their own
+    name (``basin_id(basin)``, ...) become the dimension's index."""
+    for dim, name in _EARLIER_LABELS.items():
         if name in ds.variables and ds[name].dims == (dim,):
             var = ds[name]
             ds = ds.drop_vars(name).assign_coords({dim: (dim, var.values.astype(str).astype(object), dict(var.attrs))})
@@ -113,15 +127,15 @@ def open_netcdf(path, variables=(), *, any_of=(), order=None, load=False):
     """Open a file written by assim lazily, in the contract's layout.
 
     String labels become the index of their dimension, dimensions are put in ``order`` when
-    given (e.g. :data:`CONTRACT_ORDER`: ``(basin, time, member)``, ``(experiment, basin,
-    issue_time, lead, member)``), and ``attrs["product_path"]`` is set.
+    given, and ``attrs["product_path"]`` is set.
 
     Parameters
     ----------
     path : path of the file
     variables : names that must all be present (data variables or coordinates)
     any_of : names of which at least one must be present
-    order : dimension names in the wanted order (others follow as stored)
+    order : dimension names in the wanted order (others follow as stored); None keeps the
+        order on disk, which is each product's one order
     load : read everything into memory and close the file before returning (readers that
         use the whole file anyway: no handle is left open behind the returned Dataset)
 

@@ -145,7 +145,7 @@ def observations_dataset(basins, dates, discharge, qc_flag, coverage, n_readings
                         {"long_name": "number of gauge readings in the UTC day", "units": "1"})
     ds["n_rejected"] = (("basin", "time"), np.asarray(n_rejected).astype(np.int32),
                         {"long_name": "number of rejected gauge readings in the UTC day", "units": "1"})
-    extra = {f"qc_{k}": str(v) for k, v in (settings or {}).items()}
+    extra = {f"qc_{k}": v for k, v in (settings or {}).items()}
     ds.attrs = global_attributes("assim prepared gauge observations", product=False, **extra)
     return ds
 

@@ -9,12 +9,12 @@ Dimensions are named ``basin`` (string ids, ``cf_role: timeseries_id``), ``time`
 ``issue_time`` (CF "days since 1970-01-01", standard calendar, 00:00 UTC of the day),
 ``member`` (0..N-1), ``lead`` (integer days), ``quantile``, ``threshold``, ``experiment``.
 
-On disk the time dimension comes last, as CF-1.8 section 2.4 recommends:
-``(basin, member, time)``, ``(basin, quantile, time)`` and
-``(experiment, basin, lead, member, issue_time)``. :func:`open_product` returns the
-contract's order, ``(basin, time, member)`` and ``(experiment, basin, issue_time, lead,
-member)``; any reader that names its dimensions (``.transpose(...)``, ``.sel(...)``) is
-unaffected by the order.
+Each product has one dimension order, the same on disk and as :func:`open_product` (and
+every entry point) returns it, with time last as CF-1.8 section 2.4 recommends:
+``(basin, member, time)``, ``(basin, quantile, time)``, ``(experiment, basin, lead, member,
+issue_time)``; forecasts ``(basin, lead, member)``. Readers name their dimensions
+(``.transpose(...)``, ``.sel(...)``). In analysis.nc ``discharge`` is the analysis (after the
+day's update) and ``discharge_background`` the background (before it).
 """
 
 from __future__ import annotations
@@ -33,9 +33,8 @@ from xarray.backends.netCDF4_ import NETCDF4_PYTHON_LOCK
 from assim.conventions import CALENDAR, OBS_STATUS, TIME_UNITS
 from assim.errors import InputError
 from assim.io.common import (
-    CONTRACT_ORDER,
-    LABELS,
     atomic_path,
+    attribute_values,
     global_attributes,
     labels_from_file,
     labels_to_file,
@@ -52,6 +51,16 @@ _NC_LOCK = NETCDF4_PYTHON_LOCK
 DISCHARGE_ATTRS = {
     "standard_name": "water_volume_transport_in_river_channel",
     "units": "m3 s-1",
+}
+# Simulated discharge of a day is the mean over the day (the model's daily step), bounded by
+# the variable ``time_bnds`` (CF-1.8 section 7.3).
+DAILY_MEAN = {"cell_methods": "time: mean"}
+# Engine array -> variable of analysis.nc: a reader of `discharge` gets the analysis.
+_ANALYSIS_NAMES = {
+    "discharge": "discharge_background",
+    "discharge_analysis": "discharge",
+    "discharge_quantile": "discharge_background_quantile",
+    "discharge_analysis_quantile": "discharge_quantile",
 }
 EXPERIMENTS = ("openloop", "assimilation")
 
@@ -108,8 +117,8 @@ class _StreamedFile:
 
     # helpers
     def _basin(self, basins):
-        # a string label, not a coordinate variable (assim.io.common.LABELS)
-        v = self.nc.createVariable(LABELS["basin"], str, ("basin",))
+        # string labels named like their dimension (assim.io.common.LABELS)
+        v = self.nc.createVariable("basin", str, ("basin",))
         v[:] = np.array([str(b) for b in basins], dtype=object)
         v.cf_role = "timeseries_id"
         v.long_name = "basin identifier"
@@ -167,10 +176,12 @@ class RunWriter(_StreamedFile):
         ``write_block`` indices count from the first of ``days``
     attrs : extra global attributes
 
-    ``write_block(start, arrays)`` writes arrays covering output days
+    ``write_block(start, arrays)`` writes the engine's arrays covering output days
     ``start .. start + n - 1``: ``discharge``, ``discharge_analysis`` and the states and
     parameters (basin, n, member), or ``discharge_quantile`` (and
     ``discharge_analysis_quantile``) (basin, n, quantile), and the diagnostics (basin, n).
+    In an assimilation run's file the analysis is ``discharge`` and the engine's
+    ``discharge`` (the background) is ``discharge_background`` (:data:`_ANALYSIS_NAMES`).
     """
 
     def __init__(
@@ -226,6 +237,10 @@ class RunWriter(_StreamedFile):
         nc.createDimension("time", nt)
         self._basin(self.basins)
         self._days("time", self.days, "day of the simulated discharge")
+        nc.createDimension("nv", 2)
+        nc.variables["time"].bounds = "time_bnds"
+        v = nc.createVariable("time_bnds", "i4", ("time", "nv"))
+        v[:] = np.stack([self.days, self.days + 1], axis=1).astype(np.int32)  # the UTC day [d, d + 1)
         cb = max(1, min(nb, 64))
         diag_chunks = (cb, self.time_chunk)
         if self.quantiles is None:
@@ -233,20 +248,21 @@ class RunWriter(_StreamedFile):
             self._int_coord("member", np.arange(self.members), long_name="ensemble member")
             ens_dims = ("basin", "member", "time")  # on disk: time last (CF-1.8 section 2.4)
             chunks = (1, self.members, self.time_chunk)
+            if self.assimilate:
+                self._float_var(
+                    "discharge_background",
+                    ens_dims,
+                    chunks,
+                    {**DISCHARGE_ATTRS, **DAILY_MEAN,
+                     "long_name": "background discharge (before the day's reading is assimilated)"},
+                )
             self._float_var(
                 "discharge",
                 ens_dims,
                 chunks,
-                {**DISCHARGE_ATTRS, "long_name": "background discharge (before the day's reading is assimilated)"
-                 if self.assimilate else "simulated discharge"},
+                {**DISCHARGE_ATTRS, **DAILY_MEAN,
+                 "long_name": "discharge after the day's update" if self.assimilate else "simulated discharge"},
             )
-            if self.assimilate:
-                self._float_var(
-                    "discharge_analysis",
-                    ens_dims,
-                    chunks,
-                    {**DISCHARGE_ATTRS, "long_name": "discharge after the day's update"},
-                )
             for s in self.state_names:
                 when = "after the update" if self.assimilate else "at the end of the day"
                 self._float_var(s, ens_dims, chunks,
@@ -259,12 +275,13 @@ class RunWriter(_StreamedFile):
             v[:] = np.asarray(self.quantiles)
             v.long_name = "probability of non-exceedance"
             chunks = (cb, len(self.quantiles), self.time_chunk)  # small rows: several basins a chunk
-            self._float_var("discharge_quantile", ("basin", "quantile", "time"), chunks,
-                            {**DISCHARGE_ATTRS, "long_name": "quantiles of the background discharge"
-                             if self.assimilate else "quantiles of the simulated discharge"})
             if self.assimilate:
-                self._float_var("discharge_analysis_quantile", ("basin", "quantile", "time"), chunks,
-                                {**DISCHARGE_ATTRS, "long_name": "quantiles of the discharge after the update"})
+                self._float_var("discharge_background_quantile", ("basin", "quantile", "time"), chunks,
+                                {**DISCHARGE_ATTRS, **DAILY_MEAN,
+                                 "long_name": "quantiles of the background discharge"})
+            self._float_var("discharge_quantile", ("basin", "quantile", "time"), chunks,
+                            {**DISCHARGE_ATTRS, **DAILY_MEAN, "long_name": "quantiles of the discharge after the update"
+                             if self.assimilate else "quantiles of the simulated discharge"})
         if self.assimilate:
             d2 = ("basin", "time")
             self._float_var("observed_discharge", d2, diag_chunks,
@@ -296,7 +313,7 @@ class RunWriter(_StreamedFile):
 
     def _copy_earlier(self):
         with xr.open_dataset(self.earlier, decode_times=False, mask_and_scale=False) as old:
-            names = [n for n, v in self.nc.variables.items() if "time" in v.dimensions and n != "time"
+            names = [n for n, v in self.nc.variables.items() if "time" in v.dimensions and n not in ("time", "time_bnds")
                      and n in old.variables]
             step = self.time_chunk
             for name in names:
@@ -315,7 +332,9 @@ class RunWriter(_StreamedFile):
     def _write_block(self, start: int, arrays: Mapping[str, np.ndarray]) -> None:
         start += self.offset
         n = None
+        names = _ANALYSIS_NAMES if self.assimilate else {}
         for name, values in arrays.items():
+            name = names.get(name, name)
             if name not in self.nc.variables:
                 continue
             values = np.asarray(values)
@@ -329,7 +348,7 @@ class RunWriter(_StreamedFile):
     def set_attributes(self, **attrs) -> None:
         """Global attributes known only at the end (diagnostics, warnings)."""
         with _NC_LOCK:
-            self.nc.setncatts({k: str(v) for k, v in attrs.items()})
+            self.nc.setncatts(attribute_values(attrs))
 
 
 class HindcastWriter(_StreamedFile):
@@ -356,7 +375,7 @@ class HindcastWriter(_StreamedFile):
         nc.createDimension("issue_time", len(self.issue_days))
         nc.createDimension("lead", self.leads)
         nc.createDimension("member", self.members)
-        v = nc.createVariable(LABELS["experiment"], str, ("experiment",))
+        v = nc.createVariable("experiment", str, ("experiment",))
         v[:] = np.array(EXPERIMENTS, dtype=object)
         v.long_name = "origin of the initial states"
         self._basin(self.basins)
@@ -376,7 +395,7 @@ class HindcastWriter(_StreamedFile):
 
     def set_attributes(self, **attrs) -> None:
         with _NC_LOCK:
-            self.nc.setncatts({k: str(v) for k, v in attrs.items()})
+            self.nc.setncatts(attribute_values(attrs))
 
 
 def write_forecast(
@@ -439,7 +458,7 @@ def write_forecast(
     fdtype = "f4" if float32 else "f8"
     for v in ("discharge", "discharge_quantile"):
         encoding[v] = {"dtype": fdtype, "zlib": float32, "_FillValue": np.nan}
-    encoding.update({LABELS[d]: {"dtype": str} for d in ("basin", "threshold")})
+    encoding.update({d: {"dtype": str} for d in ("basin", "threshold")})
     with atomic_path(path) as tmp:
         labels_to_file(ds).to_netcdf(tmp, encoding=encoding, format="NETCDF4")
     ds.attrs["product_path"] = str(path)
@@ -447,11 +466,22 @@ def write_forecast(
 
 
 def open_product(path, variables=(), *, any_of=(), load=False) -> xr.Dataset:
-    """Open a written product lazily in the contract's layout (dimension order
-    ``(basin, time, member)``, ``(experiment, basin, issue_time, lead, member)``, string ids
-    as the index of ``basin``, ``experiment``, ``threshold``), with
+    """Open a written product lazily, in its one dimension order (the order on disk, time
+    last as CF-1.8 section 2.4 recommends: ``(basin, member, time)``,
+    ``(experiment, basin, lead, member, issue_time)``, forecasts ``(basin, lead, member)``),
+    string labels as the index of ``basin``, ``experiment``, ``threshold``, with
     ``attrs["product_path"]`` set; see :func:`assim.io.common.open_netcdf`."""
-    return open_netcdf(path, variables, any_of=any_of, order=CONTRACT_ORDER, load=load)
+    return open_netcdf(path, variables, any_of=any_of, load=load)
+
+
+def background(ds: xr.Dataset, *, quantile: bool = False) -> str:
+    """Name of the variable of a run product holding each day's discharge simulated before
+    that day's reading: ``discharge_background`` in analysis.nc, ``discharge`` in
+    openloop.nc (``*_quantile`` for a quantile product). Skill at lead 0 and the
+    hydrographs use it, so the assimilation is never scored on the readings it took in."""
+    suffix = "_quantile" if quantile else ""
+    name = f"discharge_background{suffix}"
+    return name if name in ds.variables else f"discharge{suffix}"
 
 
 def read_run_extent(path) -> dict | None:

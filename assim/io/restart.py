@@ -70,12 +70,14 @@ def write_restart(path, restart: Restart) -> Path:
         data,
         coords={
             "basin": ("basin", b, {"cf_role": "timeseries_id"}),
-            "member": ("member", np.arange(restart.states.shape[1])),
+            "member": ("member", np.arange(restart.states.shape[1], dtype=np.int32),
+                       {"long_name": "ensemble member"}),
             "state": ("state", np.array(restart.state_names, dtype=object)),
             "valid_time": ((), dates([restart.valid_day])[0],
                            {"long_name": "the states are valid at the end of this day"}),
         },
-        attrs=global_attributes("ensemble restart", **{k: str(v) for k, v in restart.identity.items()}),
+        attrs=global_attributes("ensemble restart", feature_type=None,
+                                **{k: str(v) for k, v in restart.identity.items()}),
     )
     enc = {"valid_time": {"units": TIME_UNITS, "calendar": CALENDAR, "dtype": "i4"}}
     with atomic_path(path) as tmp:

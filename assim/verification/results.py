@@ -34,7 +34,7 @@ import xarray as xr
 from assim import paths
 from assim.errors import InputError
 from assim.io.common import global_attributes
-from assim.io.products import open_product
+from assim.io.products import background, open_product
 from assim.io.skill import write_skill
 from assim.verification import metrics as m
 
@@ -287,9 +287,9 @@ def _lead0(ds: xr.Dataset, block: Sequence[str], ref: xr.DataArray, time: np.nda
     obs, clim = ref.reindex(time=time).transpose("kind", "basin", "time").values[:, :, None, :]
     where = {"basin": list(block), "time": time}
     if "discharge" in ds:
-        ens = ds["discharge"].reindex(where).transpose("basin", "time", "member").values
+        ens = ds[background(ds)].reindex(where).transpose("basin", "time", "member").values
         return obs, clim, ens.astype(float)[:, None], None
-    med = _median_of_quantiles(ds, "discharge_quantile")
+    med = _median_of_quantiles(ds, background(ds, quantile=True))
     det = None if med is None else med.reindex(where).transpose("basin", "time").values[:, None]
     return obs, clim, None, det
 

@@ -1,4 +1,4 @@
-# Validate the config against config/schemas/config.schema.yaml with the same function the
+# Validate the config against the package's schema (assim/schemas/config.schema.yaml) with the same function the
 # CLI uses (assim.config.validate), so the workflow and a user at the shell can never
 # disagree, and define the helpers the rules share.
 
