@@ -351,8 +351,11 @@ def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
 def prepare(cfg: Mapping) -> dict[str, xr.Dataset]:
     """Prepare the raw folder ``cfg["data"]["raw"]`` into ``cfg["data"]["prepared"]``.
 
-    Everything is read and validated before anything is written; each file is written to
-    a temporary name and renamed when complete.
+    Everything is read and validated before anything is written; the three files are
+    written to temporary names and renamed together when all are complete
+    (:class:`assim.io.common.FileSet`), each stamped with the write's ``set_generation`` and
+    the checksums of its variables, so that a failed write (a full disk) leaves the old layer
+    whole and a layer replaced only in part is refused by its readers.
 
     Returns
     -------
@@ -366,14 +369,21 @@ def prepare(cfg: Mapping) -> dict[str, xr.Dataset]:
     ConfigError
         for a bad model plugin.
     """
+    from functools import partial
+
+    from assim.io.common import FileSet, layer_lock
+
     datasets, _ = build(cfg)
     out = Path(cfg["data"]["prepared"])
     writers = {"forcing": (prep_io.write_forcing, prep_io.FORCING_FILE),
                "observations": (prep_io.write_observations, prep_io.OBSERVATIONS_FILE),
                "basins": (prep_io.write_basins, prep_io.BASINS_FILE)}
-    for key, (write, name) in writers.items():
-        path = write(datasets[key], out / name)
-        datasets[key].attrs["product_path"] = str(path)
+    paths = [out / name for _, name in writers.values()]
+    # the three files are one set: all replaced or none, never while a run reads them
+    with FileSet(paths, checksummed=paths, guard=partial(layer_lock, out, exclusive=True)) as files:
+        for key, (write, name) in writers.items():
+            path = write(datasets[key], out / name, commit=files)
+            datasets[key].attrs["product_path"] = str(path)
     return datasets
 
 

@@ -14,7 +14,7 @@ from assim.errors import RestartError
 from assim.io.restart import Restart, check_restart, read_restart, write_restart
 
 GR4J = models.get("gr4j")
-IDENTITY = {"model": "gr4j", "members": "10", "seed": "4", "digest_perturbation": "p1",
+IDENTITY = {"model": "gr4j", "members": "10", "seed": "4", "mode": "assimilate", "digest_perturbation": "p1",
             "digest_filter": "f1", "digest_inputs": "i1"}
 
 
