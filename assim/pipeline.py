@@ -64,9 +64,14 @@ def _day(text, what: str) -> int:
     from assim.errors import ConfigError
 
     try:
-        return int((np.datetime64(str(text), "D") - np.datetime64("1970-01-01", "D")).astype(int))
+        day = np.datetime64(str(text), "D")
     except ValueError:
         raise ConfigError(f"not a date YYYY-MM-DD: {text!r}", variable=what) from None
+    # dates that every reader (pandas, CF time units) can represent: years 1678..2261
+    if not np.datetime64("1678-01-01") <= day <= np.datetime64("2261-12-31"):
+        raise ConfigError(f"date {text!r} is outside the years 1678 to 2261 that the products can hold",
+                          variable=what)
+    return int((day - np.datetime64("1970-01-01", "D")).astype(int))
 
 
 def _model(cfg: Config, basins: xr.Dataset):
