@@ -13,6 +13,7 @@ from pathlib import Path
 
 import yaml
 
+from assim._version import __version__
 from assim.caution import CAUTION
 from assim.errors import AssimError, AssimWarning, RunError
 
@@ -314,7 +315,6 @@ def global_attributes(title: str, *, product: bool = True, **extra: str) -> dict
 
     Products (everything but the prepared inputs) carry the caution text.
     """
-    from assim import __version__
 
     now = _dt.datetime.now(_dt.UTC).replace(microsecond=0).isoformat()
     attrs = {
