@@ -289,6 +289,54 @@ def _daily_observations(basins: list[raw_io.Basin], readings: raw_io.Readings, d
     return (mean, day_flag, coverage, n_read, n_rej), flags, inside
 
 
+def check_plausible(basins: list[raw_io.Basin], weather: raw_io.Weather, readings: raw_io.Readings,
+                    limits: Mapping, folder: Path) -> None:
+    """Refuse raw records beyond the physical plausibility limits (config ``data.limits``):
+    a basin area, a day's precipitation, the median of a discharge gauge per km2 of area (a
+    record in L/s), a stage record mostly outside its rating's range (a record in cm).
+
+    Raises
+    ------
+    InputError
+        naming the file, the variable, the basin (and the date) and the limit.
+    """
+    for b in basins:
+        if not b.area_km2 <= limits["max_area_km2"]:
+            raise InputError(f"area {b.area_km2:g} km2 is beyond the plausible maximum "
+                             f"(data.limits.max_area_km2 = {limits['max_area_km2']:g})",
+                             file=folder / raw_io.BASINS_FILE, variable="area_km2", place=f"basin '{b.id}'")
+    p = weather.precipitation
+    bad = ~(p <= limits["max_precipitation_mm"])
+    if bad.any():
+        i, t = np.argwhere(bad)[0]
+        raise InputError(f"{p[i, t]:g} mm in one day is beyond the plausible maximum "
+                         f"(data.limits.max_precipitation_mm = {limits['max_precipitation_mm']:g})",
+                         file=folder / raw_io.WEATHER_FILE, variable="precipitation_mm",
+                         place=f"basin '{weather.basins[i]}', {weather.dates[t]}")
+    gauge = folder / raw_io.GAUGE_FILE
+    for i, b in enumerate(basins):
+        v = readings.value[(readings.basin == i) & np.isfinite(readings.value)]
+        if not v.size:
+            continue
+        if b.gauge.kind == "discharge":
+            q = float(np.median(v)) / b.area_km2
+            if q > limits["max_median_specific_discharge"]:
+                raise InputError(
+                    f"the median reading {np.median(v):g} m3 s-1 is {q:.3g} m3 s-1 per km2 of the basin's "
+                    f"{b.area_km2:g} km2, beyond any river (data.limits.max_median_specific_discharge = "
+                    f"{limits['max_median_specific_discharge']:g}): discharge in L/s instead of m3 s-1?",
+                    file=gauge, variable="value", place=f"basin '{b.id}'")
+        elif b.gauge.rating is not None:
+            r = b.gauge.rating
+            outside = float(np.mean((v < r.stage_min_m) | (v > r.stage_max_m)))
+            if outside > limits["max_fraction_outside_rating"]:
+                raise InputError(
+                    f"{outside:.0%} of the stage readings lie outside the rating's valid range "
+                    f"{r.stage_min_m:g} to {r.stage_max_m:g} m (data.limits.max_fraction_outside_rating = "
+                    f"{limits['max_fraction_outside_rating']:g}): stage in cm instead of m, or a wrong rating?",
+                    file=gauge, variable="value", place=f"basin '{b.id}'")
+
+
 def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
     """Read and validate the raw folder and build the three prepared Datasets (no writing).
 
@@ -313,6 +361,7 @@ def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
     weather = raw_io.read_weather(folder / raw_io.WEATHER_FILE, ids, need_pet=data["pet_method"] == "given",
                                   all_ids=all_ids)
     readings = raw_io.read_gauge(folder / raw_io.GAUGE_FILE, ids, all_ids=all_ids)
+    check_plausible(basins, weather, readings, data["limits"], folder)
     lat = np.array([b.latitude for b in basins])
     lon = np.array([b.longitude for b in basins])
     area = np.array([b.area_km2 for b in basins])

@@ -323,6 +323,8 @@ class RunWriter(_StreamedFile):
                 continue
             values = np.asarray(values)
             n = values.shape[1]
+            if values.ndim == 3:  # ensemble and quantile values are finite, or the run is wrong
+                _require_finite(values, self.path, name, self.basins, self.days[start:start + n])
             if values.ndim == 3:  # (basin, n, member) -> (basin, member, n) on disk
                 values = values.transpose(0, 2, 1)
             self.nc.variables[name][..., start:start + n] = values
@@ -333,6 +335,20 @@ class RunWriter(_StreamedFile):
         """Global attributes known only at the end (diagnostics, warnings)."""
         with _NC_LOCK:
             self.nc.setncatts({k: str(v) for k, v in attrs.items()})
+
+
+def _require_finite(values: np.ndarray, path, name: str, basins, days) -> None:
+    """RunError naming the product, the variable, the first basin and day of a non-finite
+    value in ``values`` (basin, day, ...): an overflow (an implausible area or forcing) must
+    stop the run, never reach a product."""
+    from assim.errors import RunError
+
+    bad = ~np.isfinite(values)
+    if bad.any():
+        b, t = np.argwhere(bad)[0][:2]
+        raise RunError("non-finite value computed (overflow: check the basin's area and forcing); "
+                       "the product is not written", file=path, variable=name,
+                       place=f"basin '{basins[b]}', {dates([days[t]])[0].date()}")
 
 
 class HindcastWriter(_StreamedFile):
@@ -423,6 +439,7 @@ def write_forecast(
     commit : the :class:`assim.io.common.FileSet` the file belongs to (with its restart)
     """
     nb, nl, nm = discharge.shape
+    _require_finite(discharge, path, "discharge", basins, issue_day + np.arange(1, nl + 1))
     names = list(thresholds)
     thr = np.stack([np.asarray(thresholds[k], dtype=np.float64) for k in names], axis=1) if names else np.zeros((nb, 0))
     q = np.asarray(quantiles, dtype=np.float64)
