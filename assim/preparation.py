@@ -426,12 +426,27 @@ def prepare(cfg: Mapping) -> dict[str, xr.Dataset]:
                "observations": (prep_io.write_observations, prep_io.OBSERVATIONS_FILE),
                "basins": (prep_io.write_basins, prep_io.BASINS_FILE)}
     paths = [out / name for _, name in writers.values()]
+    # what the layer was made from: the SHA-256 of each raw file
+    raw = Path(cfg["data"]["raw"])
+    made_from = " ".join(f"{n}:{_file_sha256(raw / n)}" for n in (raw_io.BASINS_FILE, raw_io.WEATHER_FILE,
+                                                                  raw_io.GAUGE_FILE))
     # the three files are one set: all replaced or none, never while a run reads them
-    with FileSet(paths, checksummed=paths, guard=partial(layer_lock, out, exclusive=True)) as files:
+    with FileSet(paths, checksummed=paths, attrs={"raw_sha256": made_from},
+                 guard=partial(layer_lock, out, exclusive=True)) as files:
         for key, (write, name) in writers.items():
             path = write(datasets[key], out / name, commit=files)
             datasets[key].attrs["product_path"] = str(path)
     return datasets
+
+
+def _file_sha256(path: Path) -> str:
+    import hashlib
+
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
 
 
 def _longest_run(mask: np.ndarray) -> np.ndarray:
