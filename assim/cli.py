@@ -1,8 +1,12 @@
 """The ``assim`` command line: a thin layer over :mod:`assim.pipeline`.
 
-Exit status 0 on success; 2 on bad input or config, with one line on stderr naming file,
-variable and place (never a traceback for a user error). Every subcommand that succeeds ends
-its standard output with the caution (:data:`assim.caution.CAUTION`), once.
+Exit status 0 on success; 2 on bad input or config, and also when the machine fails a write
+(a full disk, an unwritable folder, a lock held by another run): one line on stderr naming
+file, variable and place, never a traceback, and the earlier files left as they were. One
+status for both, because for a caller both mean the same: nothing was replaced, fix the cause
+and run the command again. A closed stdout (the summary's reader went away) is not an error.
+Every subcommand that succeeds ends its standard output with the caution
+(:data:`assim.caution.CAUTION`), once.
 """
 
 from __future__ import annotations
@@ -59,6 +63,7 @@ def _overrides(items: Sequence[str]) -> dict:
     import yaml
 
     from assim.errors import ConfigError
+    from assim.io.common import load_yaml, yaml_problem
 
     out: dict = {}
     for item in items:
@@ -66,9 +71,10 @@ def _overrides(items: Sequence[str]) -> dict:
         if not sep or not key.strip():
             raise ConfigError("expected KEY=VALUE", file="--set", variable=item)
         try:
-            value = yaml.safe_load(text)
-        except yaml.YAMLError:
-            raise ConfigError("VALUE is not valid YAML", file="--set", variable=key) from None
+            value = load_yaml(text)  # dates stay text, as in the config file
+        except yaml.YAMLError as exc:
+            raise ConfigError(f"VALUE is not valid YAML ({yaml_problem(exc)[0]})", file="--set",
+                              variable=key) from None
         *parents, leaf = key.strip().split(".")
         node = out
         for p in parents:
@@ -145,6 +151,16 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"assim {args.command}: interrupted; no partial output was kept", file=sys.stderr)
         return 130
-    print(message)
-    print(f"CAUTION: {CAUTION}")
+    try:
+        print(message)
+        print(f"CAUTION: {CAUTION}")
+        sys.stdout.flush()
+    except BrokenPipeError:
+        # stdout was closed by the reader (`assim forecast ... | head -0`): the files are
+        # written; the summary has nowhere to go. Quiet exit, as a shell tool does.
+        import os
+
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 0
     return 0

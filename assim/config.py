@@ -19,9 +19,21 @@ import jsonschema
 import yaml
 
 from assim.errors import ConfigError
+from assim.io.common import load_yaml, yaml_problem
 
 # Package data: installed with assim, so a wheel validates configs without the repository.
 SCHEMA_PATH = Path(__file__).resolve().parent / "schemas" / "config.schema.yaml"
+
+#: Settings that change how a run is computed but never its numbers (scheduling, chunking,
+#: display) and the sections a run product does not depend on (paths, later stages). They
+#: are left out of :meth:`Config.digest_results`, so that changing them (as the workflow
+#: does with ``--set ensemble.workers=N``) never stops a continued run from keeping its
+#: earlier days.
+NOT_RESULTS = {
+    "ensemble": ("basin_chunk", "member_chunk", "time_block_days", "scheduler", "workers", "progress"),
+    "period": ("end",),
+    "data": None, "results": None, "hindcast": None, "forecast": None, "issue_date": None,
+}
 
 
 class Config(dict):
@@ -50,10 +62,24 @@ class Config(dict):
         text = json.dumps(chosen, sort_keys=True, default=str)
         return hashlib.sha256(text.encode()).hexdigest()
 
+    def digest_results(self) -> str:
+        """SHA-256 of the settings that change a run product's numbers or layout: everything
+        but :data:`NOT_RESULTS` (a run's product and its continuation from a restart must
+        agree on this digest for the earlier days to be kept)."""
+        chosen = {}
+        for k in sorted(self):
+            skip = NOT_RESULTS.get(k, ())
+            if skip is None:
+                continue
+            v = self[k]
+            chosen[k] = {kk: vv for kk, vv in v.items() if kk not in skip} if isinstance(v, Mapping) else v
+        text = json.dumps(chosen, sort_keys=True, default=str)
+        return hashlib.sha256(text.encode()).hexdigest()
+
 
 def read_schema() -> dict:
     with open(SCHEMA_PATH, encoding="utf-8") as f:
-        return yaml.safe_load(f)
+        return load_yaml(f)
 
 
 def _fill_defaults(schema: Mapping, value: Any) -> Any:
@@ -91,13 +117,17 @@ def _first_nul(value: Any, key: str = "") -> str | None:
     return None
 
 
-def validate(raw: Mapping, source: str = "<config>") -> Config:
+def validate(raw: Mapping, source: str = "<config>", overrides: Mapping | None = None,
+             overrides_source: str = "--set") -> Config:
     """Validate a config mapping against the schema, fill defaults, return a :class:`Config`.
+
+    ``overrides`` (already merged into ``raw``) are the keys given apart from the file; an
+    error in one of them names ``overrides_source`` instead of ``source``.
 
     Raises
     ------
     ConfigError
-        naming the file, the key path and what the schema expects.
+        naming the file (or ``--set``), the key path and what the schema expects.
     """
     schema = read_schema()
     if not isinstance(raw, Mapping):
@@ -107,7 +137,8 @@ def validate(raw: Mapping, source: str = "<config>") -> Config:
     if errors:
         e = errors[0]
         key = ".".join(str(p) for p in e.absolute_path) or "(top level)"
-        raise ConfigError(e.message, file=source, variable=key)
+        where = overrides_source if _within(overrides, list(e.absolute_path)) else source
+        raise ConfigError(_short(e.message), file=where, variable=key)
     bad = _first_nul(raw)
     if bad is not None:
         raise ConfigError("contains a NUL character, which no path or name may hold", file=source,
@@ -137,6 +168,21 @@ def load_plugins(cfg: Config) -> None:
         except ImportError as exc:
             raise ConfigError(f"cannot import model plugin ({exc})", file=cfg.source,
                               variable="model.plugins", place=name) from None
+def _within(tree: Mapping | None, key_path: list) -> bool:
+    """Does ``key_path`` (a schema error's path) lie in the override tree ``tree``?"""
+    node: Any = tree
+    if not node or not key_path:
+        return False
+    for k in key_path:
+        if not isinstance(node, Mapping) or k not in node:
+            return False
+        node = node[k]
+    return True
+
+
+def _short(message: str, limit: int = 200) -> str:
+    """A schema message cut to a readable length (it quotes the offending value)."""
+    return message if len(message) <= limit else message[:limit] + "..."
 
 
 def load_config(path: str | Path | None = None, **overrides: Any) -> Config:
@@ -156,7 +202,8 @@ def load_config(path: str | Path | None = None, **overrides: Any) -> Config:
     Raises
     ------
     ConfigError
-        if the file is missing, is not YAML, or fails the schema.
+        if the file is missing, is not YAML (a key given twice included, named with its
+        line), or fails the schema (an override's error names ``--set``).
     """
     raw: Any = {}
     source = "<defaults>"
@@ -164,17 +211,18 @@ def load_config(path: str | Path | None = None, **overrides: Any) -> Config:
         source = str(path)
         try:
             with open(path, encoding="utf-8") as f:
-                raw = yaml.safe_load(f)
+                raw = load_yaml(f)
         except FileNotFoundError:
             raise ConfigError("config file not found", file=source) from None
+        except IsADirectoryError:
+            raise ConfigError("the config path is a folder, not a file", file=source) from None
         except (OSError, UnicodeDecodeError) as exc:
             raise ConfigError(f"cannot read config file ({exc})", file=source) from None
         except yaml.YAMLError as exc:
-            mark = getattr(exc, "problem_mark", None)
-            place = f"line {mark.line + 1}" if mark is not None else None
-            raise ConfigError("not valid YAML", file=source, place=place) from None
+            message, key, place = yaml_problem(exc)
+            raise ConfigError(message, file=source, variable=key, place=place) from None
         if raw is None:
             raw = {}
         if not isinstance(raw, dict):
             raise ConfigError("the configuration must be a mapping of sections", file=source)
-    return validate(_merge(raw, overrides), source)
+    return validate(_merge(raw, overrides), source, overrides)

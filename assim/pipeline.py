@@ -82,9 +82,14 @@ def _day(text, what: str) -> int:
     from assim.errors import ConfigError
 
     try:
-        return day_number(text)
+        day = day_number(text)
     except ValueError:
         raise ConfigError(f"not a date YYYY-MM-DD: {text!r}", variable=what) from None
+    # dates that every reader (pandas, CF time units) can represent: years 1678..2261
+    if not day_number("1678-01-01") <= day <= day_number("2261-12-31"):
+        raise ConfigError(f"date {text!r} is outside the years 1678 to 2261 that the products can hold",
+                          variable=what)
+    return day
 
 
 def _model(cfg: Config, basins: xr.Dataset):
@@ -202,6 +207,7 @@ def _attrs(cfg: Config, model, settings, summary=None) -> dict[str, str]:
         "filter_method": settings.method if settings.assimilate else "none",
         "updated_states": " ".join(settings.update_states),
         "config_digest": cfg.digest(),
+        "results_digest": cfg.digest_results(),
     }
     return out
 
@@ -215,6 +221,23 @@ def _show_warnings(lines) -> None:
 
     for line in lines:
         warnings.warn(str(line), AssimWarning, stacklevel=3)
+def _provenance(cfg: Config) -> dict[str, str]:
+    """What a product set was made from: the write (``set_generation``) of the prepared
+    layer it read, recorded in each member."""
+    import netCDF4
+
+    from assim.io import prepared as prep_io
+
+    out = {}
+    for name in (prep_io.FORCING_FILE, prep_io.OBSERVATIONS_FILE, prep_io.BASINS_FILE):
+        try:
+            with netCDF4.Dataset(Path(cfg["data"]["prepared"]) / name) as nc:
+                gen = getattr(nc, "set_generation", None)
+        except (OSError, RuntimeError):
+            gen = None
+        if gen:
+            return {"prepared_generation": str(gen)}
+    return out
 
 
 def _health_attrs(summary, inputs) -> dict[str, str]:
@@ -260,8 +283,16 @@ def run(cfg: Config, mode: str = "assimilate", restart_from=None, until=None) ->
 
     if mode not in ("openloop", "assimilate"):
         raise ConfigError(f"mode must be openloop or assimilate, not {mode!r}", variable="mode")
-    with _product_lock(paths.run_product(cfg, mode), paths.restart(cfg, mode)):
+    with _product_lock(paths.run_product(cfg, mode), paths.restart(cfg, mode)), _reading_layer(cfg):
         return _run(cfg, mode, restart_from, until)
+
+
+def _reading_layer(cfg: Config):
+    """The shared lock on the prepared layer, held while a command reads it: ``prep`` cannot
+    replace the layer under a run (see :func:`assim.io.common.layer_lock`)."""
+    from assim.io.common import layer_lock
+
+    return layer_lock(cfg["data"]["prepared"], exclusive=False)
 
 
 def _product_lock(product: Path, *also: Path):
@@ -277,6 +308,8 @@ def _product_lock(product: Path, *also: Path):
 def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
 
     from assim import engine, paths
+    from assim.errors import ConfigError, RestartError, RunError
+    from assim.io.common import FileSet
     from assim.io.products import RunWriter, open_product
     from assim.io.restart import write_restart
     from assim.settings import settings_from_config
@@ -289,11 +322,22 @@ def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
     if restart_from is not None:
         state = _read_checked_restart(restart_from, model, inputs, identity)
     until_day = None if until is None else _day(until, "--until")
-    plan = engine.plan(inputs, settings, state, until_day)
+    try:
+        plan = engine.plan(inputs, settings, state, until_day)
+    except RunError as exc:  # the engine knows no files: name the restart
+        if exc.file is None and exc.variable == "valid_time":
+            raise RestartError(exc.message, file=restart_from, variable=exc.variable, place=exc.place) from None
+        raise
     out_days = inputs.days[plan.output_slice]
+    if settings.spinup_days >= len(inputs.days):
+        raise ConfigError(f"the spin-up ({settings.spinup_days} days) leaves no day of the period "
+                          f"{_period(cfg)[0]} to {_period(cfg)[1]} to write; shorten it",
+                          file=cfg.source, variable="period.spinup_days")
     path = paths.run_product(cfg, mode)
-    earlier = None if state is None else _continued_product(path, cfg, inputs, settings, state.day)
+    earlier = None if state is None else _continued_product(path, cfg, inputs, settings, state.day, restart_from)
     bar = _progress(cfg, mode)
+    restart_path = paths.restart(cfg, mode)
+    files = FileSet([path, restart_path], checksummed=[restart_path], attrs=_provenance(cfg))
     writer = RunWriter(
         path, basins=inputs.basin_ids, days=out_days, members=settings.members, mode=mode,
         state_names=settings.write_states,
@@ -301,39 +345,62 @@ def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
         parameter_names=settings.estimate if mode == "assimilate" else (),
         quantiles=settings.quantiles, float32=settings.float32,
         time_chunk=min(settings.time_block_days, 365), state_noise=bool(settings.state_noise),
-        earlier=earlier, attrs=_attrs(cfg, model, settings),
+        earlier=earlier, attrs=_attrs(cfg, model, settings), commit=files,
     )
-    try:
-        with writer:
-            summary = engine.run(model, inputs, settings, writer, state=state, until_day=until_day,
-                                 progress=bar)
-            writer.set_attributes(**_health_attrs(summary, inputs))
-    finally:
-        bar.close()
+    # the product and its restart are one set: both replaced, or neither (a full disk)
+    with files:
+        try:
+            with writer:
+                summary = engine.run(model, inputs, settings, writer, state=state, until_day=until_day,
+                                     progress=bar)
+                writer.set_attributes(**_health_attrs(summary, inputs))
+        finally:
+            bar.close()
+        write_restart(restart_path, _to_restart(summary.state, model, inputs,
+                                                {**identity, **_readings_identity(cfg, summary.state.day)}),
+                      commit=files)
     _show_warnings(engine.summarise_warnings(summary.warnings))
-    write_restart(paths.restart(cfg, mode),
-                  _to_restart(summary.state, model, inputs, {**identity, **_readings_identity(cfg, summary.state.day)}))
     return open_product(path)
 
 
-def _continued_product(path, cfg: Config, inputs, settings, restart_day: int):
-    """The existing product ``path`` if the run being restarted wrote it: same config, same
-    basins and members, last day the restart's valid day. Its days are then kept in front
-    of the continuation, so that a run split by a restart gives the uninterrupted run's file.
-    Anything else is None (the continuation is written alone)."""
+def _continued_product(path, cfg: Config, inputs, settings, restart_day: int, restart_path):
+    """The existing product ``path`` if the run being restarted wrote it: written together
+    with the restart (same ``set_generation``), with the settings that change results
+    (:meth:`assim.config.Config.digest_results`; not scheduler, workers, chunks, period.end),
+    the same basins and members, last day the restart's valid day. Its days are then kept in
+    front of the continuation, so that a run split by a restart gives the uninterrupted
+    run's file. None when there is no product (the continuation is written alone).
 
-    from assim.io.products import read_run_extent
+    Raises
+    ------
+    RunError
+        naming the product, when it exists but cannot be continued: a continuation never
+        replaces a product's earlier days silently.
+    """
+    from assim.errors import RunError
+    from assim.io.products import dates, read_run_extent
+    from assim.io.restart import read_restart_header
 
     extent = read_run_extent(path)
-    same = (
-        extent is not None
-        and extent["config_digest"] == cfg.digest()
-        and extent["basins"] == list(inputs.basin_ids)
-        and extent["members"] in (None, settings.members)
-        and extent["n_time"] > 0
-        and extent["last_day"] == int(restart_day)
-    )
-    return path if same else None
+    if extent is None or extent["n_time"] == 0:
+        return None
+    generation = read_restart_header(restart_path)[1].get("set_generation")
+    why = None
+    if extent["basins"] != list(inputs.basin_ids) or extent["members"] not in (None, settings.members):
+        why = "it holds other basins or another ensemble size"
+    elif extent["results_digest"] != cfg.digest_results():
+        why = "it was written with other settings that change results"
+    elif extent["last_day"] != int(restart_day):
+        why = (f"it ends on {dates([extent['last_day']])[0].date()}, the restart is valid on "
+               f"{dates([restart_day])[0].date()}")
+    elif generation and extent["set_generation"] and generation != extent["set_generation"]:
+        why = "it was not written with this restart"
+    if why is None:
+        return path
+    span = f"{dates([extent['first_day']])[0].date()} to {dates([extent['last_day']])[0].date()}"
+    raise RunError(f"holds {extent['n_time']} days ({span}) that this continuation cannot keep: {why}; "
+                   "move the file away (or choose another results folder) to write the continuation alone",
+                   file=path)
 
 
 class _HindcastSink:
@@ -361,7 +428,7 @@ def hindcast(cfg: Config) -> xr.Dataset:
     """
     from assim import paths
 
-    with _product_lock(paths.hindcast(cfg)):
+    with _product_lock(paths.hindcast(cfg)), _reading_layer(cfg):
         return _hindcast(cfg)
 
 
@@ -513,7 +580,8 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
     import dataclasses
 
     from assim import conventions, engine, paths
-    from assim.errors import ConfigError, RestartError
+    from assim.errors import ConfigError, RestartError, RunError
+    from assim.io.common import FileSet
     from assim.io.products import forecast_lock, read_forcing_forecast, write_forecast
     from assim.io.restart import write_restart
     from assim.settings import settings_from_config
@@ -523,7 +591,7 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
     issue_day = _day(issue_date, "--issue-date")
     iso = conventions.iso(issue_day)
     lock = paths.forecasts(cfg) / f".forecast-{iso}.lock"
-    with forecast_lock(lock, [paths.forecast(cfg, iso), paths.forecast_restart(cfg, iso)]):
+    with forecast_lock(lock, [paths.forecast(cfg, iso), paths.forecast_restart(cfg, iso)]), _reading_layer(cfg):
         restart_path, valid, passed_over = _latest_restart(cfg, issue_day)
         _show_warnings(passed_over)
         if valid > issue_day:
@@ -553,17 +621,28 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
         else:
             analysis = (f"performed: {n_used} gauge readings assimilated over the {n_days} days since the "
                         f"last restart (valid at {conventions.iso(valid)})")
-        write_restart(paths.forecast_restart(cfg, iso),
-                      _to_restart(summary.state, model, inputs, {**identity, **_readings_identity(cfg, issue_day)}))
-        q = engine.forecast_issue(model, inputs, settings, summary.state, leads, kind, file_forcing)
+        try:
+            q = engine.forecast_issue(model, inputs, settings, summary.state, leads, kind, file_forcing)
+        except RunError as exc:  # the engine knows no files: name the forcing it lacked
+            if exc.file is None:
+                forcing = fc["forcing_file"] if kind == "file" else Path(cfg["data"]["prepared"]) / "forcing.nc"
+                raise RunError(exc.message, file=forcing, variable=exc.variable, place=exc.place) from None
+            raise
         thr = basins["thresholds"].values
         names = [str(t) for t in basins["threshold"].values] if "threshold" in basins.coords else []
-        ds = write_forecast(
-            paths.forecast(cfg, iso), basins=inputs.basin_ids, issue_day=issue_day, discharge=q,
-            quantiles=fc["quantiles"], thresholds={n: thr[:, j] for j, n in enumerate(names)},
-            analysis=analysis, float32=settings.float32,
-            attrs={**_attrs(cfg, model, settings), "forcing": kind, "restart": str(restart_path),
-                   **({"warnings": " | ".join(passed_over + [str(w) for w in summary.warnings])}
-                      if passed_over or summary.warnings else {})},
-        )
+        product, restart_file = paths.forecast(cfg, iso), paths.forecast_restart(cfg, iso)
+        # the forecast and its restart are one set: both written, or neither
+        with FileSet([product, restart_file], checksummed=[restart_file], attrs=_provenance(cfg)) as files:
+            ds = write_forecast(
+                product, basins=inputs.basin_ids, issue_day=issue_day, discharge=q,
+                quantiles=fc["quantiles"], thresholds={n: thr[:, j] for j, n in enumerate(names)},
+                analysis=analysis, float32=settings.float32,
+                attrs={**_attrs(cfg, model, settings), "forcing": kind, "restart": str(restart_path),
+                       **({"warnings": " | ".join(passed_over + [str(w) for w in summary.warnings])}
+                          if passed_over or summary.warnings else {})},
+                commit=files,
+            )
+            write_restart(restart_file, _to_restart(summary.state, model, inputs,
+                                                    {**identity, **_readings_identity(cfg, issue_day)}),
+                          commit=files)
     return ds

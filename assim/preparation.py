@@ -279,6 +279,54 @@ def _daily_observations(basins: list[raw_io.Basin], readings: raw_io.Readings, d
     return (mean, day_flag, coverage, n_read, n_rej), flags, inside
 
 
+def check_plausible(basins: list[raw_io.Basin], weather: raw_io.Weather, readings: raw_io.Readings,
+                    limits: Mapping, folder: Path) -> None:
+    """Refuse raw records beyond the physical plausibility limits (config ``data.limits``):
+    a basin area, a day's precipitation, the median of a discharge gauge per km2 of area (a
+    record in L/s), a stage record mostly outside its rating's range (a record in cm).
+
+    Raises
+    ------
+    InputError
+        naming the file, the variable, the basin (and the date) and the limit.
+    """
+    for b in basins:
+        if not b.area_km2 <= limits["max_area_km2"]:
+            raise InputError(f"area {b.area_km2:g} km2 is beyond the plausible maximum "
+                             f"(data.limits.max_area_km2 = {limits['max_area_km2']:g})",
+                             file=folder / raw_io.BASINS_FILE, variable="area_km2", place=f"basin '{b.id}'")
+    p = weather.precipitation
+    bad = ~(p <= limits["max_precipitation_mm"])
+    if bad.any():
+        i, t = np.argwhere(bad)[0]
+        raise InputError(f"{p[i, t]:g} mm in one day is beyond the plausible maximum "
+                         f"(data.limits.max_precipitation_mm = {limits['max_precipitation_mm']:g})",
+                         file=folder / raw_io.WEATHER_FILE, variable="precipitation_mm",
+                         place=f"basin '{weather.basins[i]}', {weather.dates[t]}")
+    gauge = folder / raw_io.GAUGE_FILE
+    for i, b in enumerate(basins):
+        v = readings.value[(readings.basin == i) & np.isfinite(readings.value)]
+        if not v.size:
+            continue
+        if b.gauge.kind == "discharge":
+            q = float(np.median(v)) / b.area_km2
+            if q > limits["max_median_specific_discharge"]:
+                raise InputError(
+                    f"the median reading {np.median(v):g} m3 s-1 is {q:.3g} m3 s-1 per km2 of the basin's "
+                    f"{b.area_km2:g} km2, beyond any river (data.limits.max_median_specific_discharge = "
+                    f"{limits['max_median_specific_discharge']:g}): discharge in L/s instead of m3 s-1?",
+                    file=gauge, variable="value", place=f"basin '{b.id}'")
+        elif b.gauge.rating is not None:
+            r = b.gauge.rating
+            outside = float(np.mean((v < r.stage_min_m) | (v > r.stage_max_m)))
+            if outside > limits["max_fraction_outside_rating"]:
+                raise InputError(
+                    f"{outside:.0%} of the stage readings lie outside the rating's valid range "
+                    f"{r.stage_min_m:g} to {r.stage_max_m:g} m (data.limits.max_fraction_outside_rating = "
+                    f"{limits['max_fraction_outside_rating']:g}): stage in cm instead of m, or a wrong rating?",
+                    file=gauge, variable="value", place=f"basin '{b.id}'")
+
+
 def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
     """Read and validate the raw folder and build the three prepared Datasets (no writing).
 
@@ -302,6 +350,7 @@ def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
     weather = raw_io.read_weather(folder / raw_io.WEATHER_FILE, ids, need_pet=data["pet_method"] == "given",
                                   all_ids=all_ids)
     readings = raw_io.read_gauge(folder / raw_io.GAUGE_FILE, ids, all_ids=all_ids)
+    check_plausible(basins, weather, readings, data["limits"], folder)
     lat = np.array([b.latitude for b in basins])
     lon = np.array([b.longitude for b in basins])
     area = np.array([b.area_km2 for b in basins])
@@ -338,8 +387,11 @@ def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
 def prepare(cfg: Mapping) -> dict[str, xr.Dataset]:
     """Prepare the raw folder ``cfg["data"]["raw"]`` into ``cfg["data"]["prepared"]``.
 
-    Everything is read and validated before anything is written; each file is written to
-    a temporary name and renamed when complete.
+    Everything is read and validated before anything is written; the three files are
+    written to temporary names and renamed together when all are complete
+    (:class:`assim.io.common.FileSet`), each stamped with the write's ``set_generation`` and
+    the checksums of its variables, so that a failed write (a full disk) leaves the old layer
+    whole and a layer replaced only in part is refused by its readers.
 
     Returns
     -------
@@ -351,15 +403,37 @@ def prepare(cfg: Mapping) -> dict[str, xr.Dataset]:
     InputError
         naming the file, the variable or column and the first bad place.
     """
+    from functools import partial
+
+    from assim.io.common import FileSet, layer_lock
+
     datasets, _ = build(cfg)
     out = Path(cfg["data"]["prepared"])
     writers = {"forcing": (prep_io.write_forcing, prep_io.FORCING_FILE),
                "observations": (prep_io.write_observations, prep_io.OBSERVATIONS_FILE),
                "basins": (prep_io.write_basins, prep_io.BASINS_FILE)}
-    for key, (write, name) in writers.items():
-        path = write(datasets[key], out / name)
-        datasets[key].attrs["product_path"] = str(path)
+    paths = [out / name for _, name in writers.values()]
+    # what the layer was made from: the SHA-256 of each raw file
+    raw = Path(cfg["data"]["raw"])
+    made_from = " ".join(f"{n}:{_file_sha256(raw / n)}" for n in (raw_io.BASINS_FILE, raw_io.WEATHER_FILE,
+                                                                  raw_io.GAUGE_FILE))
+    # the three files are one set: all replaced or none, never while a run reads them
+    with FileSet(paths, checksummed=paths, attrs={"raw_sha256": made_from},
+                 guard=partial(layer_lock, out, exclusive=True)) as files:
+        for key, (write, name) in writers.items():
+            path = write(datasets[key], out / name, commit=files)
+            datasets[key].attrs["product_path"] = str(path)
     return datasets
+
+
+def _file_sha256(path: Path) -> str:
+    import hashlib
+
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
 
 
 def _longest_run(mask: np.ndarray) -> np.ndarray:

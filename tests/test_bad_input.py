@@ -246,6 +246,75 @@ def _forcing_forecast(defect: str):
     return f
 
 
+def _run_other(root, *args, results="other"):
+    """A run of the same scenario into another results folder (its files become part of
+    the scenario); returns that folder."""
+    r = cli(*args, "--config", write_config(root, results=str(root / results)))
+    assert r.returncode == 0, r.stderr
+    write_config(root)
+    return root / results
+
+
+def _restart_openloop(root):
+    """An open-loop restart given to an assimilation run."""
+    r = cli("run", "--mode", "openloop", "--config", root / "config.yaml")
+    assert r.returncode == 0, r.stderr
+    return ["--restart-from", root / "results" / "restart-openloop.nc"]
+
+
+def _restart_edit(name: str, var: str, fn):
+    """A copy of restart.nc named ``name`` whose variable ``var`` is changed by ``fn`` on its
+    raw values (netCDF4, the attributes and checksums left as written)."""
+    def f(root):
+        p = root / name
+        shutil.copy(root / "results" / "restart.nc", p)
+        with netCDF4.Dataset(p, "r+") as ds:
+            _var_set(var, fn)(ds)
+        return ["--restart-from", p]
+    return f
+
+
+def _flip_exponent_bit(a):
+    """The lowest exponent bit of the first value flipped (a store doubled or halved)."""
+    a = np.array(a, dtype=np.float64)
+    flat = a.reshape(-1).view(np.uint64)
+    flat[0] ^= np.uint64(1) << np.uint64(52)
+    return a
+
+
+def _global_attr(name: str, key: str, value: str):
+    def f(root):
+        with netCDF4.Dataset(root / name, "r+") as ds:
+            ds.setncattr(key, value)
+    return f
+
+
+def _lock_dir(rel: str):
+    def f(root):
+        (root / rel).mkdir(parents=True)
+    return f
+
+
+def _then(*fns):
+    def f(root):
+        extra = []
+        for fn in fns:
+            out = fn(root)
+            if isinstance(out, list):
+                extra += out
+        return extra
+    return f
+
+
+def _scale_gauge(factor: float, basin: str):
+    def fn(df):
+        df = df.copy()
+        m = df["basin"] == basin
+        df.loc[m, "value"] = (df.loc[m, "value"].astype(float) * factor).map(repr)
+        return df
+    return fn
+
+
 CHECK, PREP = ("check",), ("prep",)
 FORECAST = ("forecast", "--issue-date", "2012-08-31")
 RUN = ("run", "--mode", "assimilate")
@@ -348,6 +417,111 @@ CASES = [
     Case("--issue-date not a date", ("forecast", "--issue-date", "31/08/2012"), _args(), ("--issue-date",)),
     Case("--issue-date before the restart", ("forecast", "--issue-date", "2012-05-01"), _args(),
          ("restart.nc", "valid_time", "2012-08-31")),
+    # ---- duplicate YAML keys (PyYAML keeps the last silently)
+    Case("config key given twice", CHECK,
+         _config_text("ensemble:\n  members: 16\n  members: 3\n"), ("config.yaml", "members", "line 3")),
+    Case("config section given twice", CHECK, _config_text("filter: {method: enkf}\nfilter: {method: etkf}\n"),
+         ("config.yaml", "filter", "line 2")),
+    Case("config key twice in a flow mapping", CHECK, _config_text("ensemble: {seed: 1, seed: 2}\n"),
+         ("config.yaml", "seed", "line 1")),
+    Case("basins area given twice", CHECK,
+         _basins_text(lambda b: b.replace(b"area_km2: 48.5", b"area_km2: 48.5\n  area_km2: 4850.0")),
+         ("basins.yaml", "area_km2", "line 5")),
+    Case("basins id given twice in one basin", CHECK,
+         _basins_text(lambda b: b.replace(b"- id: velmorra", b"- id: velmorra\n  id: other")),
+         ("basins.yaml", "'id'", "line 3")),
+    Case("basins list given twice", CHECK, _basins_text(lambda b: b + b"\nbasins: []\n"), ("basins.yaml", "basins", "line")),
+    Case("--set mapping with a key twice", CHECK, _args("--set", "ensemble={members: 3, members: 4}"),
+         ("--set", "ensemble")),
+    # ---- --set values: errors blame --set, not the config file
+    Case("--set seed beyond 64 bits", RUN, _args("--set", "ensemble.seed=99999999999999999999999"),
+         ("--set", "ensemble.seed")),
+    Case("--set seed negative", CHECK, _args("--set", "ensemble.seed=-1"), ("--set", "ensemble.seed")),
+    Case("--set one member", CHECK, _args("--set", "ensemble.members=1"), ("--set", "ensemble.members")),
+    Case("--set unknown key", CHECK, _args("--set", "ensemble.membres=8"), ("--set", "ensemble")),
+    Case("--set spin-up negative", CHECK, _args("--set", "period.spinup_days=-1"), ("--set", "period.spinup_days")),
+    Case("--set filter method unknown", RUN, _args("--set", "filter.method=magic"), ("--set", "filter.method")),
+    # ---- dates on the command line
+    Case("--issue-date 9999-12-31", ("forecast", "--issue-date", "9999-12-31"), _args(), ("--issue-date", "9999")),
+    Case("--issue-date 0000-01-01", ("forecast", "--issue-date", "0000-01-01"), _args(), ("--issue-date", "0000")),
+    Case("--issue-date 30 February", ("forecast", "--issue-date", "2012-02-30"), _args(), ("--issue-date",)),
+    Case("--until 0000-01-01", RUN, _args("--until", "0000-01-01"), ("--until",)),
+    Case("--until 9999-12-31", RUN, _args("--until", "9999-12-31"), ("--until",)),
+    # ---- lock paths that are folders
+    Case("run lock path is a folder", RUN, _lock_dir("results/.analysis.nc.lock"), (".analysis.nc.lock", "not a plain file")),
+    Case("open-loop lock path is a folder", ("run", "--mode", "openloop"), _lock_dir("results/.openloop.nc.lock"),
+         (".openloop.nc.lock",)),
+    Case("prep lock path is a folder", PREP, _lock_dir("prepared/.prepared.lock"), (".prepared.lock",)),
+    Case("forecast lock path is a folder", FORECAST, _lock_dir("results/forecasts/.forecast-2012-08-31.lock"),
+         (".forecast-2012-08-31.lock",)),
+    Case("hindcast lock path is a folder", ("hindcast",), _lock_dir("results/.hindcast.nc.lock"), (".hindcast.nc.lock",)),
+    # ---- spin-up, limits, units
+    Case("spin-up longer than the period", RUN, _args("--set", "period.spinup_days=4000"), ("period.spinup_days",)),
+    Case("spin-up as long as the period", RUN, _config(period={"spinup_days": 244}), ("config.yaml", "period.spinup_days")),
+    Case("spin-up too long for the open loop", ("run", "--mode", "openloop"), _args("--set", "period.spinup_days=4000"),
+         ("period.spinup_days",)),
+    Case("basins area 1e308", CHECK, _basin("area_km2", 1.0e308), ("basins.yaml", "area_km2", "velmorra")),
+    Case("basins area 1e308 at prep", PREP, _basin("area_km2", 1.0e308), ("basins.yaml", "area_km2", "velmorra")),
+    Case("basins area infinite", CHECK, _basin("area_km2", float("inf")), ("basins.yaml", "area_km2", "velmorra")),
+    Case("weather rain 1e12 mm", CHECK, _csv("weather.csv", _set("precipitation_mm", "1e12")),
+         ("weather.csv", "precipitation_mm", "velmorra")),
+    Case("weather rain 1e12 mm at prep", PREP, _csv("weather.csv", _set("precipitation_mm", "1e12")),
+         ("weather.csv", "precipitation_mm")),
+    Case("weather rain 3000 mm in a day", CHECK, _csv("weather.csv", _set("precipitation_mm", "3000")),
+         ("weather.csv", "precipitation_mm")),
+    Case("gauge discharge in L/s", CHECK, _csv("gauge.csv", _scale_gauge(1000.0, "oskerrin")),
+         ("gauge.csv", "value", "oskerrin", "L/s")),
+    Case("gauge discharge in L/s at prep", PREP, _csv("gauge.csv", _scale_gauge(1000.0, "oskerrin")),
+         ("gauge.csv", "value", "oskerrin")),
+    Case("gauge stage in cm", CHECK, _csv("gauge.csv", _scale_gauge(100.0, "velmorra")),
+         ("gauge.csv", "value", "velmorra", "cm")),
+    Case("gauge stage in mm at prep", PREP, _csv("gauge.csv", _scale_gauge(1000.0, "velmorra")),
+         ("gauge.csv", "value", "velmorra")),
+    Case("limit set to zero", CHECK, _config(data={"limits": {"max_area_km2": 0}}), ("config.yaml", "data.limits")),
+    # ---- restarts: mode, damage, validity
+    Case("open-loop restart for assimilation", RUN, _restart_openloop, ("restart-openloop.nc", "mode")),
+    Case("assimilation restart for the open loop", ("run", "--mode", "openloop"),
+         _args("--restart-from", "results/restart.nc"), ("restart.nc", "mode")),
+    Case("restart states exponent bit flipped", RUN, _restart_edit("flipped.nc", "states", _flip_exponent_bit),
+         ("flipped.nc", "states", "damaged")),
+    Case("restart parameter changed", RUN, _restart_edit("param.nc", "parameter_x1", lambda a: a * 1.01),
+         ("param.nc", "parameter_x1", "damaged")),
+    Case("restart collapse days changed", RUN, _restart_edit("collapse.nc", "collapse_days", lambda a: a + 1),
+         ("collapse.nc", "collapse_days", "damaged")),
+    Case("restart AR(1) error changed", RUN, _restart_edit("ar1.nc", "ar1_precipitation", lambda a: -a),
+         ("ar1.nc", "ar1_precipitation", "damaged")),
+    Case("restart checksum attribute garbled", RUN,
+         _then(_global_attr("results/restart.nc", "sha256_variables", "states:00"),
+               _args("--restart-from", "results/restart.nc")), ("restart.nc", "damaged")),
+    Case("restart valid after period.end", RUN, _args("--restart-from", "results/restart.nc", "--set",
+                                                      "period.end=2012-06-30"), ("restart.nc", "valid_time")),
+    Case("restart valid long before the period", RUN,
+         _then(lambda r: _run_other(r, "run", "--until", "2012-02-15"),
+               _args("--restart-from", "other/restart.nc", "--set", "period.start=2012-04-01")),
+         ("other/restart.nc", "valid_time")),
+    Case("restart and product from different writes", RUN,
+         _then(_global_attr("results/analysis.nc", "set_generation", "0" * 32),
+               _args("--restart-from", "results/restart.nc")), ("restart.nc", "analysis.nc", "different writes")),
+    Case("continuation would drop the product's days", RUN,
+         _args("--restart-from", "results/restart.nc", "--set", "outputs.float32=false"),
+         ("analysis.nc", "cannot keep")),
+    # ---- prepared layer: mixed or damaged
+    Case("prepared layer mixed", RUN, _global_attr("prepared/forcing.nc", "set_generation", "f" * 32),
+         ("forcing.nc", "observations.nc", "different writes")),
+    Case("prepared basins from another prep", RUN, _global_attr("prepared/basins.nc", "set_generation", "e" * 32),
+         ("basins.nc", "different writes")),
+    Case("prepared precipitation changed", RUN,
+         _nc("prepared/forcing.nc", _var_set("precipitation", lambda a: a * 1.5)), ("forcing.nc", "precipitation", "damaged")),
+    Case("prepared area changed", RUN, _nc("prepared/basins.nc", _var_set("area", lambda a: a * 100)),
+         ("basins.nc", "area", "damaged")),
+    Case("prepared discharge changed", RUN,
+         _nc("prepared/observations.nc", _var_set("discharge", lambda a: np.where(np.isfinite(a), a * 2, a))),
+         ("observations.nc", "discharge", "damaged")),
+    Case("prepared checksums garbled", CHECK, _global_attr("prepared/basins.nc", "sha256_variables", "x"),
+         ("basins.nc", "damaged")),
+    # ---- forecasts
+    Case("forecast climatology without another year", FORECAST, _config(forecast={"leads": 3, "forcing": "climatology"}),
+         ("forcing.nc", "forecast.forcing")),
 ]
 
 RESULTS: dict[str, str] = {}  # case name -> "pass" or the reason it failed
@@ -384,7 +558,7 @@ def _judge_case(case: Case, root: Path, extra: list, before: dict) -> str:
 
 
 def test_battery_of_bad_inputs(good, tmp_path):
-    """At least 40 distinct bad inputs across config, raw, prepared and restart files; each
+    """At least 100 distinct bad inputs across config, raw, prepared and restart files; each
     one through the CLI in a subprocess: exit 2, one stderr line naming file and variable,
     no traceback, nothing written or changed. Common practice, no published source."""
     assert len({c.name for c in CASES}) == len(CASES)
@@ -400,11 +574,11 @@ def test_battery_of_bad_inputs(good, tmp_path):
 
 
 def test_battery_summary():
-    """Summary of the battery: count tried and count passing (at least 40, all passing)."""
+    """Summary of the battery: count tried and count passing (at least 100, all passing)."""
     tried = len(RESULTS)
     passing = sum(v == "pass" for v in RESULTS.values())
     print(f"\nbad inputs: {tried} tried, {passing} passing")
-    assert tried >= 40 and passing == tried
+    assert tried >= 100 and passing == tried
 
 
 # ------------------------------------------------------------------------------- fuzzing

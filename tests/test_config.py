@@ -165,3 +165,59 @@ def test_user_model_plugin_runs_prep_run_forecast_through_the_cli(tmp_path):
         assert np.isfinite(f["discharge"].values).all()
     with xr.open_dataset(tmp_path / "results" / "forecasts" / "restart-2012-03-20.nc") as r:
         assert [str(s) for s in r["state"].values] == ["store"] and "parameter_k" in r
+# ------------------------------------------------------------- duplicate keys, --set
+
+
+@pytest.mark.parametrize("text, key, line", [
+    ("ensemble:\n  members: 16\n  members: 3\n", "members", 3),
+    ("ensemble: {seed: 1}\nfilter: {}\nensemble: {seed: 2}\n", "ensemble", 3),
+    ("ensemble: {members: 8, members: 9}\n", "members", 1),
+])
+def test_duplicate_keys_are_errors(tmp_path, text, key, line):
+    """PyYAML keeps the last of two equal keys silently; the config loader refuses them,
+    naming the key and the line (YAML 1.2 section 3.2.1.1: mapping keys are unique)."""
+    p = tmp_path / "c.yaml"
+    p.write_text(text)
+    with pytest.raises(ConfigError) as info:
+        load_config(p)
+    text = str(info.value)
+    assert f"'{key}'" in text and f"line {line}" in text and "c.yaml" in text
+
+
+def test_merge_keys_may_be_overridden():
+    """A `<<: *anchor` merge overridden by an explicit key is not a duplicate (YAML merge key
+    type, yaml.org/type/merge: explicit keys override merged ones)."""
+    from assim.io.common import load_yaml
+
+    assert load_yaml("a: &x {k: 1, j: 2}\nb: {<<: *x, k: 3}\n")["b"] == {"k": 3, "j": 2}
+
+
+def test_dates_stay_text_and_set_errors_blame_set(tmp_path):
+    """An unquoted date is read as the text the schema expects (YAML 1.1 would make it a
+    date); a schema error in an override names --set, one in the file names the file.
+    Common practice, no published source."""
+    p = tmp_path / "c.yaml"
+    p.write_text("period: {start: 2012-01-01, end: 2012-12-31}\n")
+    cfg = load_config(p, period={"end": "2012-06-30"})
+    assert cfg["period"] == {**cfg["period"], "start": "2012-01-01", "end": "2012-06-30"}
+    with pytest.raises(ConfigError, match=r"^--set: variable 'ensemble.members'"):
+        load_config(p, ensemble={"members": 1})
+    p.write_text("ensemble: {members: 1}\n")
+    with pytest.raises(ConfigError, match=r"c.yaml: variable 'ensemble.members'"):
+        load_config(p)
+    with pytest.raises(ConfigError, match="ensemble.seed"):
+        load_config(None, ensemble={"seed": 2**64})
+    assert load_config(None, ensemble={"seed": 2**64 - 1})["ensemble"]["seed"] == 2**64 - 1
+
+
+def test_results_digest_ignores_only_what_does_not_change_results():
+    """Scheduler, workers, chunk sizes, progress and period.end leave the results digest as
+    it is; seed, members, filter and spin-up change it. Common practice, no published source."""
+    base = load_config(None).digest_results()
+    for section, value in (("ensemble", {"scheduler": "processes", "workers": 3, "basin_chunk": 5,
+                                         "member_chunk": 2, "time_block_days": 30, "progress": False}),
+                           ("period", {"end": "2030-01-01"}), ("forecast", {"leads": 3})):
+        assert load_config(None, **{section: value}).digest_results() == base, section
+    for section, value in (("ensemble", {"seed": 1}), ("ensemble", {"members": 8}), ("filter", {"method": "etkf"}),
+                           ("period", {"spinup_days": 10}), ("outputs", {"float32": False})):
+        assert load_config(None, **{section: value}).digest_results() != base, (section, value)

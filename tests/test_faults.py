@@ -445,3 +445,243 @@ def test_late_reading_is_picked_up_by_the_next_forecast(tmp_path):
     assert r.returncode == 0 and "passed over" not in r.stderr, r.stderr
     with xr.open_dataset(tmp_path / "results" / "forecasts" / "forecast-2012-08-22.nc") as f:
         assert f"valid at {d1}" in f.attrs["analysis"], f.attrs["analysis"]
+
+
+# ------------------------------------------------------------------- a real full disk
+
+
+def _mount_tmpfs(folder: Path, size: str) -> str | None:
+    """Mount a tmpfs of ``size`` on ``folder``; None if done, else the reason it cannot be."""
+    folder.mkdir(parents=True, exist_ok=True)
+    if os.geteuid() != 0:
+        return "mounting a tmpfs needs root"
+    r = subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={size}", "tmpfs", str(folder)],
+                       capture_output=True, text=True)
+    return None if r.returncode == 0 else f"mount -t tmpfs failed: {r.stderr.strip() or r.returncode}"
+
+
+@pytest.fixture()
+def small_disk(tmp_path):
+    """A 2 MB tmpfs (a real file system that fills up), unmounted afterwards; skipped, with
+    the reason printed, where it cannot be mounted (not root, no mount permission)."""
+    disk = tmp_path / "disk"
+    why = _mount_tmpfs(disk, "2m")
+    if why is not None:
+        print(f"\nSKIPPED real full-disk test: {why}")
+        pytest.skip(why)
+    yield disk
+    subprocess.run(["umount", "-l", str(disk)], check=False)
+
+
+def _fill(disk: Path, leave: int) -> None:
+    """Fill ``disk`` so that about ``leave`` bytes stay free (whole pages)."""
+    free = shutil.disk_usage(disk).free
+    with open(disk / "filler", "ab") as f:
+        f.write(b"\0" * max(0, free - leave))
+        f.flush()
+        os.fsync(f.fileno())
+
+
+def _unfill(disk: Path) -> None:
+    with __import__("contextlib").suppress(FileNotFoundError):
+        (disk / "filler").unlink()
+
+
+def _keep(disk: Path, folder: Path) -> None:
+    """Hard links of every file of ``folder`` elsewhere on the disk: the old files' space
+    stays used after they are replaced, as with a backup or a reader holding them open."""
+    keep = disk / "keep" / f"{folder.name}-{time.monotonic_ns()}"
+    keep.mkdir(parents=True)
+    for p in folder.iterdir():
+        if p.is_file():
+            os.link(p, keep / p.name)
+
+
+def _one_clean_line(r):
+    lines = [line for line in r.stderr.splitlines() if line.strip()]
+    assert r.returncode == 2, r.stderr
+    assert "Traceback" not in r.stderr and len(lines) == 1, r.stderr
+    return lines[0]
+
+
+@pytest.mark.parametrize("leave_kb", [5, 40, "between"])
+def test_prep_on_a_really_full_disk_keeps_the_old_layer(scenario, small_disk, tmp_path, leave_kb):
+    """The prepared folder on a real small tmpfs, the old files hard-linked elsewhere so
+    their space stays used, raw precipitation changed, the disk filled to a few kB free (5,
+    40, and enough for forcing.nc but not for the rest): `assim prep` exits 2 with one line
+    naming the file (never netCDF's RuntimeError or a PermissionError traceback), the three
+    old files are left byte for byte, no temporary remains, and a run accepts the layer
+    (it is not mixed). Common practice, no published source."""
+    root = tmp_path / "work"
+    conf = _copy_inputs(scenario, root)
+    prepared = small_disk / "prepared"
+    shutil.copytree(scenario / "prepared", prepared)
+    conf = write_config(root, data={"raw": str(root / "raw"), "prepared": str(prepared)})
+    _keep(small_disk, prepared)
+    before = _hashes(prepared)
+    w = pd.read_csv(root / "raw" / "weather.csv", dtype=str)
+    w["precipitation_mm"] = (w["precipitation_mm"].astype(float) * 1.1).round(2).map(str)
+    w.to_csv(root / "raw" / "weather.csv", index=False)
+    leave = (prepared / "forcing.nc").stat().st_size + 8192 if leave_kb == "between" else leave_kb * 1024
+    _fill(small_disk, leave)
+    r = cli("prep", "--config", conf)
+    line = _one_clean_line(r)
+    assert "prepared" in line and "earlier output left as it was" in line, line
+    assert _hashes(prepared) == before
+    assert not [p.name for p in prepared.iterdir() if p.name.endswith(".part")]
+    _unfill(small_disk)
+    r = cli("run", "--mode", "openloop", "--config", conf)
+    assert r.returncode == 0, r.stderr
+
+
+@pytest.mark.parametrize("leave_kb", [12, "half", "between"])
+def test_run_on_a_really_full_disk_keeps_product_and_restart_together(scenario, small_disk, tmp_path, leave_kb):
+    """The results folder on a real small tmpfs, the first run's analysis.nc and restart.nc
+    hard-linked elsewhere, the disk filled to 12 kB, half the product's size, and enough for
+    analysis.nc but not its restart: `assim run --set ensemble.seed=12` exits 2 with one line, and
+    analysis.nc and restart.nc are both the old ones (seed 11), never a new product beside
+    an old restart. Common practice, no published source."""
+    conf = _copy_inputs(scenario, tmp_path / "work")
+    results = small_disk / "results"
+    conf = write_config(tmp_path / "work", results=str(results))
+    r = cli("run", "--config", conf)
+    assert r.returncode == 0, r.stderr
+    _keep(small_disk, results)
+    before = _hashes(results)
+    size = (results / "analysis.nc").stat().st_size
+    leave = {"between": size + 16384, "half": size // 2}.get(leave_kb, leave_kb * 1024)
+    _fill(small_disk, leave)
+    r = cli("run", "--config", conf, "--set", "ensemble.seed=12")
+    line = _one_clean_line(r)
+    assert "results" in line and ("No space" in line or "HDF" in line or "kB free" in line), line
+    assert _hashes(results) == before
+    for name in ("analysis.nc", "restart.nc"):
+        with xr.open_dataset(results / name) as ds:
+            assert ds.attrs["seed"] == "11"
+
+
+# --------------------------------------------------------- continued runs keep their days
+
+
+@pytest.mark.parametrize("extra", [["--set", "ensemble.scheduler=threads", "--set", "ensemble.workers=2"],
+                                   ["--set", "period.end=2012-08-31", "--set", "ensemble.time_block_days=7"]])
+def test_continued_run_keeps_the_earlier_days(scenario, tmp_path, extra):
+    """`run --until D` then `run --restart-from restart.nc` with settings that do not change
+    results (scheduler, workers, block size) or a later period.end: the product holds every
+    day, equal to the uninterrupted run's (it used to shrink to the continued days). Common
+    practice, no published source."""
+    ref = _copy_inputs(scenario, tmp_path / "ref")
+    assert cli("run", "--config", ref).returncode == 0
+    conf = _copy_inputs(scenario, tmp_path / "split")
+    results = tmp_path / "split" / "results"
+    first_end = "2012-06-30"
+    args = ["--set", f"period.end={first_end}"] if "period.end=2012-08-31" in extra else ["--until", first_end]
+    r = cli("run", "--config", conf, *args)
+    assert r.returncode == 0, r.stderr
+    r = cli("run", "--config", conf, "--restart-from", results / "restart.nc", *extra)
+    assert r.returncode == 0, r.stderr
+    with xr.open_dataset(tmp_path / "ref" / "results" / "analysis.nc") as a, xr.open_dataset(results / "analysis.nc") as b:
+        assert b.sizes["time"] == a.sizes["time"]
+        np.testing.assert_array_equal(a["discharge"].values, b["discharge"].values)
+
+
+def test_continued_run_that_cannot_keep_its_days_is_refused(scenario, tmp_path):
+    """A continuation with settings that change results cannot keep the product's earlier
+    days: it is refused with one line naming the product, which is left as it was. Common
+    practice, no published source."""
+    conf = _copy_inputs(scenario, tmp_path)
+    results = tmp_path / "results"
+    assert cli("run", "--config", conf, "--until", "2012-06-30").returncode == 0
+    before = _hashes(results)
+    r = cli("run", "--config", conf, "--restart-from", results / "restart.nc", "--set", "outputs.float32=false")
+    line = _one_clean_line(r)
+    assert "analysis.nc" in line and "cannot keep" in line
+    assert _hashes(results) == before
+
+
+# ----------------------------------------------------------------------------- locks
+
+
+def test_lock_of_an_unrelated_live_process_does_not_block(scenario, tmp_path):
+    """A lock naming the PID of a live process that is not the run that wrote it (another
+    start time, or an old lock without one naming a process that is not assim): reported
+    as stale and replaced, the run goes through. Common practice, no published source."""
+    import socket
+
+    from assim.io.common import _start_time
+
+    conf = _copy_inputs(scenario, tmp_path)
+    sleeper = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    try:
+        (tmp_path / "results").mkdir()
+        lock = tmp_path / "results" / ".openloop.nc.lock"
+        for content in (f"{sleeper.pid} {socket.gethostname()} {int(_start_time(sleeper.pid)) - 5}\n",
+                        f"{sleeper.pid} {socket.gethostname()}\n", f"1 {socket.gethostname()} 1\n"):
+            lock.write_text(content)
+            r = cli("run", "--mode", "openloop", "--config", conf)
+            assert r.returncode == 0, r.stderr
+            assert "stale lock" in r.stderr and not lock.exists()
+    finally:
+        sleeper.kill()
+        sleeper.wait()
+
+
+def test_prep_waits_for_a_run_reading_the_layer(scenario, tmp_path):
+    """A reader holds the prepared layer's shared lock (as `assim run` does while it reads)
+    for 3 s: a concurrent `assim prep` does not replace any file until it lets go, so the
+    reader sees the same layer at the start and the end of its hold. Common practice, no
+    published source."""
+    conf = _copy_inputs(scenario, tmp_path)
+    prepared = tmp_path / "prepared"
+    reader = subprocess.Popen([sys.executable, "-c", (
+        "import hashlib, pathlib, sys, time\n"
+        "from assim.io.common import layer_lock\n"
+        f"p = pathlib.Path({str(prepared)!r})\n"
+        "h = lambda: [hashlib.sha256((p / n).read_bytes()).hexdigest() for n in ('forcing.nc', 'observations.nc', 'basins.nc')]\n"
+        "with layer_lock(p, exclusive=False):\n"
+        "    print('held', flush=True); a = h(); time.sleep(3); b = h()\n"
+        "print('same' if a == b else 'changed', time.time(), flush=True)\n")],
+        stdout=subprocess.PIPE, text=True)
+    assert reader.stdout.readline().strip() == "held"
+    w = pd.read_csv(tmp_path / "raw" / "weather.csv", dtype=str)
+    w["precipitation_mm"] = (w["precipitation_mm"].astype(float) + 0.5).map(str)
+    w.to_csv(tmp_path / "raw" / "weather.csv", index=False)
+    r = cli("prep", "--config", conf)
+    assert r.returncode == 0, r.stderr
+    verdict, released = reader.stdout.readline().split()
+    reader.wait()
+    assert verdict == "same"
+    assert (prepared / "forcing.nc").stat().st_mtime >= float(released) - 0.5
+
+
+# ----------------------------------------------------------------------- closed stdout
+
+
+def test_closed_stdout_ends_cleanly_after_the_files_are_written(scenario, tmp_path):
+    """`assim forecast ... | (exit 0)`: the reader of stdout is gone before the summary is
+    printed; the forecast and its restart are written and the command exits 0 without a
+    traceback. Common practice, no published source."""
+    conf = _copy_inputs(scenario, tmp_path)
+    conf = write_config(tmp_path, period={"end": "2012-08-20"}, forecast={"leads": 3, "forcing": "observed"})
+    assert cli("run", "--config", conf).returncode == 0
+    cmd = " ".join(map(str, assim_cmd("forecast", "--issue-date", "2012-08-25", "--config", conf)))
+    r = subprocess.run(f"{cmd} | (exit 0)", shell=True, capture_output=True, text=True, timeout=300,
+                       env={**os.environ, "PYTHONWARNINGS": "ignore"})
+    assert "Traceback" not in r.stderr, r.stderr
+    folder = tmp_path / "results" / "forecasts"
+    assert (folder / "forecast-2012-08-25.nc").exists() and (folder / "restart-2012-08-25.nc").exists(), r.stderr
+    p = subprocess.Popen(assim_cmd("forecast", "--issue-date", "2012-08-25", "--config", conf),
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    p.stdout.close()
+    err = p.stderr.read()
+    assert p.wait(timeout=300) == 0 and "Traceback" not in err, err
+
+
+def test_set_accepts_a_date(scenario, tmp_path):
+    """`--set period.end=2012-06-30` (a date as YAML would read it) is accepted as the
+    string the schema expects. Common practice, no published source."""
+    conf = _copy_inputs(scenario, tmp_path)
+    r = cli("run", "--mode", "openloop", "--config", conf, "--set", "period.end=2012-06-30")
+    assert r.returncode == 0, r.stderr
+    with xr.open_dataset(tmp_path / "results" / "openloop.nc") as ds:
+        assert str(ds["time"].values[-1])[:10] == "2012-06-30"

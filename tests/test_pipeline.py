@@ -19,6 +19,7 @@ from assim.cli import main
 from assim.config import load_config
 from assim.errors import LockError, RestartError
 from assim.io import prepared as prep_io
+from assim.io.common import _start_time
 
 IDS = ["alder-creek", "birch-river"]
 START, END = "2001-01-01", "2003-12-31"
@@ -288,7 +289,8 @@ def test_forecast_lock_held_and_stale(operational):
 
     sleeper = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(30)"])
     try:
-        lock.write_text(f"{sleeper.pid} {socket.gethostname()}\n")
+        # a lock records the holder's start time, so a reused PID is not taken for the run
+        lock.write_text(f"{sleeper.pid} {socket.gethostname()} {_start_time(sleeper.pid)}\n")
         with pytest.raises(LockError, match=str(sleeper.pid)):
             pipeline.forecast(cfg, "2003-06-22")
     finally:
@@ -321,7 +323,7 @@ def test_run_and_hindcast_hold_their_product_lock(prepared, tmp_path, call, prod
     leftover.write_bytes(b"half a file")
     sleeper = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(30)"])
     try:
-        lock.write_text(f"{sleeper.pid} {socket.gethostname()}\n")
+        lock.write_text(f"{sleeper.pid} {socket.gethostname()} {_start_time(sleeper.pid)}\n")
         with pytest.raises(LockError, match=f"writing {product}.*pid {sleeper.pid}"):
             call(cfg)
         assert not (tmp_path / "results" / product).exists() and leftover.exists()

@@ -14,7 +14,7 @@ from assim.errors import RestartError
 from assim.io.restart import Restart, check_restart, read_restart, write_restart
 
 GR4J = models.get("gr4j")
-IDENTITY = {"model": "gr4j", "members": "10", "seed": "4", "digest_perturbation": "p1",
+IDENTITY = {"model": "gr4j", "members": "10", "seed": "4", "mode": "assimilate", "digest_perturbation": "p1",
             "digest_filter": "f1", "digest_inputs": "i1"}
 
 
@@ -138,3 +138,84 @@ def test_restart_with_another_start_day_of_the_inputs():
     rest = Collect()
     engine.run(GR4J, late, dataclasses.replace(SETTINGS, spinup_days=0), rest, state=part.state)
     np.testing.assert_array_equal(whole.result()["discharge"][:, 40:], rest.result()["discharge"])
+
+
+# ------------------------------------------------------- checksums, modes and file sets
+
+
+def _flip_bit(path, var, bit=52):
+    """Flip one bit of the first value of ``var`` in place (raw bytes, attributes kept)."""
+    import netCDF4
+
+    with netCDF4.Dataset(path, "r+") as nc:
+        v = nc[var]
+        v.set_auto_maskandscale(False)
+        a = np.array(v[:])
+        flat = a.reshape(-1).view(np.uint64 if a.dtype.itemsize == 8 else np.uint32)
+        flat[0] ^= type(flat[0])(1) << type(flat[0])(bit)
+        v[:] = a
+
+
+@pytest.mark.parametrize("var, bit", [("states", 52), ("states", 0), ("parameter_x1", 62), ("collapse_days", 3)])
+def test_damaged_restart_is_refused(tmp_path, var, bit):
+    """One bit flipped anywhere in a restart's arrays (an exponent bit doubles a store; the
+    lowest mantissa bit changes it by 1 ulp) is refused, naming the file and the variable
+    (SHA-256 of each variable, FIPS 180-4 via hashlib). Common practice, no published source."""
+    inputs = _inputs()
+    st = engine.initial_ensemble(GR4J, inputs, SETTINGS)
+    path = write_restart(tmp_path / "r.nc", _to_restart(st, inputs))
+    read_restart(path)  # whole: accepted
+    _flip_bit(path, var, bit if var != "collapse_days" else 3)
+    with pytest.raises(RestartError, match=f"{var}.*damaged") as info:
+        read_restart(path)
+    assert str(path) in str(info.value)
+
+
+def test_open_loop_restart_refused_for_assimilation(tmp_path):
+    """The restart's mode is part of its identity: open-loop states are never continued as
+    an assimilation (or the reverse). Common practice, no published source."""
+    inputs = _inputs()
+    st = engine.initial_ensemble(GR4J, inputs, SETTINGS)
+    r = Restart(inputs.basin_ids, st.day, GR4J.state_names, st.states, st.parameters, st.ar1, st.collapse_days,
+                {**IDENTITY, "mode": "openloop"})
+    write_restart(tmp_path / "restart-openloop.nc", r)
+    r = read_restart(tmp_path / "restart-openloop.nc")
+    with pytest.raises(RestartError, match="mode 'openloop'.*'assimilate'"):
+        check_restart(r, identity=IDENTITY, basins=inputs.basin_ids, state_names=GR4J.state_names)
+
+
+def test_file_set_replaced_whole_or_not_at_all(tmp_path):
+    """A FileSet whose second member fails to write (the RuntimeError netCDF4 raises on a full
+    disk) leaves both old files byte for byte and no temporary; a committed set stamps one
+    generation in both; a restart beside a product of another write is refused. Common
+    practice, no published source."""
+    from assim.errors import RunError
+    from assim.io.common import FileSet
+
+    inputs = _inputs()
+    st = engine.initial_ensemble(GR4J, inputs, SETTINGS)
+    product, restart = tmp_path / "analysis.nc", tmp_path / "restart.nc"
+
+    def write(fail=False):
+        with FileSet([product, restart], checksummed=[restart]) as files:
+            xr.Dataset({"discharge": ("time", np.arange(3.0))}).to_netcdf(files.part(product))
+            if fail:
+                raise RuntimeError("NetCDF: HDF error")
+            write_restart(restart, _to_restart(st, inputs), commit=files)
+
+    write()
+    old = {p: p.read_bytes() for p in (product, restart)}
+    with pytest.raises(RunError, match="analysis.nc.*HDF error.*kB free.*left as it was"):
+        write(fail=True)
+    assert {p: p.read_bytes() for p in (product, restart)} == old
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["analysis.nc", "restart.nc"]
+    with xr.open_dataset(product) as a, xr.open_dataset(restart) as b:
+        assert a.attrs["set_generation"] == b.attrs["set_generation"]
+        assert a.attrs["set_members"] == "analysis.nc restart.nc"
+    read_restart(restart)
+    import netCDF4
+
+    with netCDF4.Dataset(product, "r+") as nc:
+        nc.set_generation = "0" * 32
+    with pytest.raises(RestartError, match="analysis.nc.*different writes"):
+        read_restart(restart)

@@ -5,50 +5,304 @@ from __future__ import annotations
 import contextlib
 import datetime as _dt
 import os
+import shutil
 import tempfile
-from collections.abc import Iterable, Iterator
+import uuid
+from collections.abc import Iterable, Iterator, Mapping
 from pathlib import Path
 
 import numpy as np
+import yaml
 
 from assim._version import __version__
 from assim.caution import CAUTION
-from assim.errors import AssimWarning, RunError
+from assim.errors import AssimError, AssimWarning, RunError
 
 CONVENTIONS = "CF-1.8"
 
 
 @contextlib.contextmanager
-def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
+def atomic_path(path: str | os.PathLike, commit: FileSet | None = None) -> Iterator[Path]:
     """Yield a temporary path beside ``path``; rename it onto ``path`` when the block ends.
 
     An interrupted or failed write leaves ``path`` as it was (absent, or the previous
     complete file) and removes the temporary file. The temporary name starts with ``.`` and
-    ends with ``.part`` so that it is never taken for a product.
+    ends with ``.part`` so that it is never taken for a product. With ``commit`` (a
+    :class:`FileSet` that ``path`` belongs to) the temporary is the set's, and it is renamed
+    only when the whole set is committed.
 
     Raises
     ------
     RunError
-        if the folder cannot be created or written.
+        naming ``path`` if the folder cannot be created or the file cannot be written (a full
+        disk, whatever error the NetCDF library turns it into).
     """
     path = Path(path)
+    if commit is not None:
+        tmp_path = commit.part(path)
+        try:
+            yield tmp_path
+        except (OSError, RuntimeError) as exc:
+            if isinstance(exc, RunError) or not _is_write_failure(exc):
+                raise
+            raise write_failure(exc, path) from None
+        return
+    tmp_path = _temporary(path)
+    try:
+        yield tmp_path
+        # mkstemp makes the file private (0600); give it the mode an ordinary write would.
+        os.chmod(tmp_path, 0o666 & ~_umask())
+        os.replace(tmp_path, path)
+    except (OSError, RuntimeError) as exc:
+        if isinstance(exc, RunError) or not _is_write_failure(exc):
+            raise
+        raise write_failure(exc, path) from None
+    finally:
+        with contextlib.suppress(FileNotFoundError):
+            tmp_path.unlink()
+
+
+def _temporary(path: Path) -> Path:
+    """A new empty ``.name.*.part`` file beside ``path`` (RunError naming the folder)."""
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
     except OSError as exc:
         raise RunError(f"cannot write here ({exc.strerror})", file=path.parent) from None
     os.close(fd)
-    tmp_path = Path(tmp)
+    return Path(tmp)
+
+
+def _is_write_failure(exc: BaseException) -> bool:
+    """An OSError, or the RuntimeError the NetCDF/HDF5 library raises when a write fails
+    (``NetCDF: HDF error`` on a full disk): a failure of the machine, not a bug."""
+    if isinstance(exc, OSError):
+        return True
+    return isinstance(exc, RuntimeError) and any(w in str(exc) for w in ("NetCDF", "HDF", "errno"))
+
+
+def write_failure(exc: BaseException, path: str | os.PathLike) -> RunError:
+    """The one-line error for a failed write of ``path``: the system's reason and the space
+    left on its device (a full disk is the usual cause, whatever the library calls it)."""
+    path = Path(path)
+    reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc).strip() or type(exc).__name__
+    free = ""
+    with contextlib.suppress(OSError):
+        folder = next(p for p in (path.parent, *path.parents) if p.exists())
+        free = f"; {shutil.disk_usage(folder).free // 1024} kB free on its device"
+    return RunError(f"cannot write ({reason}{free}); earlier output left as it was", file=path)
+
+
+def _fsync(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
     try:
-        yield tmp_path
-        # mkstemp makes the file private (0600); give it the mode an ordinary write would.
-        os.chmod(tmp_path, 0o666 & ~_umask())
-        os.replace(tmp_path, path)
-    except OSError as exc:
-        raise RunError(f"cannot write ({exc.strerror}); earlier output left as it was", file=path) from None
+        os.fsync(fd)
     finally:
-        with contextlib.suppress(FileNotFoundError):
-            tmp_path.unlink()
+        os.close(fd)
+
+
+class FileSet:
+    """Files that are replaced together or not at all (the prepared layer; a run's product
+    and its restart; a forecast and its restart).
+
+    Each member is written to its own temporary (:meth:`part`, or ``atomic_path(path,
+    commit=the set)``). When the ``with`` block ends without error, every NetCDF member is
+    stamped with the set's global attributes (``set_generation``: one random id shared by
+    the members; ``set_members``: their names; the ``attrs`` given, e.g. what the set was made
+    from), the members named in ``checksummed`` get the SHA-256 of each variable
+    (:func:`variable_digests`, attribute ``sha256_variables``), each temporary is flushed to
+    disk (fsync), and only then are they renamed onto their names, in the order given. A
+    failure before the renames (a full disk, a kill) leaves every old member as it was; the
+    renames themselves need no space, and a kill between two of them leaves members of two
+    generations, which :func:`check_set` refuses.
+
+    Raises
+    ------
+    RunError
+        naming the member that could not be written, with the space left on its device.
+    """
+
+    def __init__(self, paths: Iterable[str | os.PathLike], *, checksummed: Iterable[str | os.PathLike] = (),
+                 attrs: Mapping[str, str] | None = None, guard=None):
+        self.guard = guard
+        self.paths = [Path(p) for p in paths]
+        self.checksummed = {Path(p) for p in checksummed}
+        self.generation = uuid.uuid4().hex
+        self.attrs = {k: str(v) for k, v in (attrs or {}).items()}
+        self._parts: dict[Path, Path] = {}
+
+    def part(self, path: str | os.PathLike) -> Path:
+        """The temporary of member ``path`` (created empty on first use)."""
+        path = Path(path)
+        if path not in self.paths:
+            raise ValueError(f"{path} is not a member of this file set")
+        if path not in self._parts:
+            self._parts[path] = _temporary(path)
+        return self._parts[path]
+
+    def __enter__(self) -> FileSet:
+        return self
+
+    def __exit__(self, exc_type, exc, tb):
+        try:
+            if exc_type is None:
+                self._commit()
+        finally:
+            for tmp in self._parts.values():
+                with contextlib.suppress(FileNotFoundError):
+                    tmp.unlink()
+        if exc_type is not None and issubclass(exc_type, OSError | RuntimeError) and not isinstance(exc, RunError) \
+                and _is_write_failure(exc):
+            raise write_failure(exc, self.paths[0]) from None
+        return False
+
+    def _commit(self) -> None:
+        missing = [p for p in self.paths if p not in self._parts]
+        if missing:  # a bug: every member is written before the set ends
+            raise RuntimeError(f"file set committed without {', '.join(map(str, missing))}")
+        names = " ".join(p.name for p in self.paths)
+        stamp = {"set_generation": self.generation, "set_members": names, **self.attrs}
+        for path in self.paths:
+            tmp = self._parts[path]
+            try:
+                if path.suffix == ".nc":
+                    extra = dict(stamp)
+                    if path in self.checksummed:
+                        extra[CHECKSUM_ATTR] = format_digests(file_digests(tmp))
+                    _set_global_attributes(tmp, extra)
+                os.chmod(tmp, 0o666 & ~_umask())
+                _fsync(tmp)
+            except (OSError, RuntimeError) as exc:
+                if not _is_write_failure(exc):
+                    raise
+                raise write_failure(exc, path) from None
+        with self.guard() if self.guard is not None else contextlib.nullcontext():
+            for path in self.paths:
+                try:
+                    os.replace(self._parts[path], path)
+                except OSError as exc:
+                    raise write_failure(exc, path) from None
+        with contextlib.suppress(OSError):
+            for folder in {p.parent for p in self.paths}:
+                _fsync(folder)
+
+
+def _set_global_attributes(path: Path, attrs: Mapping[str, str]) -> None:
+    import netCDF4
+    from xarray.backends.netCDF4_ import NETCDF4_PYTHON_LOCK
+
+    with NETCDF4_PYTHON_LOCK, netCDF4.Dataset(path, "a") as nc:
+        nc.setncatts(dict(attrs))
+
+
+# ------------------------------------------------------------------------ checksums, sets
+
+#: Global attribute holding ``name:sha256`` of every variable of a checksummed file.
+CHECKSUM_ATTR = "sha256_variables"
+
+
+def variable_digests(ds) -> dict[str, str]:
+    """SHA-256 of the values of every variable of ``ds`` (an xarray Dataset as
+    ``xr.open_dataset`` decodes it), over dtype, shape and bytes; NaN counted as one value."""
+    import hashlib
+
+    import numpy as np
+
+    out = {}
+    for name in sorted(map(str, ds.variables)):
+        a = np.asarray(ds[name].values)
+        h = hashlib.sha256(f"{a.dtype.str}{a.shape}".encode())
+        if a.dtype.kind in "OUS":
+            h.update("\x00".join(map(str, a.ravel().tolist())).encode("utf-8", "surrogatepass"))
+        else:
+            if a.dtype.kind in "fc":
+                a = np.where(np.isnan(a), np.nan, a)
+            h.update(np.ascontiguousarray(a).tobytes())
+        out[name] = h.hexdigest()
+    return out
+
+
+def file_digests(path: str | os.PathLike) -> dict[str, str]:
+    import xarray as xr
+
+    with xr.open_dataset(path, engine="netcdf4") as ds:
+        return variable_digests(ds)
+
+
+def format_digests(digests: Mapping[str, str]) -> str:
+    return " ".join(f"{k}:{v}" for k, v in sorted(digests.items()))
+
+
+def verify_digests(ds, path, error: type[AssimError] | None = None) -> None:
+    """Refuse a damaged file: the values of ``ds`` (as decoded by ``xr.open_dataset``, before
+    any change) must have the digests recorded when it was written. A file written without
+    digests (an older version, another tool) is accepted as it is.
+
+    Raises
+    ------
+    InputError (or ``error``)
+        naming the file and the first variable whose values changed.
+    """
+    from assim.errors import InputError
+
+    recorded = ds.attrs.get(CHECKSUM_ATTR)
+    if recorded is None:
+        return
+    error = error or InputError
+    want = dict(item.partition(":")[::2] for item in str(recorded).split())
+    have = variable_digests(ds)
+    for name in sorted(set(want) | set(have)):
+        if want.get(name) != have.get(name):
+            what = ("is missing" if name not in have else "was not in the file when it was written"
+                    if name not in want else "does not match the checksum recorded when the file was written")
+            raise error(f"the file is damaged: the variable {what}; write it again", file=path, variable=name)
+
+
+def check_set(members: Mapping[str | os.PathLike, Mapping], error: type[AssimError] | None = None) -> None:
+    """Refuse a mixed file set: every member that records a ``set_generation`` (see
+    :class:`FileSet`) must record the same one. ``members`` maps each file to its global
+    attributes; files written outside a set (no ``set_generation``) are not compared.
+
+    Raises
+    ------
+    InputError (or ``error``)
+        naming the files of two different writes.
+    """
+    from assim.errors import InputError
+
+    seen = [(Path(p), str(a["set_generation"]), str(a.get("history", ""))) for p, a in members.items()
+            if a.get("set_generation")]
+    for p, gen, history in seen[1:]:
+        p0, gen0, history0 = seen[0]
+        if gen != gen0:
+            raise (error or InputError)(
+                f"{p0.name} and {p.name} come from different writes ({_when(history0)} and {_when(history)}): "
+                "the set was replaced only in part (an interrupted or failed write); write it again",
+                file=p, variable="set_generation")
+
+
+def _when(history: str) -> str:
+    return history.split(" ")[0] if history else "unknown time"
+
+
+def set_siblings(path: str | os.PathLike, attrs: Mapping) -> dict[Path, dict]:
+    """Global attributes of ``path`` and of the other members of its set that exist beside
+    it (``set_members``), for :func:`check_set`; only the headers are read."""
+    import netCDF4
+    from xarray.backends.netCDF4_ import NETCDF4_PYTHON_LOCK
+
+    path = Path(path)
+    out = {path: dict(attrs)}
+    for name in str(attrs.get("set_members", "")).split():
+        other = path.parent / name
+        if name == path.name or not other.is_file():
+            continue
+        try:
+            with NETCDF4_PYTHON_LOCK, netCDF4.Dataset(other) as nc:
+                out[other] = {k: nc.getncattr(k) for k in nc.ncattrs()}
+        except (OSError, RuntimeError):
+            continue  # unreadable: its own reader says so when it is read
+    return out
 
 
 def _umask() -> int:
@@ -177,18 +431,22 @@ def open_netcdf(path, variables=(), *, any_of=(), order=None, load=False):
 
 @contextlib.contextmanager
 def output_lock(path: str | os.PathLike, what: str, written: Iterable[str | os.PathLike] = ()) -> Iterator[Path]:
-    """Hold the lock file ``path`` (PID and host) while a command writes ``what``.
+    """Hold the lock file ``path`` (PID, host and the process's start time) while a command
+    writes ``what``.
 
     A lock held by a live process on this host, or by any process on another host, is
-    refused; a lock whose process is dead on this host (left by a killed run) is stale: it
-    is reported through ``warnings`` and replaced, so a killed run never blocks the next.
-    Once the lock is held, the temporaries (``.name.*.part``, see :func:`atomic_path`) that a
-    killed run left beside the files ``written`` are removed: nobody else writes them now.
+    refused; a lock whose process is dead on this host (left by a killed run), or whose PID
+    now belongs to another process (same PID, another start time: the PID was reused after
+    the run died), is stale: it is reported through ``warnings`` and replaced, so a killed
+    run never blocks the next. Once the lock is held, the temporaries (``.name.*.part``, see
+    :func:`atomic_path`) that a killed run left beside the files ``written`` are removed:
+    nobody else writes them now.
 
     Raises
     ------
     LockError
-        naming the lock file and the PID and host of the run holding it.
+        naming the lock file and the PID and host of the run holding it, or when the lock
+        path is not a plain file.
     """
     import socket
     import warnings
@@ -202,26 +460,32 @@ def output_lock(path: str | os.PathLike, what: str, written: Iterable[str | os.P
     except OSError as exc:
         raise RunError(f"cannot write here ({exc.strerror})", file=path.parent) from None
     host = socket.gethostname()
-    mine = f"{os.getpid()} {host}\n"
+    mine = f"{os.getpid()} {host} {_start_time(os.getpid())}\n"
     for _ in range(2):
+        if path.is_dir() or (path.exists() and not path.is_file()):
+            raise LockError(f"the lock path of {what} is not a plain file; remove it", file=path)
         try:
             fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
         except FileExistsError:
             try:
-                pid_text, _, other = path.read_text().strip().partition(" ")
+                pid_text, other, started = (path.read_text().split() + ["", ""])[:3]
                 pid = int(pid_text)
             except (OSError, ValueError):
-                pid, other = -1, host
+                pid, other, started = -1, host, ""
             if other != host:
                 raise LockError(f"{what} is held by pid {pid} on host {other}; remove the lock file "
                                 "if that run is dead", file=path) from None
-            if pid > 0 and _alive(pid):
+            if pid > 0 and _holder_alive(pid, started):
                 raise LockError(f"{what} is in progress in another run (pid {pid}); wait for it to "
                                 "finish", file=path) from None
-            warnings.warn(f"{path}: stale lock of pid {pid} (no longer running) replaced", AssimWarning,
-                          stacklevel=3)
-            with contextlib.suppress(FileNotFoundError):
+            why = "no longer running" if pid <= 0 or not _alive(pid) else "its PID now belongs to another process"
+            warnings.warn(f"{path}: stale lock of pid {pid} ({why}) replaced", AssimWarning, stacklevel=3)
+            try:
                 path.unlink()
+            except FileNotFoundError:
+                pass
+            except OSError as exc:
+                raise RunError(f"cannot remove the stale lock ({exc.strerror})", file=path) from None
             continue
         except OSError as exc:
             raise RunError(f"cannot write here ({exc.strerror})", file=path.parent) from None
@@ -253,4 +517,143 @@ def _alive(pid: int) -> bool:
         return False
     except PermissionError:
         return True
+    except OverflowError:
+        return False
     return True
+
+
+def _start_time(pid: int) -> str:
+    """The start time of process ``pid`` in clock ticks since boot (field 22 of
+    ``/proc/PID/stat``, proc(5)); "" where there is no /proc."""
+    try:
+        with open(f"/proc/{pid}/stat", encoding="ascii", errors="replace") as f:
+            stat = f.read()
+    except OSError:
+        return ""
+    fields = stat[stat.rfind(")") + 2:].split()  # the command name may hold spaces and ")"
+    return fields[19] if len(fields) > 19 else ""
+
+
+def _holder_alive(pid: int, started: str) -> bool:
+    """Is the run that wrote a lock (``pid``, its start time) still running? A live process
+    with the same PID but another start time, or (for a lock that records no start time) one
+    whose command line does not name assim, is not that run: the PID was reused."""
+    if not _alive(pid):
+        return False
+    now = _start_time(pid)
+    if started and now:
+        return started == now
+    try:  # a lock without a start time (an older version): is that process assim at all?
+        with open(f"/proc/{pid}/cmdline", "rb") as f:
+            return b"assim" in f.read()
+    except OSError:
+        return True  # no /proc: a live PID is taken as the holder
+
+
+@contextlib.contextmanager
+def layer_lock(folder: str | os.PathLike, *, exclusive: bool, timeout: float = 600.0) -> Iterator[None]:
+    """Readers and the writer of a layer (the prepared folder) never interleave.
+
+    Readers (runs, hindcasts, forecasts, ``check``) hold a shared lock while they use the
+    layer; ``prep`` holds the exclusive lock while it replaces the files (the renames of its
+    :class:`FileSet`), so a reader never sees half a layer. The lock is ``flock(2)`` on the
+    file ``.layer.lock`` in the folder: the system releases it when its process dies, so it
+    is never stale. Waits at most ``timeout`` seconds. A folder that does not exist or in
+    which the lock file cannot be made (a read-only copy nobody writes) is not locked.
+
+    Raises
+    ------
+    LockError
+        when the lock is not had within ``timeout`` (naming the lock file).
+    """
+    import fcntl
+    import time
+
+    from assim.errors import LockError
+
+    path = Path(folder) / ".layer.lock"
+    try:
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    except OSError:
+        try:
+            fd = os.open(path, os.O_RDONLY)
+        except OSError:
+            yield
+            return
+    try:
+        mode = fcntl.LOCK_EX if exclusive else fcntl.LOCK_SH
+        deadline = time.monotonic() + timeout
+        while True:
+            try:
+                fcntl.flock(fd, mode | fcntl.LOCK_NB)
+                break
+            except BlockingIOError:
+                if time.monotonic() >= deadline:
+                    who = "read by another run" if exclusive else "being replaced by `assim prep`"
+                    raise LockError(f"the prepared layer is {who}; gave up after {timeout:.0f} s",
+                                    file=path) from None
+                time.sleep(0.05)
+            except OSError:
+                break  # a file system without flock: nothing to hold
+        yield
+    finally:
+        os.close(fd)
+
+
+# ---------------------------------------------------------------------------------- YAML
+
+
+class DuplicateKeyError(yaml.constructor.ConstructorError):
+    """A mapping key given twice in one YAML document (the line of the first and the mark of
+    the second)."""
+
+    def __init__(self, key, first_line: int, mark):
+        super().__init__(None, None, f"key {key!r} given twice (first on line {first_line})", mark)
+        self.key = key
+
+
+class YamlLoader(yaml.SafeLoader):
+    """The one YAML loader of the project (config files, ``--set`` values, basins.yaml): the
+    safe subset, with a key given twice in one mapping refused (PyYAML keeps the last one
+    silently) and dates left as text (``2012-06-30`` is the string the schema expects)."""
+
+    def construct_mapping(self, node, deep=False):
+        if isinstance(node, yaml.MappingNode):
+            seen: dict = {}
+            for key_node, _ in node.value:
+                if key_node.tag == "tag:yaml.org,2002:merge":  # `<<: *anchor` may be overridden
+                    continue
+                key = self.construct_object(key_node, deep=True)
+                try:
+                    if key in seen:
+                        raise DuplicateKeyError(key, seen[key], key_node.start_mark)
+                    seen[key] = key_node.start_mark.line + 1
+                except TypeError:  # an unhashable key: SafeLoader says so itself
+                    continue
+        return super().construct_mapping(node, deep=deep)
+
+
+YamlLoader.yaml_implicit_resolvers = {
+    ch: [(tag, rx) for tag, rx in rules if tag != "tag:yaml.org,2002:timestamp"]
+    for ch, rules in yaml.SafeLoader.yaml_implicit_resolvers.items()
+}
+
+
+def load_yaml(text):
+    """Parse YAML text (or a stream) with :class:`YamlLoader`.
+
+    Raises
+    ------
+    yaml.YAMLError
+        a :class:`DuplicateKeyError` for a key given twice, naming it and its lines.
+    """
+    return yaml.load(text, Loader=YamlLoader)  # noqa: S506 - a SafeLoader subclass
+
+
+def yaml_problem(exc) -> tuple[str, str | None, str | None]:
+    """(message, key, place) of a YAML error, for a one-line AssimError."""
+    mark = getattr(exc, "problem_mark", None)
+    place = f"line {mark.line + 1}" if mark is not None else None
+    if isinstance(exc, DuplicateKeyError):
+        return f"duplicate key: {exc.problem}", str(exc.key), place
+    return "not valid YAML", None, place

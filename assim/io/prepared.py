@@ -28,7 +28,14 @@ import xarray as xr
 
 from assim.conventions import CALENDAR, TIME_UNITS, iso
 from assim.errors import InputError
-from assim.io.common import atomic_path, global_attributes, labels_from_file, labels_to_file
+from assim.io.common import (
+    atomic_path,
+    check_set,
+    global_attributes,
+    labels_from_file,
+    labels_to_file,
+    verify_digests,
+)
 from assim.units import CANONICAL, canonical_unit
 
 FORCING_FILE = "forcing.nc"
@@ -201,7 +208,7 @@ def basins_dataset(basins, names, area_km2, latitude, longitude, model: str,
 # ---------------------------------------------------------------------------------- write
 
 
-def _write(ds: xr.Dataset, path: str | Path) -> Path:
+def _write(ds: xr.Dataset, path: str | Path, commit=None) -> Path:
     path = Path(path)
     ds = labels_to_file(ds)
     encoding: dict[str, dict] = {}
@@ -221,27 +228,30 @@ def _write(ds: xr.Dataset, path: str | Path) -> Path:
         encoding["time"] = {"units": TIME_UNITS, "calendar": CALENDAR, "dtype": "int32"}
         if "time_bnds" in ds.variables:
             encoding["time_bnds"] = {"units": TIME_UNITS, "calendar": CALENDAR, "dtype": "int32"}
-    with atomic_path(path) as tmp:
+    with atomic_path(path, commit) as tmp:
         ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
     return path
 
 
-def write_forcing(ds: xr.Dataset, path: str | Path) -> Path:
-    """Write forcing.nc atomically (validated first); returns the path."""
+def write_forcing(ds: xr.Dataset, path: str | Path, commit=None) -> Path:
+    """Write forcing.nc atomically (validated first); returns the path. With ``commit`` (an
+    :class:`assim.io.common.FileSet`) the file is replaced when the whole set is."""
     check_forcing(ds, path)
-    return _write(ds, path)
+    return _write(ds, path, commit)
 
 
-def write_observations(ds: xr.Dataset, path: str | Path) -> Path:
-    """Write observations.nc atomically (validated first); returns the path."""
+def write_observations(ds: xr.Dataset, path: str | Path, commit=None) -> Path:
+    """Write observations.nc atomically (validated first); returns the path. With ``commit`` (an
+    :class:`assim.io.common.FileSet`) the file is replaced when the whole set is."""
     check_observations(ds, path)
-    return _write(ds, path)
+    return _write(ds, path, commit)
 
 
-def write_basins(ds: xr.Dataset, path: str | Path) -> Path:
-    """Write basins.nc atomically (validated first); returns the path."""
+def write_basins(ds: xr.Dataset, path: str | Path, commit=None) -> Path:
+    """Write basins.nc atomically (validated first); returns the path. With ``commit`` (an
+    :class:`assim.io.common.FileSet`) the file is replaced when the whole set is."""
     check_basins(ds, path)
-    return _write(ds, path)
+    return _write(ds, path, commit)
 
 
 # ---------------------------------------------------------------------------------- read
@@ -255,9 +265,11 @@ def _open(path: str | Path) -> xr.Dataset:
         raise InputError("the file is empty", file=path)
     try:
         with xr.open_dataset(path, engine="netcdf4") as ds:
-            return labels_from_file(ds.load())
+            ds = ds.load()
     except (OSError, ValueError, RuntimeError, KeyError, TypeError) as exc:
         raise InputError(f"not a readable NetCDF file ({type(exc).__name__})", file=path) from None
+    verify_digests(ds, path)
+    return labels_from_file(ds)
 
 
 def _require(ds, path, name, dims, unit_kind=None) -> xr.DataArray:
@@ -547,13 +559,17 @@ def read_prepared(folder: str | Path, start=None, end=None) -> tuple[xr.Dataset,
     Raises
     ------
     InputError
-        from each reader, or when the basins differ (ids or order) between the files, or
+        from each reader (a file whose values no longer match the checksums written with it
+        is refused), when the files come from different runs of ``assim prep`` (a layer
+        replaced only in part), when the basins differ (ids or order) between the files, or
         the observations run outside the forcing's days.
     """
     folder = Path(folder)
     forcing, full = _read_forcing(folder / FORCING_FILE, start, end)
     obs = read_observations(folder / OBSERVATIONS_FILE)
     basins = read_basins(folder / BASINS_FILE)
+    check_set({folder / name: ds.attrs for name, ds in
+               ((FORCING_FILE, forcing), (OBSERVATIONS_FILE, obs), (BASINS_FILE, basins))})
     f_ids = forcing["basin"].values.astype(str).tolist()
     for ds, name in ((obs, OBSERVATIONS_FILE), (basins, BASINS_FILE)):
         ids = ds["basin"].values.astype(str).tolist()

@@ -79,15 +79,16 @@ def dates(day_numbers_: Sequence[int] | np.ndarray) -> pd.DatetimeIndex:
 class _StreamedFile:
     """A NetCDF file written under a temporary name and renamed when closed cleanly."""
 
-    def __init__(self, path: str | os.PathLike, *, float32: bool, complevel: int = 1):
+    def __init__(self, path: str | os.PathLike, *, float32: bool, complevel: int = 1, commit=None):
         self.path = Path(path)
+        self.commit = commit  # an assim.io.common.FileSet the file belongs to, or None
         self.float32 = float32
         self.complevel = complevel
         self._stack = contextlib.ExitStack()
         self.nc: netCDF4.Dataset | None = None
 
     def __enter__(self):
-        tmp = self._stack.enter_context(atomic_path(self.path))
+        tmp = self._stack.enter_context(atomic_path(self.path, self.commit))
         with _NC_LOCK:
             self.nc = netCDF4.Dataset(tmp, "w", format="NETCDF4")
         self._stack.callback(self._close_nc)
@@ -201,8 +202,9 @@ class RunWriter(_StreamedFile):
         state_noise: bool = False,
         earlier: str | os.PathLike | None = None,
         attrs: Mapping[str, str] | None = None,
+        commit=None,
     ):
-        super().__init__(path, float32=float32)
+        super().__init__(path, float32=float32, commit=commit)
         self.state_noise = bool(state_noise)
         self.earlier = None if earlier is None else Path(earlier)
         self.offset = 0
@@ -339,6 +341,8 @@ class RunWriter(_StreamedFile):
                 continue
             values = np.asarray(values)
             n = values.shape[1]
+            if values.ndim == 3:  # ensemble and quantile values are finite, or the run is wrong
+                _require_finite(values, self.path, name, self.basins, self.days[start:start + n])
             if values.ndim == 3:  # (basin, n, member) -> (basin, member, n) on disk
                 values = values.transpose(0, 2, 1)
             self.nc.variables[name][..., start:start + n] = values
@@ -349,6 +353,20 @@ class RunWriter(_StreamedFile):
         """Global attributes known only at the end (diagnostics, warnings)."""
         with _NC_LOCK:
             self.nc.setncatts(attribute_values(attrs))
+
+
+def _require_finite(values: np.ndarray, path, name: str, basins, days) -> None:
+    """RunError naming the product, the variable, the first basin and day of a non-finite
+    value in ``values`` (basin, day, ...): an overflow (an implausible area or forcing) must
+    stop the run, never reach a product."""
+    from assim.errors import RunError
+
+    bad = ~np.isfinite(values)
+    if bad.any():
+        b, t = np.argwhere(bad)[0][:2]
+        raise RunError("non-finite value computed (overflow: check the basin's area and forcing); "
+                       "the product is not written", file=path, variable=name,
+                       place=f"basin '{basins[b]}', {dates([days[t]])[0].date()}")
 
 
 class HindcastWriter(_StreamedFile):
@@ -409,6 +427,7 @@ def write_forecast(
     analysis: str,
     float32: bool = True,
     attrs: Mapping[str, str] | None = None,
+    commit=None,
 ) -> xr.Dataset:
     """Write ``forecast-YYYY-MM-DD.nc`` and return it.
 
@@ -418,8 +437,10 @@ def write_forecast(
     quantiles : probabilities of ``discharge_quantile``
     thresholds : name -> (basin,) m3 s-1 (NaN where a basin has no such level)
     analysis : "performed ..." or "not performed: ..."
+    commit : the :class:`assim.io.common.FileSet` the file belongs to (with its restart)
     """
     nb, nl, nm = discharge.shape
+    _require_finite(discharge, path, "discharge", basins, issue_day + np.arange(1, nl + 1))
     names = list(thresholds)
     thr = np.stack([np.asarray(thresholds[k], dtype=np.float64) for k in names], axis=1) if names else np.zeros((nb, 0))
     q = np.asarray(quantiles, dtype=np.float64)
@@ -459,7 +480,7 @@ def write_forecast(
     for v in ("discharge", "discharge_quantile"):
         encoding[v] = {"dtype": fdtype, "zlib": float32, "_FillValue": np.nan}
     encoding.update({d: {"dtype": str} for d in ("basin", "threshold")})
-    with atomic_path(path) as tmp:
+    with atomic_path(path, commit) as tmp:
         labels_to_file(ds).to_netcdf(tmp, encoding=encoding, format="NETCDF4")
     ds.attrs["product_path"] = str(path)
     return ds
@@ -485,9 +506,10 @@ def background(ds: xr.Dataset, *, quantile: bool = False) -> str:
 
 
 def read_run_extent(path) -> dict | None:
-    """What a run product covers: ``config_digest``, ``basins`` (ids), ``members`` (None for
-    a quantile product), ``n_time`` and ``last_day`` (day number); None when the file is
-    absent or unreadable (it is then not continued, but rewritten)."""
+    """What a run product covers: ``config_digest``, ``results_digest`` (the settings that
+    change its numbers), ``set_generation`` (the write it shares with its restart),
+    ``basins`` (ids), ``members`` (None for a quantile product), ``n_time``, ``first_day``
+    and ``last_day`` (day numbers); None when the file is absent or unreadable."""
     if not Path(path).is_file():
         return None
     try:
@@ -496,9 +518,12 @@ def read_run_extent(path) -> dict | None:
             days = np.asarray(ds["time"].values)
             return {
                 "config_digest": ds.attrs.get("config_digest"),
+                "results_digest": ds.attrs.get("results_digest"),
+                "set_generation": ds.attrs.get("set_generation"),
                 "basins": [str(b) for b in ds["basin"].values],
                 "members": ds.sizes.get("member"),
                 "n_time": int(days.size),
+                "first_day": int(days[0]) if days.size else None,
                 "last_day": int(days[-1]) if days.size else None,
             }
     except (OSError, KeyError, ValueError, IndexError):

@@ -20,6 +20,7 @@ import pandas as pd
 import yaml
 
 from assim.errors import InputError
+from assim.io.common import load_yaml, yaml_problem
 
 BASINS_FILE = "basins.yaml"
 WEATHER_FILE = "weather.csv"
@@ -248,11 +249,10 @@ def read_basins_yaml(path: str | Path, select: Sequence[str] = ()) -> list[Basin
     """
     text = read_text(path)
     try:
-        doc = yaml.safe_load(text)
+        doc = load_yaml(text)
     except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        place = f"line {mark.line + 1}" if mark is not None else None
-        raise InputError("not valid YAML", file=path, place=place) from None
+        message, key, place = yaml_problem(exc)
+        raise InputError(message, file=path, variable=key, place=place) from None
     if not isinstance(doc, Mapping) or not isinstance(doc.get("basins"), list) or not doc["basins"]:
         raise InputError("expected a mapping with a non-empty list 'basins'", file=path, variable="basins")
     unknown = sorted(set(doc) - {"basins"})

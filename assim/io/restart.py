@@ -11,7 +11,8 @@ Contents (all float64):
   and digests of the config sections that shape the numbers (``digest_perturbation``,
   ``digest_filter``, ``digest_ensemble``) and of the inputs (``digest_inputs``).
 
-A restart whose model, members, basins, seed or state names differ from the run is refused
+A restart whose model, members, basins, seed, mode (open loop or assimilation) or state names
+differ from the run is refused
 with :class:`assim.errors.RestartError`; differing perturbation, filter or input digests are
 returned as warnings (the continuation is then valid but not identical to an uninterrupted
 run).
@@ -28,7 +29,7 @@ import xarray as xr
 
 from assim.conventions import CALENDAR, TIME_UNITS
 from assim.errors import RestartError
-from assim.io.common import atomic_path, global_attributes
+from assim.io.common import atomic_path, check_set, global_attributes, set_siblings, verify_digests
 from assim.io.products import dates, day_numbers
 
 
@@ -51,8 +52,12 @@ class Restart:
         return self.states.shape[1]
 
 
-def write_restart(path, restart: Restart) -> Path:
-    """Write ``restart`` to ``path`` (atomically); returns the path."""
+def write_restart(path, restart: Restart, commit=None) -> Path:
+    """Write ``restart`` to ``path`` (atomically); returns the path.
+
+    With ``commit`` (an :class:`assim.io.common.FileSet`, the restart and the product written
+    with it) the file is replaced when the whole set is, with the checksums of its arrays
+    if the set has it among its ``checksummed`` members; otherwise alone, with checksums."""
     b = np.array(restart.basins, dtype=object)
     data = {
         "states": (("basin", "member", "state"), np.asarray(restart.states, dtype=np.float64),
@@ -80,7 +85,12 @@ def write_restart(path, restart: Restart) -> Path:
                                 **{k: str(v) for k, v in restart.identity.items()}),
     )
     enc = {"valid_time": {"units": TIME_UNITS, "calendar": CALENDAR, "dtype": "i4"}}
-    with atomic_path(path) as tmp:
+    if commit is None:
+        from assim.io.common import FileSet
+
+        with FileSet([path], checksummed=[path]) as files:
+            return write_restart(path, restart, files)
+    with atomic_path(path, commit) as tmp:
         ds.to_netcdf(tmp, encoding=enc, format="NETCDF4")
     return Path(path)
 
@@ -91,13 +101,17 @@ def read_restart(path) -> Restart:
     Raises
     ------
     RestartError
-        if the file is missing, unreadable or lacks a variable.
+        if the file is missing, unreadable or lacks a variable, if its arrays no longer match
+        the checksums written with them (a damaged file), or if the product written with it
+        beside it (``set_members``) comes from another write (a set replaced only in part).
     """
     path = Path(path)
     with _open(path) as ds:
         for v in ("states", "valid_time", "collapse_days"):
             if v not in ds.variables:
                 raise RestartError("variable missing from the restart", file=path, variable=v)
+        verify_digests(ds, path, RestartError)
+        check_set(set_siblings(path, ds.attrs), RestartError)
         return Restart(
             basins=tuple(str(x) for x in ds["basin"].values),
             valid_day=int(day_numbers([ds["valid_time"].values])[0]),
@@ -133,12 +147,12 @@ def _open(path: Path) -> xr.Dataset:
     if not path.exists():
         raise RestartError("restart file not found", file=path)
     try:
-        return xr.open_dataset(path)
-    except (OSError, ValueError) as exc:
+        return xr.open_dataset(path, engine="netcdf4")
+    except (OSError, ValueError, RuntimeError) as exc:
         raise RestartError(f"cannot read restart ({exc})", file=path) from None
 
 
-STRICT = ("model", "members", "seed")
+STRICT = ("model", "members", "seed", "mode")
 LOOSE = ("digest_perturbation", "digest_filter", "digest_inputs")
 
 

@@ -12,6 +12,7 @@ import yaml
 from assim import paths
 from assim.config import validate
 from assim.errors import ConfigError
+from assim.io.common import load_yaml
 
 
 def _config_file():
@@ -45,7 +46,7 @@ def _cli_overrides():
     # Values given with `snakemake --config key=value` (or merged from several config
     # files) reach the CLI as --set options, so the CLI computes with the same settings.
     with open(CONFIG_FILE, encoding="utf-8") as f:
-        written = validate(yaml.safe_load(f) or {}, source=CONFIG_FILE)
+        written = validate(load_yaml(f) or {}, source=CONFIG_FILE)
     diff = _flat_differences(CFG, written)
     diff.pop("issue_date", None)  # passed as --issue-date
     return " ".join(f"--set {shlex.quote(k + '=' + json.dumps(v))}" for k, v in sorted(diff.items()))
