@@ -27,8 +27,6 @@ flags depend on readings up to the end of its own day (:func:`qc_readings`).
 from __future__ import annotations
 
 import importlib
-import sys
-import types
 from collections.abc import Mapping
 from pathlib import Path
 
@@ -460,13 +458,3 @@ def check(cfg: Mapping) -> str:
                      f"{pf.sizes['time']} days; {state}")
     return "\n".join(lines)
 
-
-class _CallableModule(types.ModuleType):
-    """``assim.prep`` is both this module and the entry point ``assim.prep(cfg)``: once the
-    module is imported it replaces the package attribute, so calling it must prepare."""
-
-    def __call__(self, cfg: Mapping) -> dict[str, xr.Dataset]:
-        return prepare(cfg)
-
-
-sys.modules[__name__].__class__ = _CallableModule
