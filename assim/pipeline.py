@@ -522,7 +522,7 @@ def _choose_restart(cfg: Config, issue_day: int, identity: dict, basin_ids, stat
                        f"re-assimilating from {taken}")
         return out
 
-    for day, f, header in candidates:
+    for _, f, header in candidates:
         try:
             valid, attrs, basins = header or read_restart_header(f)
         except RestartError as exc:
