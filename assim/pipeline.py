@@ -561,8 +561,46 @@ def _choose_restart(cfg: Config, issue_day: int, identity: dict, basin_ids, stat
     raise RestartError(f"no restart fits the forecast: {why}", file=f)
 
 
-def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
-    """Operational forecast issued at the end of ``issue_date``.
+def latest_issue_date(cfg: Config, last_weather_day=None) -> str:
+    """The latest issue date the inputs allow, "YYYY-MM-DD".
+
+    A forecast issued at the end of day D assimilates the readings through D and needs
+    D's weather (with ``forecast.forcing: observed`` also the weather of its leads), so the
+    latest D is the last weather day (minus ``forecast.leads`` for observed forcing).
+
+    Parameters
+    ----------
+    last_weather_day : the last day of weather, datetime64[D]; None = the last day of the
+        prepared forcing.
+
+    Raises
+    ------
+    InputError
+        when the weather's last day cannot be read.
+    """
+    import numpy as np
+
+    from assim.errors import InputError
+    from assim.io import prepared as prep_io
+    from assim.io import raw as raw_io
+    from assim.io.products import dates
+
+    if last_weather_day is None:
+        forcing = prep_io.read_forcing(Path(cfg["data"]["prepared"]) / prep_io.FORCING_FILE)
+        last_weather_day = forcing["time"].values[-1]
+    if last_weather_day is None or np.isnat(np.datetime64(last_weather_day, "D")):
+        raise InputError("cannot read the last day of the weather records",
+                         file=Path(cfg["data"]["raw"]) / raw_io.WEATHER_FILE, variable="date")
+    day = _day(np.datetime64(last_weather_day, "D"), "weather date")
+    if cfg["forecast"]["forcing"] == "observed":
+        day -= int(cfg["forecast"]["leads"])
+    return str(dates([day])[0].date())
+
+
+def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
+    """Operational forecast issued at the end of ``issue_date``: it assimilates the readings
+    through that UTC day and lead 1 is the next day. ``None`` or "latest" = the latest date
+    the inputs allow (:func:`latest_issue_date`).
 
     Starts from the latest restart before the date (forecasts/restart-*.nc, else
     restart.nc), assimilates the readings since then up to the issue date, writes
@@ -586,6 +624,8 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
 
     fc = cfg["forecast"]
     kind, leads = fc["forcing"], int(fc["leads"])
+    if issue_date in (None, "latest"):
+        issue_date = latest_issue_date(cfg)
     issue_day = _day(issue_date, "--issue-date")
     iso = str(dates([issue_day])[0].date())
     lock = paths.forecasts(cfg) / f".forecast-{iso}.lock"

@@ -415,6 +415,27 @@ def _check_order(codes, times, step, path, col, lines, basin_ids, *, regular: bo
             )
 
 
+def last_weather_day(path: str | Path) -> np.datetime64 | None:
+    """The last day of weather.csv, read from the end of the file only (every basin's rows
+    are in date order and every basin covers the same days, so the last row carries the
+    last day). None when the file is missing or its last row has no readable date; reading
+    the whole file (:func:`read_weather`) then reports what is wrong."""
+    try:
+        with open(path, "rb") as f:
+            f.seek(0, 2)
+            f.seek(max(0, f.tell() - 4096))
+            tail = f.read().decode("utf-8", errors="replace")
+    except OSError:
+        return None
+    rows = [line for line in tail.replace("\r", "\n").split("\n") if line.strip()]
+    if not rows:
+        return None
+    try:
+        return np.datetime64(rows[-1].split(",")[0].strip(), "D")
+    except ValueError:
+        return None
+
+
 def read_weather(path: str | Path, basin_ids: Sequence[str], *, need_pet: bool = False,
                  all_ids: Sequence[str] = ()) -> Weather:
     """Read and validate weather.csv: ``date, basin, precipitation_mm, tmin_c, tmax_c``
