@@ -232,3 +232,63 @@ def test_a_minimal_user_config_drives_the_workflow(tmp_path):
         assert (tmp_path / "out" / name).is_file(), name
     with xr.open_dataset(tmp_path / "out" / "analysis.nc") as a:
         assert str(a["time"].values[-1])[:10] == "2013-03-31"
+
+
+def _forecast(cfg, day):
+    buf = io.StringIO()
+    with contextlib.redirect_stderr(buf):
+        ds = pipeline.forecast(cfg, day)
+    attrs = dict(ds.attrs)
+    ds.close()
+    return attrs, buf.getvalue()
+
+
+@pytest.fixture(scope="module")
+def small(tmp_path_factory):
+    root = tmp_path_factory.mktemp("choice")
+    make_raw(root / "raw", ("oskerrin",), "2012-01-01", "2013-01-31")
+    conf = _config(root, period={"start": "2012-01-01", "end": "2012-12-31", "spinup_days": 30},
+                   forecast={"leads": 2, "forcing": "observed"})
+    pipeline.prep(load_config(conf))
+    return root, conf
+
+
+def test_restart_choice_after_the_members_change(small, tmp_path):
+    """Issue 13 item 6: after the config moves from 8 to 10 members and `assim run` writes a
+    fresh restart.nc, the next forecast continues from it, passing over the newer 8-member
+    forecast restart with one line saying why (common practice, no published source)."""
+    root, conf = small
+    cfg = load_config(conf, results=str(tmp_path))
+    pipeline.run(cfg, mode="assimilate")
+    assert _forecast(cfg, "2013-01-05")[0]["restart_valid_time"] == "2012-12-31"
+    cfg10 = load_config(conf, results=str(tmp_path), ensemble={"members": 10})
+    pipeline.run(cfg10, mode="assimilate")
+    attrs, err = _forecast(cfg10, "2013-01-08")
+    assert attrs["restart"] == str(tmp_path / "restart.nc") and attrs["restart_valid_time"] == "2012-12-31"
+    assert attrs["members"] == "10"
+    assert err.count("passed over") == 1 and "restart-2013-01-05.nc" in err and "members 8" in err, err
+
+
+def test_restart_choice_after_run_until_then_a_full_run(small, tmp_path):
+    """`run --until` then a full `run` leaves restart.nc valid after the next issue date: the
+    forecast continues from the newest earlier forecast restart instead of refusing. A
+    damaged older restart is never opened; a damaged newer one is passed over for the
+    newest good one, and the forecast says so once (common practice, no published source)."""
+    root, conf = small
+    cfg = load_config(conf, results=str(tmp_path))
+    pipeline.run(cfg, mode="assimilate", until="2012-11-30")
+    assert _forecast(cfg, "2012-12-10")[0]["restart_valid_time"] == "2012-11-30"
+    pipeline.run(cfg, mode="assimilate")
+    attrs, err = _forecast(cfg, "2012-12-15")
+    assert attrs["restart_valid_time"] == "2012-12-10" and err == "", err
+    assert _forecast(cfg, "2012-12-16")[0]["restart_valid_time"] == "2012-12-15"
+    folder = tmp_path / "forecasts"
+    older = folder / "restart-2012-12-10.nc"
+    older.write_bytes(older.read_bytes()[:500])  # truncated
+    attrs, err = _forecast(cfg, "2012-12-17")
+    assert attrs["restart_valid_time"] == "2012-12-16" and err == "", err
+    newest = folder / "restart-2012-12-17.nc"
+    newest.write_bytes(newest.read_bytes()[:500])
+    attrs, err = _forecast(cfg, "2012-12-18")
+    assert attrs["restart_valid_time"] == "2012-12-16", attrs
+    assert err.count("\n") == 1 and "unreadable" in err and "restart-2012-12-17.nc" in err, err
