@@ -356,8 +356,12 @@ def _read_csv(path: Path, required: Sequence[str]) -> tuple[pd.DataFrame, np.nda
     dup = df.columns[df.columns.duplicated()]
     if len(dup):
         raise InputError("column appears twice", file=path, variable=dup[0], place="line 1")
-    filled = np.flatnonzero(np.array([bool(line.strip()) for line in text.split("\n")])) + 1
-    lines = filled[1:1 + len(df)] if filled.size == len(df) + 1 else np.arange(len(df)) + 2
+    lines = np.arange(len(df), dtype=np.int64) + 2
+    body = text.rstrip("\n")
+    if "\n\n" in body or body.startswith("\n"):  # blank lines: count them (rare, so only then)
+        filled = np.flatnonzero(np.array([bool(line) for line in body.split("\n")])) + 1
+        if filled.size == len(df) + 1:
+            lines = filled[1:]
     return df, lines.astype(np.int64)
 
 
