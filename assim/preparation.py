@@ -349,6 +349,7 @@ def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
         "flags": {name: int(((flags & m) != 0).sum()) for name, m in QC_FLAGS.items() if name != "insufficient_coverage"},
         "readings": np.bincount(readings.basin, minlength=len(ids)),
         "outside": int((~inside).sum()),
+        "duplicates": readings.duplicates,
         "basins": basins,
     }
     return {"forcing": forcing, "observations": observations, "basins": basins_ds}, stats
@@ -442,6 +443,8 @@ def check(cfg: Mapping) -> str:
     lines.append(f"flagged readings: {flagged}")
     short = int(((o["qc_flag"].values & QC_FLAGS["insufficient_coverage"]) != 0).sum())
     lines.append(f"days with insufficient coverage (no discharge): {short}")
+    if stats["duplicates"]:
+        lines.append(f"gauge rows repeating another exactly (dropped): {stats['duplicates']}")
     if stats["outside"]:
         lines.append(f"readings outside the weather period (not used): {stats['outside']}")
     folder = Path(cfg["data"]["prepared"])

@@ -560,3 +560,28 @@ def test_sample_basin_prepares_with_expected_faults(tmp_path):
                           usecols=2).reshape(3, -1)
     ratio = obs["discharge"].values / truth
     assert np.nanmedian(np.abs(ratio - 1)) < 0.06
+
+
+def test_appending_a_day_changes_no_earlier_day_and_repeats_are_counted(tmp_path):
+    """The daily chain's premise (common practice, no published source): preparing the
+    folder with one more day of records (appended unsorted, with one row sent twice) leaves
+    every earlier day's discharge, flags, coverage and counts bit for bit as they were, and
+    check reports the repeated row."""
+    days = DAYS[:-1]
+    w, g = weather_csv().splitlines(), gauge_csv().splitlines()
+    last = str(DAYS[-1])
+    w_head = [w[0]] + [r for r in w[1:] if not r.startswith(last)]
+    g_head = [g[0]] + [r for r in g[1:] if not r.startswith(last)]
+    g_tail = [r for r in g[1:] if r.startswith(last)]
+    raw = make_raw(tmp_path / "raw", weather_csv="\n".join(w_head) + "\n", gauge_csv="\n".join(g_head) + "\n")
+    cfg = config(raw, tmp_path / "p")
+    before = prep.prepare(cfg)["observations"]
+    with open(raw / "weather.csv", "a") as f:
+        f.write("\n".join(r for r in w[1:] if r.startswith(last)) + "\n")
+    with open(raw / "gauge.csv", "a") as f:
+        f.write("\n".join(g_tail[::-1] + g_tail[:1]) + "\n")
+    after = prep.prepare(cfg)["observations"]
+    assert after.sizes["time"] == days.size + 1
+    for v in ("discharge", "qc_flag", "coverage", "n_readings", "n_rejected"):
+        np.testing.assert_array_equal(after[v].values[:, :-1], before[v].values, err_msg=v)
+    assert "gauge rows repeating another exactly (dropped): 1" in prep.check(cfg)
