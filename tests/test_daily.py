@@ -187,7 +187,8 @@ def test_issue_target_cron_line_and_timer_as_documented(tmp_path):
     env = {**os.environ, "PYTHONPATH": str(REPO)}
     _append_day(root, "2013-04-01")
     r = subprocess.run([*SNAKEMAKE, "--directory", str(root), "--configfile", "config/config.yaml",
-                        "--cores", "2", "--dry-run", "--", "issue"], capture_output=True, text=True, env=env)
+                        "--cores", "2", "--dry-run", "--", "issue"], cwd=root, capture_output=True, text=True,
+                       env=env)
     assert r.returncode == 0, r.stderr
     table = r.stdout[r.stdout.index("Job stats:"):].split("total")[0]
     jobs = {line.split()[0] for line in table.splitlines()[3:] if line.strip()}
@@ -225,7 +226,7 @@ def test_a_minimal_user_config_drives_the_workflow(tmp_path):
                        capture_output=True, text=True, env=env)
     assert r.returncode == 0, r.stderr
     r = subprocess.run([*SNAKEMAKE, "--directory", str(tmp_path), "--configfile", "my.yaml", "--cores", "2"],
-                       capture_output=True, text=True, env=env)
+                       cwd=tmp_path, capture_output=True, text=True, env=env)
     assert r.returncode == 0, r.stderr[-3000:]
     for name in ("analysis.nc", "openloop.nc", "hindcast.nc", "skill.csv", "report.html",
                  "forecasts/forecast-2013-03-31.nc"):
