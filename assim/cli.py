@@ -50,7 +50,11 @@ def _parser() -> argparse.ArgumentParser:
     s.add_argument("--until", metavar="YYYY-MM-DD", help="last day to run (default: period end)")
     add("hindcast", "hindcast experiments: forecasts from open-loop and assimilation states")
     s = add("forecast", "operational forecast for one issue date, from the latest restart")
-    s.add_argument("--issue-date", required=True, metavar="YYYY-MM-DD")
+    s.add_argument("--issue-date", default="latest", metavar="YYYY-MM-DD",
+                   help="the forecast is issued at the end of this UTC day: it assimilates the "
+                   "readings through the day, lead 1 is the next day (default: latest, the last "
+                   "day of the prepared weather; for forecast.forcing observed, that day minus "
+                   "the leads)")
     add("verify", "skill of runs and hindcasts against observations (skill.nc, skill.csv)")
     s = add("plot", "figures (PNG) of runs, hindcasts, skill and forecasts")
     s.add_argument("--issue-date", metavar="YYYY-MM-DD", help="also draw the plume of this forecast")

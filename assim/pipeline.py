@@ -520,51 +520,174 @@ def _readings_identity(cfg: Config, day: int) -> dict[str, str]:
     return {"readings_through": iso(day), "readings_digest": _readings_digests(cfg, [day])[day]}
 
 
-def _latest_restart(cfg: Config, issue_day: int):
-    """The restart a forecast for ``issue_day`` starts from: (path, valid day, warnings).
+def _span(files) -> str:
+    """'a' or 'a … b (n restarts)' for a list of restart files, newest first."""
+    files = [str(f) for f in files]
+    return files[0] if len(files) == 1 else f"{files[-1]} … {files[0]} ({len(files)} restarts)"
 
-    The newest forecasts/restart-YYYY-MM-DD.nc before the issue day (else restart.nc) whose
-    readings are still those on file: a restart written before a late reading of its days
-    arrived is passed over for an older one, so that the next forecast assimilates the late
-    reading. When no restart is current (readings before the run's own restart changed), the
-    newest is used and the warning says so. Only the restarts' headers are read.
+
+def _misfit(attrs: dict, basins, identity: dict, basin_ids) -> str | None:
+    """Why a restart's header does not fit the forecast's settings (None when it fits)."""
+    for key in ("model", "members", "seed", "mode"):
+        if attrs.get(key) != str(identity[key]):
+            return f"{key} {attrs.get(key)}, the config has {identity[key]}"
+    if tuple(basins) != tuple(basin_ids):
+        return "other basins than the prepared layer"
+    return None
+
+
+def _choose_restart(cfg: Config, issue_day: int, identity: dict, basin_ids, state_names):
+    """The restart a forecast for ``issue_day`` continues from: (Restart, notes).
+
+    Candidates are forecasts/restart-YYYY-MM-DD.nc before the issue day and restart.nc valid
+    on or before it, newest first; the first that fits is taken: readable, written with
+    this model, members, seed, basins and mode (assimilate), with the perturbation, filter
+    and input digests of the config, and whose readings digest is still that of the
+    prepared layer (a late or corrected reading of its days means the states have not seen
+    it, so an older restart is taken and the readings since then are assimilated again).
+    Only candidates newer than the one taken are opened, so an old damaged restart never
+    matters and the cost does not grow with the number of days issued.
+
+    When no restart fits fully, the newest one that differs only in its perturbation,
+    filter or input settings is taken, else the newest one whose readings changed, each
+    with a note saying so. ``notes`` says, once, why newer restarts were passed over.
+
+    Raises
+    ------
+    RestartError
+        naming the newest candidate and why it does not fit, when none can be used.
     """
     import re
 
     from assim import paths
     from assim.errors import RestartError
-    from assim.io.restart import read_restart_header
+    from assim.io.products import dates
+    from assim.io.restart import LOOSE, check_restart, read_restart, read_restart_header
 
-    candidates = []
+    run_restart = paths.restart(cfg)
+    candidates = []  # (day, path, header or None)
     folder = paths.forecasts(cfg)
     if folder.is_dir():
         for f in folder.glob("restart-*.nc"):
             m = re.fullmatch(r"restart-(\d{4}-\d{2}-\d{2})\.nc", f.name)
             if m and _day(m.group(1), f.name) < issue_day:
-                candidates.append(f)
-    p = paths.restart(cfg)
-    if p.exists():
-        candidates.append(p)
+                candidates.append((_day(m.group(1), f.name), f, None))
+    unreadable, after = [], []
+    if run_restart.exists():
+        try:
+            header = read_restart_header(run_restart)
+        except RestartError as exc:
+            unreadable.append(f"{run_restart} ({exc.args[0]})")
+        else:
+            if header[0] <= issue_day:
+                candidates.append((header[0], run_restart, header))
+            else:
+                after.append(run_restart)
     if not candidates:
-        raise RestartError("no restart to start the forecast from: run `assim run --mode assimilate` first",
-                           file=p)
-    headers = sorted(((f, *read_restart_header(f)) for f in candidates), key=lambda h: h[1], reverse=True)
-    digests = _readings_digests(cfg, [day for _, day, _ in headers])
-    skipped = []
-    for f, day, attrs in headers:
+        if after:
+            raise RestartError(f"the restart is valid at {dates([header[0]])[0].date()}, after the issue date "
+                               f"{dates([issue_day])[0].date()}, and no earlier restart exists",
+                               file=run_restart, variable="valid_time")
+        why = f" ({unreadable[0]})" if unreadable else ""
+        raise RestartError("no restart to start the forecast from: run `assim run --mode assimilate` "
+                           f"first{why}", file=run_restart)
+    candidates.sort(key=lambda c: (c[0], c[1] == run_restart), reverse=True)
+    digests = _readings_digests(cfg, [c[0] for c in candidates])
+    misfits, changed, loose = [], [], None
+
+    def notes(taken):
+        out = []
+        if unreadable:
+            out.append(f"passed over {len(unreadable)} unreadable restart(s): {'; '.join(unreadable[:3])}")
+        if misfits:
+            out.append(f"passed over {_span([f for f, _ in misfits])}: written with other settings "
+                       f"({misfits[0][1]})")
+        if changed:
+            first = dates([min(d for _, d in changed)])[0].date()
+            out.append(f"gauge readings up to {first} arrived or changed after {_span([f for f, _ in changed])} "
+                       f"{'was' if len(changed) == 1 else 'were'} written (a late or corrected reading): "
+                       f"re-assimilating from {taken}")
+        return out
+
+    for _, f, header in candidates:
+        try:
+            valid, attrs, basins = header or read_restart_header(f)
+        except RestartError as exc:
+            unreadable.append(f"{f} ({exc.args[0]})")
+            continue
+        why = _misfit(attrs, basins, identity, basin_ids)
+        if why is not None:
+            misfits.append((f, why))
+            continue
         recorded = attrs.get("readings_digest")
-        if recorded is None or recorded == digests[day]:  # None: written before digests existed
-            return f, day, [f"{s}: passed over, readings up to {a.get('readings_through')} arrived or changed "
-                            "after it was written" for s, _, a in skipped]
-        skipped.append((f, day, attrs))
-    f, day, _ = headers[0]
-    return f, day, [f"{f}: gauge readings up to {headers[-1][2].get('readings_through')} changed after every "
-                    "restart was written; the forecast continues from the newest restart without them "
-                    "(rerun `assim run --mode assimilate` to take them in)"]
+        if valid not in digests:
+            digests.update(_readings_digests(cfg, [valid]))
+        if recorded is not None and recorded != digests[valid]:  # None: written before digests existed
+            changed.append((f, valid))
+            continue
+        try:
+            r = read_restart(f)
+            check_restart(r, identity=identity, basins=basin_ids, state_names=state_names)
+        except RestartError as exc:
+            unreadable.append(f"{f} ({exc.args[0]})")
+            continue
+        if any(k in identity and attrs.get(k) != str(identity[k]) for k in LOOSE):
+            loose = loose or r
+            continue
+        return r, notes(f)
+    if loose is not None:
+        return loose, notes(loose.path)
+    if changed:  # every restart predates the changed readings: the newest, and say so
+        f = changed[0][0]
+        r = read_restart(f)
+        check_restart(r, identity=identity, basins=basin_ids, state_names=state_names)
+        return r, [f"{f}: gauge readings up to {r.identity.get('readings_through')} changed after every "
+                   "restart was written; the forecast continues from the newest restart without them "
+                   "(rerun `assim run --mode assimilate` to take them in)"]
+    f, why = (misfits[0] if misfits else (candidates[0][1], unreadable[0] if unreadable else "unusable"))
+    raise RestartError(f"no restart fits the forecast: {why}", file=f)
 
 
-def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
-    """Operational forecast issued at the end of ``issue_date``.
+def latest_issue_date(cfg: Config, last_weather_day=None) -> str:
+    """The latest issue date the inputs allow, "YYYY-MM-DD".
+
+    A forecast issued at the end of day D assimilates the readings through D and needs
+    D's weather (with ``forecast.forcing: observed`` also the weather of its leads), so the
+    latest D is the last weather day (minus ``forecast.leads`` for observed forcing).
+
+    Parameters
+    ----------
+    last_weather_day : the last day of weather, datetime64[D]; None = the last day of the
+        prepared forcing.
+
+    Raises
+    ------
+    InputError
+        when the weather's last day cannot be read.
+    """
+    import numpy as np
+
+    from assim.errors import InputError
+    from assim.io import prepared as prep_io
+    from assim.io import raw as raw_io
+    from assim.io.products import dates
+
+    if last_weather_day is None:
+        forcing = prep_io.read_forcing(Path(cfg["data"]["prepared"]) / prep_io.FORCING_FILE)
+        last_weather_day = forcing["time"].values[-1]
+    if last_weather_day is None or np.isnat(np.datetime64(last_weather_day, "D")):
+        raise InputError("cannot read the last day of the weather records",
+                         file=Path(cfg["data"]["raw"]) / raw_io.WEATHER_FILE, variable="date")
+    day = _day(np.datetime64(last_weather_day, "D"), "weather date")
+    if cfg["forecast"]["forcing"] == "observed":
+        day -= int(cfg["forecast"]["leads"])
+    return str(dates([day])[0].date())
+
+
+def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
+    """Operational forecast issued at the end of ``issue_date``: it assimilates the readings
+    through that UTC day and lead 1 is the next day. ``None`` or "latest" = the latest date
+    the inputs allow (:func:`latest_issue_date`).
 
     Starts from the latest restart before the date (forecasts/restart-*.nc, else
     restart.nc), assimilates the readings since then up to the issue date, writes
@@ -580,29 +703,33 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
     import dataclasses
 
     from assim import conventions, engine, paths
-    from assim.errors import ConfigError, RestartError, RunError
+    from assim.errors import ConfigError, RunError
     from assim.io.common import FileSet
     from assim.io.products import forecast_lock, read_forcing_forecast, write_forecast
-    from assim.io.restart import write_restart
+    from assim.io.restart import check_restart, write_restart
     from assim.settings import settings_from_config
 
     fc = cfg["forecast"]
     kind, leads = fc["forcing"], int(fc["leads"])
+    if issue_date in (None, "latest"):
+        issue_date = latest_issue_date(cfg)
     issue_day = _day(issue_date, "--issue-date")
     iso = conventions.iso(issue_day)
     lock = paths.forecasts(cfg) / f".forecast-{iso}.lock"
     with forecast_lock(lock, [paths.forecast(cfg, iso), paths.forecast_restart(cfg, iso)]), _reading_layer(cfg):
-        restart_path, valid, passed_over = _latest_restart(cfg, issue_day)
-        _show_warnings(passed_over)
-        if valid > issue_day:
-            raise RestartError(f"the restart is valid at {conventions.iso(valid)}, after the issue date {iso}",
-                               file=restart_path, variable="valid_time")
+        # the identity needs only the basins' areas and parameters: one day of inputs
+        model, probe, _ = _inputs(cfg, iso, iso)
+        identity = _identity(cfg, model, probe, "assimilate")
+        restart, notes = _choose_restart(cfg, issue_day, identity, probe.basin_ids, model.state_names)
+        restart_path, valid = restart.path, restart.valid_day
+        _show_warnings(notes)
         last = issue_day + (leads if kind == "observed" else 0)
         model, inputs, basins = _inputs(cfg, conventions.iso(valid), conventions.iso(last),
                                         climatology=kind == "climatology")
         settings = dataclasses.replace(settings_from_config(cfg, model, "assimilate"), spinup_days=0)
-        identity = _identity(cfg, model, inputs, "assimilate")
-        state = _read_checked_restart(restart_path, model, inputs, identity)
+        _show_warnings(check_restart(restart, identity=identity, basins=inputs.basin_ids,
+                                     state_names=model.state_names))
+        state = _to_state(restart)
         file_forcing = None  # read before anything is written: a bad file leaves no restart behind
         if kind == "file":
             if not fc["forcing_file"]:
@@ -638,8 +765,9 @@ def forecast(cfg: Config, issue_date: str) -> xr.Dataset:
                 quantiles=fc["quantiles"], thresholds={n: thr[:, j] for j, n in enumerate(names)},
                 analysis=analysis, float32=settings.float32,
                 attrs={**_attrs(cfg, model, settings), "forcing": kind, "restart": str(restart_path),
-                       **({"warnings": " | ".join(passed_over + [str(w) for w in summary.warnings])}
-                          if passed_over or summary.warnings else {})},
+                       "restart_valid_time": conventions.iso(valid),
+                       **({"warnings": " | ".join(notes + [str(w) for w in summary.warnings])}
+                          if notes or summary.warnings else {})},
                 commit=files,
             )
             write_restart(restart_file, _to_restart(summary.state, model, inputs,

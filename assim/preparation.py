@@ -10,14 +10,18 @@ Steps, all vectorised over readings, basins and days:
 5. PET from temperature (:mod:`assim.evaporation`) or as given.
 6. Validate the three Datasets, then write them (each atomically).
 
-The coverage rule. Each accepted reading of a basin stands for the time from half-way to
-the previous accepted reading to half-way to the next one, but at most
-``data.max_reading_gap_hours`` on either side (the first and last readings stand for that
-many hours on their open side). A UTC day's coverage is the fraction of its 24 h that these
-intervals cover; the daily mean is the mean of the readings weighted by the length of their
-interval inside the day. A day covered less than ``data.daily_coverage`` has no discharge
-(NaN) and the flag ``insufficient_coverage``. Rejected readings are not among the accepted
-ones: they neither enter the mean nor cover time.
+The coverage rule. A UTC day's mean depends on that day's readings only, so appending the
+next day's readings never changes a day already prepared (the daily chain of forecasts relies
+on it). Each accepted reading of a basin stands for the time from half-way to the previous
+accepted reading of the same day to half-way to the next one of the same day, but at most
+``data.max_reading_gap_hours`` on either side; the first reading of a day stands for the time
+back to midnight and the last one for the time on to the next midnight, again at most that
+many hours. A day's coverage is the fraction of its 24 h that these intervals cover; the
+daily mean is the mean of the readings weighted by the length of their intervals. A day
+covered less than ``data.daily_coverage`` has no discharge (NaN) and the flag
+``insufficient_coverage``. Rejected readings are not among the accepted ones: they neither
+enter the mean nor cover time. Quality control is causal in the same sense: a reading's
+flags depend on readings up to the end of its own day (:func:`qc_readings`).
 """
 
 from __future__ import annotations
@@ -100,10 +104,14 @@ def qc_readings(basin, seconds, value, discharge, area_km2, *, max_discharge_m3s
     -------
     (n,) int64 bit flags: ``impossible_value`` (negative or infinite discharge),
     ``above_plausible_maximum`` (discharge > max_discharge_m3s * area), ``flat_line``
-    (identical consecutive raw values of one basin spanning at least ``flatline_hours``),
-    ``spike`` (among the other plausible readings of the basin, a reading whose level
-    q + f differs from the level of both neighbours by more than a factor 1 + r in the same
-    direction, where f = 0.001 m3 s-1 km-2 times the area).
+    (identical consecutive raw values of one basin spanning at least ``flatline_hours`` by
+    the end of the reading's UTC day), ``spike`` (among the other plausible readings of the
+    basin, a reading whose level q + f differs from the level of both neighbours by more
+    than a factor 1 + r in the same direction, where f = 0.001 m3 s-1 km-2 times the area;
+    the next neighbour must be on the same UTC day).
+
+    The flags of a day's readings depend on the readings up to the end of that day only,
+    so appending the next day's readings never changes them.
     """
     basin = np.asarray(basin)
     t = np.asarray(seconds, dtype=float)
@@ -114,14 +122,20 @@ def qc_readings(basin, seconds, value, discharge, area_km2, *, max_discharge_m3s
     flags[(q < 0) | np.isinf(q)] |= _F["impossible_value"]
     flags[q > max_discharge_m3s * area] |= _F["above_plausible_maximum"]
 
-    # flat lines: runs of identical raw values within a basin
+    # flat lines: runs of identical raw values within a basin, each reading judged by the
+    # run's span up to the end of the reading's own day (never by later days)
+    day = np.floor(t / 86400.0).astype(np.int64)
     if v.size:
         new_run = np.r_[True, (v[1:] != v[:-1]) | (basin[1:] != basin[:-1])]
         starts = np.flatnonzero(new_run)
         run = np.cumsum(new_run) - 1
-        span = np.maximum.reduceat(t, starts) - np.minimum.reduceat(t, starts)
-        long_run = (span >= flatline_hours * 3600.0) & (np.diff(np.r_[starts, v.size]) > 1)
-        flags[long_run[run]] |= _F["flat_line"]
+        new_part = new_run | np.r_[True, day[1:] != day[:-1]]
+        part_starts = np.flatnonzero(new_part)
+        part = np.cumsum(new_part) - 1
+        part_last = (np.r_[part_starts[1:], v.size] - 1)[part]
+        span = t[part_last] - t[starts[run]]
+        long_run = (span >= flatline_hours * 3600.0) & (part_last > starts[run])
+        flags[long_run] |= _F["flat_line"]
 
     # spikes, among plausible readings only
     ok = np.isfinite(q) & ((flags & (_F["impossible_value"] | _F["above_plausible_maximum"])) == 0)
@@ -129,7 +143,9 @@ def qc_readings(basin, seconds, value, discharge, area_km2, *, max_discharge_m3s
     if idx.size >= 3:
         level = np.log(q[idx] + SPIKE_LEVEL_FLOOR * area[idx])
         prev, nxt = _neighbours(basin[idx])
-        has = (prev >= 0) & (nxt >= 0)
+        # the next neighbour only within the same UTC day: a day's flags never wait for the
+        # next day's readings (the last reading of a day is not tested)
+        has = (prev >= 0) & (nxt >= 0) & (day[idx] == day[idx[np.maximum(nxt, 0)]])
         d_prev = level - level[np.maximum(prev, 0)]
         d_next = level - level[np.maximum(nxt, 0)]
         limit = np.log1p(spike_ratio)
@@ -144,6 +160,9 @@ def qc_readings(basin, seconds, value, discharge, area_km2, *, max_discharge_m3s
 def daily_means(basin, seconds, discharge, n_basin: int, first_day, n_days: int, *,
                 max_gap_hours: float) -> tuple[np.ndarray, np.ndarray]:
     """Time-weighted daily means of accepted readings and the covered fraction of each day.
+
+    A day's mean and coverage depend on that day's readings only (see the module
+    docstring), so appending the next day's readings never changes a day already prepared.
 
     Parameters
     ----------
@@ -168,31 +187,20 @@ def daily_means(basin, seconds, discharge, n_basin: int, first_day, n_days: int,
     t = np.asarray(seconds, dtype=float)
     q = np.asarray(discharge, dtype=float)
     gap = max_gap_hours * 3600.0
-    prev, nxt = _neighbours(basin)
-    left = np.where(prev >= 0, np.minimum(gap, 0.5 * (t - t[np.maximum(prev, 0)])), gap)
-    right = np.where(nxt >= 0, np.minimum(gap, 0.5 * (t[np.maximum(nxt, 0)] - t)), gap)
     day0 = float(np.datetime64(first_day, "D").astype("datetime64[s]").astype(np.int64))
-    lo, hi = day0 - 2 * gap, day0 + n_days * 86400.0 + 2 * gap
-    keep = (t + right > lo) & (t - left < hi)
-    basin, t, q, left, right = basin[keep], t[keep], q[keep], left[keep], right[keep]
-    # Put the basins one after another on one time axis, far enough apart that no interval
-    # reaches the next basin; then one cumulative integral serves every basin and day.
-    offset = (n_days + 2) * 86400.0 + 4 * gap
-    shift = (t - day0) + basin * offset
-    start, length = shift - left, left + right
-    value_int = np.r_[0.0, np.cumsum(q * length)]
-    time_int = np.r_[0.0, np.cumsum(length)]
-    bounds = (np.arange(n_days + 1) * 86400.0)[None, :] + (np.arange(n_basin) * offset)[:, None]
-
-    def integral(cum, rate, x):
-        k = np.searchsorted(start, x, side="right") - 1
-        kk = np.maximum(k, 0)
-        part = np.clip(x - start[kk], 0.0, length[kk])
-        return np.where(k >= 0, cum[kk] + rate[kk] * part, 0.0)
-
-    ones = np.ones_like(q)
-    qi = np.diff(integral(value_int, q, bounds), axis=1)
-    ti = np.diff(integral(time_int, ones, bounds), axis=1)
+    day = np.floor((t - day0) / 86400.0).astype(np.int64)
+    inside = (day >= 0) & (day < n_days)
+    basin, t, q, day = basin[inside], t[inside], q[inside], day[inside]
+    # neighbours within the same basin and UTC day; a day's first and last readings stand
+    # for the time back to midnight and on to the next midnight (at most the gap)
+    prev, nxt = _neighbours(basin * n_days + day)
+    start, end = day0 + day * 86400.0, day0 + (day + 1) * 86400.0
+    left = np.minimum(gap, np.where(prev >= 0, 0.5 * (t - t[np.maximum(prev, 0)]), t - start))
+    right = np.minimum(gap, np.where(nxt >= 0, 0.5 * (t[np.maximum(nxt, 0)] - t), end - t))
+    length = left + right
+    cell = basin * n_days + day
+    ti = np.bincount(cell, weights=length, minlength=n_basin * n_days).reshape(n_basin, n_days)
+    qi = np.bincount(cell, weights=q * length, minlength=n_basin * n_days).reshape(n_basin, n_days)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = np.where(ti > 0, qi / ti, np.nan)
     return mean, np.clip(ti / 86400.0, 0.0, 1.0)
@@ -256,7 +264,7 @@ def _daily_observations(basins: list[raw_io.Basin], readings: raw_io.Readings, d
     st = is_stage[k]
     if st.any():
         q[st], flags[st] = rating_discharge(value[st], *(rating[n][k[st]] for n in _RATING_FIELDS))
-    seconds = readings.time.astype(np.int64).astype(float)
+    seconds = readings.time.astype("datetime64[ms]").astype(np.int64) / 1000.0
     qc = data["qc"]
     flags |= qc_readings(k, seconds, value, q, area[k], max_discharge_m3s=qc["max_discharge_m3s"],
                          spike_ratio=qc["spike_ratio"], flatline_hours=qc["flatline_hours"])
@@ -379,6 +387,7 @@ def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
         "flags": {name: int(((flags & m) != 0).sum()) for name, m in QC_FLAGS.items() if name != "insufficient_coverage"},
         "readings": np.bincount(readings.basin, minlength=len(ids)),
         "outside": int((~inside).sum()),
+        "duplicates": readings.duplicates,
         "basins": basins,
     }
     return {"forcing": forcing, "observations": observations, "basins": basins_ds}, stats
@@ -495,6 +504,8 @@ def check(cfg: Mapping) -> str:
     lines.append(f"flagged readings: {flagged}")
     short = int(((o["qc_flag"].values & QC_FLAGS["insufficient_coverage"]) != 0).sum())
     lines.append(f"days with insufficient coverage (no discharge): {short}")
+    if stats["duplicates"]:
+        lines.append(f"gauge rows repeating another exactly (dropped): {stats['duplicates']}")
     if stats["outside"]:
         lines.append(f"readings outside the weather period (not used): {stats['outside']}")
     folder = Path(cfg["data"]["prepared"])

@@ -15,7 +15,10 @@ subprocess, for their own peak memory; the rest in this process), and tabulates 
    no innovation gate, one core): one basin of 100 members over 20 years and 100 basins of
    100 members over one year, for assim, ``baseline_loop.run`` and ``baseline_filterpy.run``;
 5. the demo workflow: ``snakemake`` on a copy of ``config/config.yaml`` in a temporary folder
-   (raw data from the repository's ``sample_basin``), package installation excluded.
+   (raw data from the repository's ``sample_basin``), package installation excluded;
+6. one ordinary day of operation (``bench_daily.run``): the `issue` target's commands
+   (`assim prep` with the day's records appended, `assim forecast`) for 100 basins x 64
+   members with a 5- and a 10-year record, to show the cost does not grow with the record.
 
 It prints the machine and one table, and writes the table to ``benchmarks/out/latest.md``
 and every figure to ``benchmarks/out/latest.json`` (``quick.md``, ``quick.json`` for
@@ -50,6 +53,7 @@ sys.path.insert(1, str(REPO))
 
 import baseline_filterpy  # noqa: E402
 import baseline_loop  # noqa: E402
+import bench_daily  # noqa: E402
 import bench_engine  # noqa: E402
 import bench_filters  # noqa: E402
 import bench_models  # noqa: E402
@@ -460,6 +464,27 @@ def demo_rows(quick: bool, figures: dict, shortened: bool = False) -> list[Row]:
     return [Row("demo workflow end to end", what, result, met=None if r.returncode == 0 else False)]
 
 
+def daily_rows(quick: bool, figures: dict) -> list[Row]:
+    """One ordinary day's `issue` (prep + forecast, each a fresh CLI process) on a 5- and a
+    10-year record: target <= 10 s wall on 2 cores, and flat as the record grows."""
+    n_basin, members = (10, 16) if quick else (100, 64)
+    out = {}
+    for years in ((1, 2) if quick else (5, 10)):
+        _log(f"daily issue, {n_basin} basins x {members} members, {years}-year record")
+        out[years] = bench_daily.run(n_basin, members, years)
+    figures["daily"] = out
+    short, long_ = out[min(out)], out[max(out)]
+    growth = long_["issue_s"] / short["issue_s"]
+    rows = [Row(f"daily issue, {y}-year record",
+                f"{n_basin} basins x {members} members, {r['gauge_rows']:,} gauge rows; `assim prep` + "
+                "`assim forecast` (climatology, 10 leads), fresh processes",
+                f"{r['issue_s']:.1f} s wall (prep {r['prep_s']:.1f} s, forecast {r['forecast_s']:.1f} s)",
+                target="<= 10 s", met=r["issue_s"] <= 10.0) for y, r in out.items()]
+    rows.append(Row("daily issue, growth with the record", f"{max(out)}-year / {min(out)}-year record",
+                    f"{growth:.2f}x", target="flat (<= 1.2x)", met=growth <= 1.2))
+    return rows
+
+
 # ---------------------------------------------------------------- main
 
 
@@ -479,8 +504,10 @@ def run(quick: bool = False, demo: bool = False) -> tuple[dict, list[Row]]:
         parts[name] = section(quick, figures)
     load["demo"] = os.getloadavg()[0]
     parts["demo"] = demo_rows(quick, figures, shortened=quick and demo)
+    load["daily"] = os.getloadavg()[0]
+    parts["daily"] = daily_rows(quick, figures)
     load["end"] = os.getloadavg()[0]
-    for name in ("gr4j", "analysis", "engine", "baseline", "demo"):
+    for name in ("gr4j", "analysis", "engine", "baseline", "demo", "daily"):
         rows += parts[name]
     if quick:  # small sizes: the targets are not judged
         for r in rows:

@@ -435,14 +435,15 @@ def test_late_reading_is_picked_up_by_the_next_forecast(tmp_path):
     assert r.returncode == 0, r.stderr
     r = cli("forecast", "--issue-date", d1, "--config", conf)
     assert r.returncode == 0, r.stderr
-    assert f"restart-{d}.nc: passed over" in r.stderr, r.stderr
+    assert r.stderr.count("re-assimilating from") == 1, r.stderr  # said once
+    assert f"restart-{d}.nc was written" in r.stderr and "restart.nc\n" in r.stderr, r.stderr
     with xr.open_dataset(tmp_path / "results" / "forecasts" / f"forecast-{d1}.nc") as f:
         note, warned = f.attrs["analysis"], f.attrs.get("warnings", "")
     assert note.startswith("performed: 2 gauge readings"), note
-    assert f"restart-{d}.nc: passed over" in warned
+    assert f"restart-{d}.nc was written" in warned and "re-assimilating" in warned
     # with no further change, the next forecast continues from the newest restart (d+1)
     r = cli("forecast", "--issue-date", "2012-08-22", "--config", conf)
-    assert r.returncode == 0 and "passed over" not in r.stderr, r.stderr
+    assert r.returncode == 0 and "re-assimilating" not in r.stderr, r.stderr
     with xr.open_dataset(tmp_path / "results" / "forecasts" / "forecast-2012-08-22.nc") as f:
         assert f"valid at {d1}" in f.attrs["analysis"], f.attrs["analysis"]
 

@@ -156,10 +156,24 @@ def test_qc_spike_neighbours_stay_within_a_basin():
 
 
 def test_qc_flat_line():
-    """Identical readings spanning 24 h or more are a stuck sensor; 21 h are not."""
+    """Identical readings spanning 24 h or more are a stuck sensor; 21 h are not. A reading
+    is judged by the run up to the end of its own UTC day: the run from 06 h to 30 h
+    reaches 24 h on day two, so its readings of day two (24, 27, 30 h) are flagged and
+    those of day one (15 h by midnight) are not."""
     stuck = _qc([2.0, 2.1] + [3.0] * 9 + [2.9])  # nine readings 3 h apart span 24 h
-    assert np.flatnonzero(stuck & F["flat_line"]).tolist() == list(range(2, 11))
+    assert np.flatnonzero(stuck & F["flat_line"]).tolist() == [8, 9, 10]
     assert not (_qc([2.0, 2.1] + [3.0] * 8 + [2.9]) & F["flat_line"]).any()
+    within = _qc([2.0] + [3.0] * 8 + [2.0], hours=np.arange(10) * 2.0, flatline_hours=12.0)
+    assert np.flatnonzero(within & F["flat_line"]).tolist() == list(range(1, 9))
+
+
+def test_qc_spike_test_waits_for_no_later_day():
+    """The last reading of a day is not tested against the first reading of the next day:
+    a day's flags must not change when the next day's readings arrive."""
+    flags = _qc([1.0, 1.1, 1.0, 1.05, 10.0, 1.0], hours=[12, 15, 18, 21, 23, 25])
+    assert not (flags & F["spike"]).any()
+    flags = _qc([1.0, 1.1, 1.0, 10.0, 1.0, 1.0], hours=[12, 15, 18, 21, 23, 25])
+    assert np.flatnonzero(flags & F["spike"]).tolist() == [3]
 
 
 # ---------------------------------------------------------------------------------- daily
@@ -183,16 +197,21 @@ def test_daily_mean_time_weighted():
 
 
 def test_daily_mean_regular_readings_and_next_day():
-    """Six-hourly readings 1, 2, 3, 4 and 5 the next midnight: (1x3 + 2x6 + 3x6 + 4x6 + 5x3)
-    / 24 = 3.0 on day one (hand computation)."""
+    """Six-hourly readings 1, 2, 3, 4 and 5 the next midnight. Day one uses its own
+    readings only: they stand for [0, 3], [3, 9], [9, 15], [15, 21] h, so the mean is
+    (1x3 + 2x6 + 3x6 + 4x6) / 21 = 2.714 and the coverage 21/24 (hand computation); the
+    midnight reading stands for [24, 27] h of day two only."""
     mean, cover = _daily([0, 6, 12, 18, 24], [1, 2, 3, 4, 5], n_days=2)
-    assert mean[0, 0] == pytest.approx(3.0)
-    assert cover[0, 0] == pytest.approx(1.0)
-    assert cover[0, 1] == pytest.approx(3 / 24)  # the last reading stands for 3 h of day two
+    assert mean[0, 0] == pytest.approx(57 / 21)
+    assert cover[0, 0] == pytest.approx(21 / 24)
+    assert cover[0, 1] == pytest.approx(3 / 24)
+    assert mean[0, 1] == pytest.approx(5.0)
+    first, _ = _daily([0, 6, 12, 18], [1, 2, 3, 4], n_days=2)  # before day two's reading arrived
+    assert first[0, 0] == mean[0, 0]
 
 
 def test_daily_partial_coverage():
-    """Hourly readings 00:00-11:00 with a 3 h cap cover [-3, 14] h: 14 h of 24 = 0.583."""
+    """Hourly readings 00:00-11:00 with a 3 h cap cover [0, 14] h: 14 h of 24 = 0.583."""
     mean, cover = _daily(np.arange(12), np.full(12, 7.0))
     assert cover[0, 0] == pytest.approx(14 / 24)
     assert mean[0, 0] == pytest.approx(7.0)
@@ -207,10 +226,10 @@ def test_daily_means_basins_apart():
 
 
 def test_daily_means_against_brute_force():
-    """The cumulative-integral implementation against a direct reading of the rule
-    (common practice, no published source): a moment of the day is covered by the nearest
-    reading if that reading is at most max_gap_hours away; the mean is the average over
-    covered moments, sampled every 10 s. Random irregular readings, three basins."""
+    """The implementation against a direct reading of the rule (common practice, no
+    published source): a moment of a day is covered by the nearest reading of the same day
+    if that reading is at most max_gap_hours away; the mean is the average over covered
+    moments, sampled every 10 s. Random irregular readings, three basins."""
     rng = np.random.default_rng(7)
     t0 = np.datetime64("2015-03-01")
     base = float(t0.astype("datetime64[s]").astype(np.int64))
@@ -226,15 +245,19 @@ def test_daily_means_against_brute_force():
     mean, cover = prep.daily_means(basin, seconds, values, 3, t0, n_days, max_gap_hours=gap)
     grid = base + (np.arange(n_days * 8640) + 0.5) * 10.0
     for b in range(3):
-        tb, vb = seconds[basin == b], values[basin == b]
-        nearest = np.abs(grid[:, None] - tb[None, :]).argmin(axis=1)
-        covered = np.abs(grid - tb[nearest]) <= gap * 3600.0
         for d in range(n_days):
             day = slice(d * 8640, (d + 1) * 8640)
-            c = covered[day]
+            lo, hi = base + d * 86400.0, base + (d + 1) * 86400.0
+            own = (basin == b) & (seconds >= lo) & (seconds < hi)
+            tb, vb = seconds[own], values[own]
+            if not tb.size:
+                assert cover[b, d] == 0 and np.isnan(mean[b, d])
+                continue
+            nearest = np.abs(grid[day][:, None] - tb[None, :]).argmin(axis=1)
+            c = np.abs(grid[day] - tb[nearest]) <= gap * 3600.0
             assert cover[b, d] == pytest.approx(c.mean(), abs=1e-3)
             if c.any():
-                assert mean[b, d] == pytest.approx(vb[nearest[day]][c].mean(), rel=2e-3)
+                assert mean[b, d] == pytest.approx(vb[nearest][c].mean(), rel=2e-3)
             else:
                 assert np.isnan(mean[b, d])
 
@@ -243,28 +266,27 @@ def test_daily_means_against_brute_force():
 
 
 def test_prepare_small_folder(good):
-    """Hand computation of the documented coverage rule on three-hourly readings
-    alternating between two values: each reading stands for 3 h (1.5 h each side), so a day
-    weighs both values 12 h (mean of the two); on the last day the final reading also
-    stands for the 3 h after it (10.5 h against 13.5 h). The spike at 12:00 is left out of
-    its day and its neighbours, now 6 h apart, stand for 4.5 h each: (9 x 5 + 15 x 6) / 24.
-    The outage day is missing and flagged; PET is Oudin's."""
+    """Hand computation of the documented coverage rule on three-hourly readings at 00, 03,
+    ..., 21 h alternating between two values, each day on its own readings: the 00 h
+    reading stands for [0, 1.5] h, the 21 h one for [19.5, 24] h, the others 3 h, so a day
+    weighs the first value 10.5 h and the second 13.5 h. The spike at 12:00 is left out of
+    its day and its neighbours, now 6 h apart, stand for 4.5 h each: (7.5 x 5 + 16.5 x 6) /
+    24. The outage day is missing and flagged; PET is Oudin's."""
     cfg, ds = good
     obs = ds["observations"]
     q = obs["discharge"].values
     q1, q2 = 2.0, 2.0 * 1.4**1.5
-    np.testing.assert_allclose(q[0, :-1], (q1 + q2) / 2, rtol=1e-12)
-    assert q[0, -1] == pytest.approx((10.5 * q1 + 13.5 * q2) / 24, rel=1e-12)
+    np.testing.assert_allclose(q[0], (10.5 * q1 + 13.5 * q2) / 24, rtol=1e-12)
     assert (obs["qc_flag"].values[0] == 0).all()
     day = {str(d)[:10]: j for j, d in enumerate(obs["time"].values)}
     j_spike, j_gap = day["2015-03-04"], day["2015-03-07"]
-    assert q[1, day["2015-03-03"]] == pytest.approx(5.5, rel=1e-12)
-    assert q[1, j_spike] == pytest.approx((9 * 5 + 15 * 6) / 24, rel=1e-12)
+    assert q[1, day["2015-03-03"]] == pytest.approx((10.5 * 5 + 13.5 * 6) / 24, rel=1e-12)
+    assert q[1, j_spike] == pytest.approx((7.5 * 5 + 16.5 * 6) / 24, rel=1e-12)
     assert obs["qc_flag"].values[1, j_spike] == F["spike"]
     assert obs["n_rejected"].values[1, j_spike] == 1
     assert np.isnan(q[1, j_gap])
     assert obs["qc_flag"].values[1, j_gap] & F["insufficient_coverage"]
-    assert obs["coverage"].values[1, j_gap] == pytest.approx((3 + 4.5 + 1.5) / 24)
+    assert obs["coverage"].values[1, j_gap] == pytest.approx((3 + 6) / 24)  # 00 h: [0, 3], 21 h: [18, 24]
     usable = prep_io.usable_discharge(obs).values
     assert np.isnan(usable[1, j_gap]) and usable[1, j_spike] == q[1, j_spike]
     ra = extraterrestrial_radiation(np.array([[51.0], [52.5]]), day_of_year(DAYS)[None, :])
@@ -397,7 +419,6 @@ BAD = {
     "non-numeric reading": ({"gauge_csv": _edit_line(G, 3, "1.500", "abc")}, "gauge.csv", "value", "line 3"),
     "bad timestamp": ({"gauge_csv": _edit_line(G, 4, "T06:00Z", "T25:00Z")}, "gauge.csv", "timestamp", "line 4"),
     "duplicated timestamp": ({"gauge_csv": _edit_line(G, 5, "T09:00Z", "T06:00Z")}, "gauge.csv", "timestamp", "line 5"),
-    "reversed timestamps": ({"gauge_csv": _swap(G, 5, 6)}, "gauge.csv", "timestamp", "line 6"),
     "unknown basin in gauge": ({"gauge_csv": _edit_line(G, 7, "alpha", "gamma")}, "gauge.csv", "basin", "line 7"),
     "empty gauge": ({"gauge_csv": ""}, "gauge.csv", None, None),
     "header-only gauge": ({"gauge_csv": "timestamp,basin,value\n"}, "gauge.csv", None, None),
@@ -470,7 +491,7 @@ def test_missing_raw_folder(tmp_path):
     assert "nowhere" in str(info.value)
 
 
-CLI_CASES = ("negative rain", "parameter out of range", "bad encoding", "reversed timestamps")
+CLI_CASES = ("negative rain", "parameter out of range", "bad encoding", "duplicated timestamp")
 
 
 def test_cli_bad_inputs(tmp_path):
@@ -519,11 +540,13 @@ def test_sample_basin_reproduces():
 def test_sample_basin_prepares_with_expected_faults(tmp_path):
     """The sample folder prepares; QC finds the faults README.md documents (four spikes per
     basin, the stuck sensor, two negative readings, three readings below h0, the six-week
-    outage) and the daily means follow the truth within the gauge error."""
+    outage) and the daily means follow the truth within the gauge error. One of the twelve
+    spikes is the last reading of its UTC day, which the spike test leaves untested (a day's
+    flags never wait for the next day), so eleven are found."""
     cfg = config(REPO / "sample_basin", tmp_path / "p")
     ds, stats = prep.build(cfg)
     flags = stats["flags"]
-    assert flags["spike"] == 12
+    assert flags["spike"] == 11
     assert flags["impossible_value"] == 2
     assert flags["below_rating_offset"] == 3
     assert flags["flat_line"] >= 10
@@ -539,3 +562,28 @@ def test_sample_basin_prepares_with_expected_faults(tmp_path):
                           usecols=2).reshape(3, -1)
     ratio = obs["discharge"].values / truth
     assert np.nanmedian(np.abs(ratio - 1)) < 0.06
+
+
+def test_appending_a_day_changes_no_earlier_day_and_repeats_are_counted(tmp_path):
+    """The daily chain's premise (common practice, no published source): preparing the
+    folder with one more day of records (appended unsorted, with one row sent twice) leaves
+    every earlier day's discharge, flags, coverage and counts bit for bit as they were, and
+    check reports the repeated row."""
+    days = DAYS[:-1]
+    w, g = weather_csv().splitlines(), gauge_csv().splitlines()
+    last = str(DAYS[-1])
+    w_head = [w[0]] + [r for r in w[1:] if not r.startswith(last)]
+    g_head = [g[0]] + [r for r in g[1:] if not r.startswith(last)]
+    g_tail = [r for r in g[1:] if r.startswith(last)]
+    raw = make_raw(tmp_path / "raw", weather_csv="\n".join(w_head) + "\n", gauge_csv="\n".join(g_head) + "\n")
+    cfg = config(raw, tmp_path / "p")
+    before = prep.prepare(cfg)["observations"]
+    with open(raw / "weather.csv", "a") as f:
+        f.write("\n".join(r for r in w[1:] if r.startswith(last)) + "\n")
+    with open(raw / "gauge.csv", "a") as f:
+        f.write("\n".join(g_tail[::-1] + g_tail[:1]) + "\n")
+    after = prep.prepare(cfg)["observations"]
+    assert after.sizes["time"] == days.size + 1
+    for v in ("discharge", "qc_flag", "coverage", "n_readings", "n_rejected"):
+        np.testing.assert_array_equal(after[v].values[:, :-1], before[v].values, err_msg=v)
+    assert "gauge rows repeating another exactly (dropped): 1" in prep.check(cfg)

@@ -153,12 +153,58 @@ def test_read_gauge_utc_and_sorting(tmp_path):
     assert r.line.tolist() == [2, 4, 3, 5]
 
 
-def test_gauge_reversal_across_offsets(tmp_path):
-    """Order is checked in UTC: 02:30+02:00 (00:30Z) after 01:00Z goes backwards."""
-    text = "timestamp,basin,value\n2015-03-01T01:00Z,alpha,1\n2015-03-01T02:30+02:00,alpha,2\n"
+def test_gauge_rows_in_any_order_are_sorted_in_utc(tmp_path):
+    """Rows arrive as the gauges send them (common practice, no published source): a late
+    reading appended at the end and an unsorted block are sorted by basin, then UTC time
+    (02:30+02:00 is 00:30Z, before 01:00Z)."""
+    text = ("timestamp,basin,value\n2015-03-01T01:00Z,alpha,1\n2015-03-01T02:30+02:00,alpha,2\n"
+            "2015-03-01T06:00Z,alpha,4\n2015-03-01T05:00Z,alpha,3\n2015-03-01T00:10Z,beta,9\n"
+            "2015-02-28T23:00Z,alpha,0\n")
+    r = raw.read_gauge(write(tmp_path, "gauge.csv", text), ["alpha", "beta"])
+    assert r.value.tolist() == [0, 2, 1, 3, 4, 9]
+    assert r.line.tolist() == [7, 3, 2, 5, 4, 6]
+    assert r.basin.tolist() == [0, 0, 0, 0, 0, 1]
+
+
+def test_gauge_exact_duplicates_dropped_conflicts_refused(tmp_path):
+    """A row sent twice (same basin, time and value, however written) is one reading; two
+    values at one time are an error naming both physical lines (common practice, no
+    published source)."""
+    text = ("timestamp,basin,value\n2015-03-01T01:00Z,alpha,1.5\n2015-03-01T02:00Z,alpha,2\n"
+            "2015-03-01T01:00:00+00:00,alpha,1.50\n")
+    r = raw.read_gauge(write(tmp_path, "gauge.csv", text), ["alpha"])
+    assert r.value.tolist() == [1.5, 2.0] and r.line.tolist() == [2, 3] and r.duplicates == 1
+    text = ("timestamp,basin,value\n2015-03-01T01:00Z,alpha,1.5\n\n2015-03-01T02:00Z,alpha,2\n"
+            "2015-03-01T01:00Z,alpha,1.6\n")
     with pytest.raises(InputError) as info:
         raw.read_gauge(write(tmp_path, "gauge.csv", text), ["alpha"])
-    assert "line 3" in str(info.value) and "backwards" in str(info.value)
+    msg = str(info.value)
+    assert "line 2" in msg and "line 5" in msg and "1.5" in msg and "1.6" in msg and "'timestamp'" in msg
+
+
+def test_gauge_sub_second_timestamps_are_distinct(tmp_path):
+    """Readings 0.5 s apart (…00:27:00.200Z and …00:27:00.700Z) are two readings, not a
+    duplicated timestamp; their times keep the milliseconds."""
+    text = "timestamp,basin,value\n2015-03-01T00:27:00.200Z,alpha,1\n2015-03-01T00:27:00.700Z,alpha,2\n"
+    r = raw.read_gauge(write(tmp_path, "gauge.csv", text), ["alpha"])
+    assert r.value.tolist() == [1.0, 2.0]
+    assert (r.time[1] - r.time[0]) == np.timedelta64(500, "ms")
+
+
+@pytest.mark.parametrize("name", ["weather.csv", "gauge.csv"])
+def test_blank_lines_do_not_shift_reported_lines(tmp_path, name):
+    """A bad value on physical line 6, after two blank lines, is reported at line 6."""
+    if name == "weather.csv":
+        text = ("date,basin,precipitation_mm,tmin_c,tmax_c\n2015-03-01,alpha,1,2,8\n\n"
+                "2015-03-02,alpha,1,2,8\n\n2015-03-03,alpha,x,2,8\n")
+        call = lambda p: raw.read_weather(p, ["alpha"])  # noqa: E731
+    else:
+        text = ("timestamp,basin,value\n2015-03-01T01:00Z,alpha,1\n\n2015-03-01T02:00Z,alpha,1\n"
+                "   \n2015-03-01T03:00Z,alpha,x\n")
+        call = lambda p: raw.read_gauge(p, ["alpha"])  # noqa: E731
+    with pytest.raises(InputError) as info:
+        call(write(tmp_path, name, text))
+    assert "line 6" in str(info.value), str(info.value)
 
 
 def test_inf_and_nan_values_are_errors(tmp_path):

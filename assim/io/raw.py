@@ -2,8 +2,8 @@
 
 Every reader checks its file completely and raises one :class:`assim.errors.InputError`
 naming the file, the key or column, and the first bad place (line number, basin, date).
-Line numbers count the header as line 1. The formats are documented in
-``sample_basin/README.md``.
+Line numbers are the physical lines of the file (the header is line 1; blank lines count).
+The formats are documented in ``sample_basin/README.md``.
 """
 
 from __future__ import annotations
@@ -92,9 +92,10 @@ class Readings:
     """Gauge readings, sorted by basin (in the order of ``basins``) then time.
 
     basin : (n,) int64, index into ``basins``
-    time : (n,) datetime64[s], UTC
+    time : (n,) datetime64[ms], UTC
     value : (n,) float64, stage in m or discharge in m3 s-1 as the basin's gauge says
     line : (n,) int64, line of each reading in gauge.csv
+    duplicates : number of rows dropped as exact repeats of another row
     """
 
     basins: tuple[str, ...]
@@ -102,6 +103,7 @@ class Readings:
     time: np.ndarray
     value: np.ndarray
     line: np.ndarray = field(repr=False)
+    duplicates: int = 0
 
 
 # ---------------------------------------------------------------------------------- text
@@ -329,7 +331,9 @@ def read_basins_yaml(path: str | Path, select: Sequence[str] = ()) -> list[Basin
 _BLANKS = re.compile(r"^[ \t]+|[ \t]+$|[ \t]*,[ \t]*", re.MULTILINE)
 
 
-def _read_csv(path: Path, required: Sequence[str]) -> pd.DataFrame:
+def _read_csv(path: Path, required: Sequence[str]) -> tuple[pd.DataFrame, np.ndarray]:
+    """The table (every cell a string) and the physical line of each row in the file
+    (blank lines are skipped but still counted)."""
     text = read_text(path)
     if "\r" in text:
         text = text.replace("\r\n", "\n").replace("\r", "\n")
@@ -352,7 +356,13 @@ def _read_csv(path: Path, required: Sequence[str]) -> pd.DataFrame:
     dup = df.columns[df.columns.duplicated()]
     if len(dup):
         raise InputError("column appears twice", file=path, variable=dup[0], place="line 1")
-    return df
+    lines = np.arange(len(df), dtype=np.int64) + 2
+    body = text.rstrip("\n")
+    if "\n\n" in body or body.startswith("\n"):  # blank lines: count them (rare, so only then)
+        filled = np.flatnonzero(np.array([bool(line) for line in body.split("\n")])) + 1
+        if filled.size == len(df) + 1:
+            lines = filled[1:]
+    return df, lines.astype(np.int64)
 
 
 def _first(mask: np.ndarray) -> int:
@@ -372,7 +382,7 @@ def _numeric(df: pd.DataFrame, col: str, path: Path, lines: np.ndarray, time_col
     return values
 
 
-def _basin_codes(df, path, basin_ids, *, allow_other=frozenset()) -> np.ndarray:
+def _basin_codes(df, path, basin_ids, lines, *, allow_other=frozenset()) -> np.ndarray:
     """Index of each row's basin in ``basin_ids`` (-1 for known but unselected basins)."""
     names = df["basin"].to_numpy(dtype=object)
     codes = pd.Index(list(basin_ids)).get_indexer(names).astype(np.int64)
@@ -382,7 +392,7 @@ def _basin_codes(df, path, basin_ids, *, allow_other=frozenset()) -> np.ndarray:
     if unknown.any():
         i = _first(unknown)
         raise InputError(f"unknown basin {names[i]!r} (not in {BASINS_FILE})", file=path,
-                         variable="basin", place=f"line {i + 2}")
+                         variable="basin", place=f"line {lines[i]}")
     return codes
 
 
@@ -407,6 +417,27 @@ def _check_order(codes, times, step, path, col, lines, basin_ids, *, regular: bo
                 what.format(col=col, prev=ln[i - 1]), file=path, variable=col,
                 place=f"line {ln[i]}, basin '{basin_ids[c[i]]}', {str(t[i])}",
             )
+
+
+def last_weather_day(path: str | Path) -> np.datetime64 | None:
+    """The last day of weather.csv, read from the end of the file only (every basin's rows
+    are in date order and every basin covers the same days, so the last row carries the
+    last day). None when the file is missing or its last row has no readable date; reading
+    the whole file (:func:`read_weather`) then reports what is wrong."""
+    try:
+        with open(path, "rb") as f:
+            f.seek(0, 2)
+            f.seek(max(0, f.tell() - 4096))
+            tail = f.read().decode("utf-8", errors="replace")
+    except OSError:
+        return None
+    rows = [line for line in tail.replace("\r", "\n").split("\n") if line.strip()]
+    if not rows:
+        return None
+    try:
+        return np.datetime64(rows[-1].split(",")[0].strip(), "D")
+    except ValueError:
+        return None
 
 
 def read_weather(path: str | Path, basin_ids: Sequence[str], *, need_pet: bool = False,
@@ -435,15 +466,14 @@ def read_weather(path: str | Path, basin_ids: Sequence[str], *, need_pet: bool =
     """
     path = Path(path)
     required = WEATHER_COLUMNS + (("pet_mm",) if need_pet else ())
-    df = _read_csv(path, required)
-    codes = _basin_codes(df, path, basin_ids, allow_other=frozenset(all_ids))
+    df, lines = _read_csv(path, required)
+    codes = _basin_codes(df, path, basin_ids, lines, allow_other=frozenset(all_ids))
     dates = pd.to_datetime(df["date"], format="%Y-%m-%d", errors="coerce").to_numpy("datetime64[D]")
     bad = np.isnat(dates)
     if bad.any():
         i = _first(bad)
         raise InputError(f"cannot read the date {df['date'].iat[i]!r} (expected YYYY-MM-DD)",
-                         file=path, variable="date", place=f"line {i + 2}")
-    lines = np.arange(len(df)) + 2
+                         file=path, variable="date", place=f"line {lines[i]}")
     keep = codes >= 0
     df, codes, dates, lines = df[keep].reset_index(drop=True), codes[keep], dates[keep], lines[keep]
     absent = np.bincount(codes, minlength=len(basin_ids)) == 0
@@ -500,7 +530,12 @@ def read_weather(path: str | Path, basin_ids: Sequence[str], *, need_pet: bool =
 def read_gauge(path: str | Path, basin_ids: Sequence[str], *, all_ids: Sequence[str] = ()) -> Readings:
     """Read and validate gauge.csv: ``timestamp, basin, value`` (ISO 8601, UTC).
 
-    Timestamps without an offset are taken as UTC; other offsets are converted to UTC.
+    Timestamps without an offset are taken as UTC; other offsets are converted to UTC;
+    fractions of a second are kept (to the millisecond). Rows may come in any order (a late
+    reading appended at the end of the file, blocks of basins interleaved): they are sorted
+    by basin, then time. A row repeating another exactly (same basin, time and value) is
+    dropped; two rows of one basin at the same time with different values are an error
+    naming both lines.
 
     Parameters
     ----------
@@ -516,23 +551,33 @@ def read_gauge(path: str | Path, basin_ids: Sequence[str], *, all_ids: Sequence[
     ------
     InputError
         for a missing column, an unparsable timestamp, an unknown basin, a missing or
-        non-numeric value, or duplicated or reversed timestamps within a basin.
+        non-numeric value, or conflicting readings at the same time.
     """
     path = Path(path)
-    df = _read_csv(path, GAUGE_COLUMNS)
-    codes = _basin_codes(df, path, basin_ids, allow_other=frozenset(all_ids))
+    df, lines = _read_csv(path, GAUGE_COLUMNS)
+    codes = _basin_codes(df, path, basin_ids, lines, allow_other=frozenset(all_ids))
     stamps = pd.to_datetime(df["timestamp"], utc=True, format="ISO8601", errors="coerce")
-    times = stamps.dt.tz_convert(None).to_numpy("datetime64[s]")
+    times = stamps.dt.tz_convert(None).to_numpy("datetime64[ms]")
     bad = np.isnat(times)
     if bad.any():
         i = _first(bad)
         raise InputError(f"cannot read the timestamp {df['timestamp'].iat[i]!r} (expected ISO 8601, "
                          "e.g. 2012-01-01T06:00:00Z)", file=path, variable="timestamp",
-                         place=f"line {i + 2}")
-    lines = np.arange(len(df)) + 2
+                         place=f"line {lines[i]}")
     keep = codes >= 0
     df, codes, times, lines = df[keep].reset_index(drop=True), codes[keep], times[keep], lines[keep]
     value = _numeric(df, "value", path, lines, "timestamp")
-    _check_order(codes, times, None, path, "timestamp", lines, basin_ids, regular=False)
-    order = np.argsort(codes, kind="stable")
-    return Readings(tuple(basin_ids), codes[order], times[order], value[order], lines[order])
+    order = np.lexsort((lines, times, codes))
+    codes, times, value, lines = codes[order], times[order], value[order], lines[order]
+    same = np.r_[False, (codes[1:] == codes[:-1]) & (times[1:] == times[:-1])]
+    conflict = same & np.r_[False, value[1:] != value[:-1]]
+    if conflict.any():
+        i = _first(conflict)
+        raise InputError(
+            f"two readings at the same time with different values: {value[i - 1]:g} on line "
+            f"{lines[i - 1]} and {value[i]:g} on line {lines[i]}; keep the right one",
+            file=path, variable="timestamp",
+            place=f"line {lines[i]}, basin '{basin_ids[codes[i]]}', {np.datetime_as_string(times[i], unit='auto')}")
+    keep = ~same  # an exact repeat of the row before it
+    return Readings(tuple(basin_ids), codes[keep], times[keep], value[keep], lines[keep],
+                    duplicates=int(same.sum()))

@@ -126,9 +126,9 @@ def read_restart(path) -> Restart:
         )
 
 
-def read_restart_header(path) -> tuple[int, dict[str, str]]:
-    """The valid day and the identity attributes of a restart, without reading its states
-    (for choosing among many restarts).
+def read_restart_header(path) -> tuple[int, dict[str, str], tuple[str, ...]]:
+    """The valid day, the identity attributes and the basin ids of a restart, without
+    reading its states (for choosing among many restarts).
 
     Raises
     ------
@@ -139,7 +139,9 @@ def read_restart_header(path) -> tuple[int, dict[str, str]]:
     with _open(path) as ds:
         if "valid_time" not in ds.variables:
             raise RestartError("variable missing from the restart", file=path, variable="valid_time")
-        return int(day_numbers([ds["valid_time"].values])[0]), {k: str(v) for k, v in ds.attrs.items()}
+        basins = tuple(str(x) for x in ds["basin"].values) if "basin" in ds.variables else ()
+        return (int(day_numbers([ds["valid_time"].values])[0]), {k: str(v) for k, v in ds.attrs.items()},
+                basins)
 
 
 def _open(path: Path) -> xr.Dataset:

@@ -2,7 +2,7 @@
 # CLI uses (assim.config.validate), so the workflow and a user at the shell can never
 # disagree, and define the helpers the rules share.
 
-import datetime as _dt
+import os
 import json
 import shlex
 import sys
@@ -11,6 +11,8 @@ import yaml
 
 from assim import paths
 from assim.config import validate
+from assim.io import raw as raw_io
+from assim.pipeline import latest_issue_date
 from assim.errors import ConfigError
 from assim.io.common import load_yaml
 
@@ -79,13 +81,13 @@ def settings(*sections):
 
 
 def issue_date():
-    """The workflow's forecast date: config issue_date, else the day after period.end."""
-    if CFG["issue_date"]:
+    """The workflow's forecast date: config issue_date, else the latest day the inputs
+    allow (the last day of weather.csv, read from the file's end; for forecast.forcing
+    observed, minus the leads), the same rule as `assim forecast` without --issue-date."""
+    if CFG["issue_date"] and str(CFG["issue_date"]) != "latest":
         return str(CFG["issue_date"])
-    if CFG["period"]["end"]:
-        end = _dt.date.fromisoformat(str(CFG["period"]["end"]))
-        return (end + _dt.timedelta(days=1)).isoformat()
-    return None
+    last = raw_io.last_weather_day(f"{CFG['data']['raw']}/{raw_io.WEATHER_FILE}")
+    return latest_issue_date(CFG, last) if last is not None else None
 
 
 def all_products():

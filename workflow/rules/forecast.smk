@@ -1,15 +1,21 @@
-# The operational forecast of one issue date. It starts from the latest restart before that
-# date (the assimilation run's restart.nc, or an earlier day's forecast restart), takes in
-# the readings since then and writes the new restart beside the forecast. The restart is
-# marked ancient: a day's new gauge records (which refresh the prepared layer) must not
-# rerun the whole assimilation period, only the forecast.
+# The operational forecast of one issue date. It starts from the newest restart that fits
+# (the assimilation run's restart.nc, or an earlier day's forecast restart), takes in the
+# readings since then and writes the new restart beside the forecast. restart.nc is an
+# input only while it does not exist (a first run makes it): a day's new records refresh
+# the prepared layer, and that must rerun only prep and the forecast, never the long
+# assimilation run, the hindcasts or the study's figures.
+
+
+def _first_restart(wildcards):
+    restart = f"{RESULTS}/restart.nc"
+    return [] if os.path.exists(restart) else [restart]
 
 
 rule forecast:
     """Ensemble forecast and flood-threshold exceedance probabilities for one issue date."""
     input:
         PREPARED,
-        ancient(f"{RESULTS}/restart.nc"),
+        _first_restart,
     output:
         f"{RESULTS}/forecasts/forecast-{{date}}.nc",
         f"{RESULTS}/forecasts/restart-{{date}}.nc",
