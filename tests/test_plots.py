@@ -16,6 +16,12 @@ from assim.errors import InputError
 from assim.io.products import open_product
 
 
+def _empty_file(fig, path):
+    """A stand-in for drawing: an empty file where the figure would go."""
+    path.write_bytes(b"")
+    return path
+
+
 @pytest.fixture(scope="module")
 def study(tmp_path_factory):
     cfg, truth = make_study(tmp_path_factory.mktemp("plots"), days=120, members=8, leads=3)
@@ -64,7 +70,7 @@ def test_plot_results_restricts_basins_and_issue_date(study, monkeypatch):
     """Common practice, no published source: outputs.figures selects basins; an issue date
     without a forecast file is an InputError naming the file."""
     cfg, truth = study
-    monkeypatch.setattr(plots, "_save", lambda fig, path: path)  # rendering is tested above
+    monkeypatch.setattr(plots, "_save", _empty_file)  # rendering is tested above
     cfg = dict(cfg, outputs=dict(cfg["outputs"], figures=["birch"]))
     written = plots.plot_results(cfg, issue_date=truth["issue_date"])
     assert written and all("__birch" in p.name for p in written)
@@ -98,11 +104,54 @@ def test_nothing_to_draw_is_an_input_error(tmp_path):
 
 
 def test_figure_names_round_trip():
-    """Common practice, no published source: the report groups figures by parsing names."""
+    """Common practice, no published source: the report groups figures by parsing names; a
+    plain id is kept as it is, anything else gets a readable slug and a short hash."""
     name = plots.figure_name("reliability", "up/stream 1", "minor")
-    assert name == "reliability__up_stream_1__minor.png"
-    assert plots.parse_figure_name(name) == ("reliability", "up_stream_1", "minor")
+    assert name.startswith("reliability__up-stream-1~") and name.endswith("__minor.png")
+    assert plots.parse_figure_name(name) == ("reliability", plots.name_part("up/stream 1"), "minor")
+    assert plots.figure_name("skill", "alder_creek.2") == "skill__alder_creek.2.png"
     assert plots.parse_figure_name("notes.png") is None
+
+
+def test_figure_names_unique_per_basin_and_threshold():
+    """Issue cases (common practice, no published source): ids that the old name rule
+    folded together (a/b and a_b; a_b and a__b), a non-ASCII id, thresholds differing only
+    in punctuation: every one has its own file, and parsing gives back each id's part."""
+    ids = ["a/b", "a_b", "a__b", "a b", "Ålvik elv", "alvik-elv", ".hidden", "x" * 300]
+    names = [plots.figure_name("hydrograph", b) for b in ids]
+    assert len(set(names)) == len(ids)
+    for b, n in zip(ids, names, strict=True):
+        assert plots.parse_figure_name(n)[1] == plots.name_part(b)
+        assert "/" not in n and not n.startswith(".") and len(n) < 120 and n.isascii()
+    assert plots.figure_name("hydrograph", "Ålvik elv").startswith("hydrograph__Alvik-elv~")
+    thr = [plots.figure_name("reliability", "a", t) for t in ("minor!", "minor?", "minor")]
+    assert len(set(thr)) == 3
+
+
+def test_plot_results_keeps_basins_apart(tmp_path, monkeypatch):
+    """Issue case (common practice, no published source): basins 'a/b' and 'a_b' each get
+    their own figures, and the report shows each basin's in its own section."""
+    import xarray as xr
+
+    import assim.report as report
+
+    cfg, _ = make_study(tmp_path, days=60, members=4, leads=2, forecast=False)
+    ren = {"alder": "a/b", "birch": "a_b"}
+    for f in (paths.run_product(cfg, "openloop"), paths.run_product(cfg, "assimilate"),
+              paths.hindcast(cfg), paths.prepared(cfg, "observations.nc"), paths.prepared(cfg, "basins.nc")):
+        ds = xr.load_dataset(f)
+        key = "basin_id" if "basin_id" in ds else "basin"
+        ds[key] = (ds[key].dims, [ren.get(str(b), str(b)) for b in ds[key].values], ds[key].attrs)
+        ds.to_netcdf(f)
+    v.verify_results(cfg)
+    monkeypatch.setattr(plots, "_save", _empty_file)
+    written = plots.plot_results(cfg)
+    per = {b: [p for p in written if plots.parse_figure_name(p.name)[1] == plots.name_part(b)] for b in ren.values()}
+    # four figures each, and a reliability diagram per threshold (a/b has two, a_b one)
+    assert (len(per["a/b"]), len(per["a_b"]), len(written)) == (6, 5, 11)
+    sections = report.render_report(cfg).split("<section ")[1:]
+    assert len(sections) == 2
+    assert [s.count("<img") for s in sections] == [len(per["a/b"]), len(per["a_b"])]
 
 
 def test_hydrograph_from_quantile_products(study, tmp_path, monkeypatch):
