@@ -133,7 +133,7 @@ def test_plot_results_keeps_basins_apart(tmp_path, monkeypatch):
     their own figures, and the report shows each basin's in its own section."""
     import xarray as xr
 
-    import assim.report as report
+    import assim.reporting as report
 
     cfg, _ = make_study(tmp_path, days=60, members=4, leads=2, forecast=False)
     ren = {"alder": "a/b", "birch": "a_b"}
