@@ -3,6 +3,8 @@ units, and is a PNG written without a display."""
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pytest
 from matplotlib.image import imread
@@ -171,3 +173,142 @@ def test_hydrograph_from_quantile_products(study, tmp_path, monkeypatch):
     shown = top.lines[0].get_ydata()
     np.testing.assert_allclose(shown, q.sel(basin="alder", quantile=0.5).values[-len(shown):])
     np.testing.assert_allclose(shown, bottom.lines[0].get_ydata())  # median of the members
+
+
+def test_plot_without_the_forecast_writes_nothing(tmp_path, monkeypatch):
+    """Issue case (common practice, no published source): `--issue-date D` without a
+    forecast for D is refused before anything is drawn (no figure, no folder), and a drawing
+    that fails part-way leaves the earlier figures as they were and adds none."""
+    cfg, truth = make_study(tmp_path, days=60, members=4, leads=2)
+    v.verify_results(cfg)
+    with pytest.raises(InputError, match="forecast-2000-01-01.nc"):
+        plots.plot_results(cfg, issue_date="2000-01-01")
+    assert not paths.figures(cfg).exists()
+    monkeypatch.setattr(plots, "_save", _empty_file)
+    first = plots.plot_results(cfg)
+    before = {p.name: p.stat().st_mtime_ns for p in paths.figures(cfg).iterdir()}
+    assert set(before) == {p.name for p in first}
+
+    def fail(*args, **kwargs):
+        raise InputError("drawing failed", file="x")
+
+    monkeypatch.setattr(plots, "plot_reliability", fail)  # after hydrograph and skill figures
+    with pytest.raises(InputError, match="drawing failed"):
+        plots.plot_results(cfg)
+    assert {p.name: p.stat().st_mtime_ns for p in paths.figures(cfg).iterdir()} == before
+
+
+_KILLED_DRAWING = """
+import os, signal, sys
+import assim.plots as plots
+from assim.config import load_config
+real = plots.atomic_path
+calls = []
+
+class Killing:
+    def __init__(self, path):
+        self.cm = real(path)
+    def __enter__(self):
+        return self.cm.__enter__()
+    def __exit__(self, *exc):
+        calls.append(1)
+        if len(calls) == 3:  # the third figure is written to its temporary file, not yet renamed
+            os.kill(os.getpid(), signal.SIGKILL)
+        return self.cm.__exit__(*exc)
+
+plots.atomic_path = Killing
+plots.plot_results(load_config(sys.argv[1]))
+"""
+
+
+def test_killed_drawing_leaves_no_temporaries_after_a_rerun(tmp_path):
+    """Issue case (common practice, no published source): SIGKILL while `assim plot`
+    writes a figure, then a rerun: no `.*.part` file or staging folder remains, and the
+    rerun draws every figure."""
+    import signal
+    import subprocess
+    import sys
+
+    import yaml
+
+    cfg, _ = make_study(tmp_path, days=60, members=4, leads=2, forecast=False)
+    v.verify_results(cfg)
+    conf = tmp_path / "config.yaml"
+    conf.write_text(yaml.safe_dump(dict(cfg)))
+    out = subprocess.run([sys.executable, "-c", _KILLED_DRAWING, str(conf)], capture_output=True, text=True,
+                         timeout=300)
+    assert out.returncode == -signal.SIGKILL, out.stderr
+    left = [p.name for p in paths.figures(cfg).rglob(".*")]
+    assert any(n.endswith(".part") for n in left)  # the kill left a temporary behind
+    with pytest.warns(Warning, match="stale lock"):
+        written = plots.plot_results(cfg)
+    assert not [p for p in paths.figures(cfg).rglob("*") if p.name.startswith(".")]
+    assert len(written) == 11
+
+
+def test_select_basins_raised_then_worst_skill():
+    """Common practice, no published source: with more basins than plots.max_basins, the
+    raised ones come first, then the lowest CRPSS of the assimilation at the first hindcast
+    lead; unscored basins only fill what is left; the ids' order is kept."""
+    import xarray as xr
+
+    ids = [f"b{i:02d}" for i in range(30)]
+    crpss = np.linspace(0.9, 0.0, 30)  # b29 worst
+    crpss[3] = np.nan
+    skill = xr.Dataset(
+        {"skill": (("basin", "experiment", "lead", "metric"), np.broadcast_to(crpss[:, None, None, None],
+                                                                            (30, 2, 2, 1)).copy()),
+         "n": (("basin", "experiment", "lead", "metric"), np.where(np.isnan(crpss), 0, 50)[:, None, None, None]
+               * np.ones((30, 2, 2, 1), int))},
+        coords={"basin": ids, "experiment": ["openloop", "assimilation"], "lead": [0, 1], "metric": ["crpss"]})
+    got = plots.select_basins(ids, max_basins=5, raised=["b05", "b00"], skill=skill)
+    assert got == ["b00", "b05", "b27", "b28", "b29"]
+    assert plots.select_basins(ids, max_basins=0, raised=[], skill=skill) == ids
+    assert plots.select_basins(ids[:3], max_basins=5) == ids[:3]
+
+
+def test_plot_results_bounded_selection_in_processes(study, tmp_path):
+    """Common practice, no published source: plots.max_basins = 1 draws one basin's figures
+    only; drawing in two processes gives the same files, byte for byte, as in one."""
+    cfg, _ = study
+    one = type(cfg)(dict(cfg, results=str(tmp_path / "one"), plots={"max_basins": 1, "workers": 1}))
+    two = type(cfg)(dict(cfg, results=str(tmp_path / "two"), plots={"max_basins": 0, "workers": 2}))
+    import shutil
+
+    for c in (one, two):
+        shutil.copytree(paths.results(cfg), paths.results(c), ignore=shutil.ignore_patterns("figures"))
+    a = plots.plot_results(one)
+    assert len({plots.parse_figure_name(p.name)[1] for p in a}) == 1
+    b = plots.plot_results(two)
+    assert len({plots.parse_figure_name(p.name)[1] for p in b}) == 2
+    for p in a:
+        assert p.read_bytes() == (paths.figures(two) / p.name).read_bytes()
+
+
+def test_reliability_marks_few_events(study, monkeypatch, tmp_path):
+    """Common practice, no published source: a reliability diagram built from fewer than
+    FEW_EVENTS observed events says so on the figure, with the number of events."""
+    cfg, _ = study
+    from assim.io.skill import read_skill
+
+    skill = read_skill(paths.skill(cfg, "nc")).load()
+    drawn = []
+    monkeypatch.setattr(plots, "_save", lambda fig, path: drawn.append(fig) or path)
+    n = skill["reliability_count"].sel(basin="alder", threshold="minor")
+    o = skill["reliability_observed_frequency"].sel(basin="alder", threshold="minor")
+    for few in (True, False):
+        s = skill.copy(deep=True)
+        sel = {"basin": "alder", "threshold": "minor"}
+        s["reliability_count"].loc[sel] = xr_where(n > 0, 40, 0)
+        s["reliability_observed_frequency"].loc[sel] = xr_where(n > 0, 0.01 if few else 0.5, o)
+        plots.plot_reliability(s, "alder", "minor", tmp_path / "r.png")
+        texts = " ".join(t.get_text() for ax in drawn[-1].axes for t in ax.texts)
+        assert ("poorly determined" in texts) == few
+        if few:
+            assert re.search(r"only \d+ observed event", texts)
+
+
+def xr_where(cond, a, b):
+    import xarray as xr
+
+    return xr.where(cond, a, b)
