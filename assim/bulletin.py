@@ -217,7 +217,9 @@ def _age(day, issue: pd.Timestamp) -> str:
     if d is None:
         return "none on record"
     n = int((issue - d) / pd.Timedelta(days=1))
-    return f"{d:%Y-%m-%d} ({n} day{'s' if n != 1 else ''} before the issue)" if n >= 0 else f"{d:%Y-%m-%d}"
+    if n < 0:
+        return f"{d:%Y-%m-%d} ({-n} day{'s' if n != -1 else ''} after the issue)"
+    return f"{d:%Y-%m-%d} ({n} day{'s' if n != 1 else ''} before the issue)"
 
 
 def render_bulletin(forecast: xr.Dataset, *, alerts: Sequence[Mapping], levels: Mapping[str, float],

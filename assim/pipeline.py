@@ -614,10 +614,11 @@ def _write_bulletin(cfg: Config, forecast: xr.Dataset, iso: str, issue_day: int)
     obs = prep_io.read_observations(paths.prepared(cfg, prep_io.OBSERVATIONS_FILE))
     ids = [str(b) for b in obs["basin"].values]
     observed = prep_io.usable_discharge(obs).assign_coords(basin=ids)
-    had = obs["n_readings"].values > 0
+    had = obs["n_readings"].values > 0  # readings this forecast could take in: up to the issue day
+    had &= (day_numbers(obs["time"].values) <= issue_day)[None, :]
     last = np.where(had.any(axis=1), had.shape[1] - 1 - np.argmax(had[:, ::-1], axis=1), -1)
     times = obs["time"].values
-    latest = {b: (times[j] if j >= 0 else None) for b, j in zip(ids, last, strict=True)}
+    latest = {b: (times[j] if j >= 0 and had[i, j] else None) for i, (b, j) in enumerate(zip(ids, last, strict=True))}
     forcing_days = prep_io.read_forcing(paths.prepared(cfg, prep_io.FORCING_FILE))["time"].values
     b_ds = prep_io.read_basins(paths.prepared(cfg, "basins.nc"))
     names = {str(k): str(n) for k, n in zip(b_ds["basin"].values, b_ds["name"].values, strict=True)}

@@ -367,6 +367,13 @@ def test_forecast_writes_its_bulletin_and_counts_weather_traces(operational, cap
     assert "note: Only 2 distinct past years" in out and "bulletin written:" in out
     page = paths.bulletin(cfg, "2003-06-22").read_text()
     assert "Only 2 distinct past years" in page and "restart.nc" in page
+    # each gauge's latest reading is the latest the forecast could use (none after the issue)
+    import re
+
+    ages = re.findall(r"(\d{4}-\d{2}-\d{2}) \((\d+) days? (before|after) the issue\)", page)
+    assert ("2003-12-31", "192", "after") in ages  # the weather on record
+    gauges = [a for a in ages if a[0] != "2003-12-31"]
+    assert len(gauges) == 2 and all(a[2] == "before" and a[0] <= "2003-06-22" for a in gauges)
     assert len(list(paths.bulletin_figures(cfg, "2003-06-22").glob("*.png"))) == 2
     doc = json.loads(paths.alerts(cfg, "2003-06-22", "json").read_text())
     assert doc["issue_date"] == "2003-06-22" and doc["raised"] == len(doc["alerts"])
