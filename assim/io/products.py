@@ -460,7 +460,8 @@ def write_forecast(
         ds["discharge_analysis"] = (("basin", "time", "member"), np.asarray(a_values, dtype=np.float64),
                                     {**DISCHARGE_ATTRS, "long_name": "assimilated discharge before the issue "
                                      "(ensemble after each day's update)"})
-        ds = ds.assign_coords(time=("time", dates(a_days), {"long_name": "day assimilated before the issue"}))
+        ds = ds.assign_coords(time=("time", dates(a_days), {"standard_name": "time", "axis": "T",
+                                                            "long_name": "day assimilated before the issue"}))
     ds.attrs.pop("featureType", None)  # one issue: no time series (CF-1.8 section 9)
     enc_t = {"units": TIME_UNITS, "calendar": CALENDAR, "dtype": "i4"}
     encoding = {"valid_time": enc_t, "issue_time": enc_t, "lead": {"dtype": "i4"}, "member": {"dtype": "i4"},
@@ -472,8 +473,11 @@ def write_forecast(
     if "time" in ds.coords:
         encoding["time"] = enc_t
     encoding.update({LABELS[d]: {"dtype": str} for d in ("basin", "threshold")})
+    on_disk = labels_to_file(ds)
+    if "discharge_analysis" in on_disk:  # time last on disk (CF-1.8 section 2.4), as in run products
+        on_disk["discharge_analysis"] = on_disk["discharge_analysis"].transpose("basin", "member", "time")
     with atomic_path(path) as tmp:
-        labels_to_file(ds).to_netcdf(tmp, encoding=encoding, format="NETCDF4")
+        on_disk.to_netcdf(tmp, encoding=encoding, format="NETCDF4")
     ds.attrs["product_path"] = str(path)
     return ds
 
