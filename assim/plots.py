@@ -623,6 +623,9 @@ def plot_results(cfg: Mapping, issue_date: str | None = None) -> list[Path]:
         raised = [] if fc is None else [a["basin"] for a in raised_alerts(fc, alert_levels(cfg, fc))]
         basins = select_basins(ids, max_basins=int(cfg.get("plots", {}).get("max_basins", 0)), raised=raised,
                                skill=skill)
+    if not basins:
+        raise InputError("no basin of outputs.figures is in the products", file=paths.results(cfg),
+                         variable="outputs.figures", place=", ".join(wanted))
     history = int(cfg.get("forecast", {}).get("history_days", 30))
     tasks = [(b, {"names": {b: names[b]} if names and b in names else None,
                   "observed": None if observed is None or b not in observed["basin"].values
