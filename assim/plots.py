@@ -568,6 +568,8 @@ def plot_results(cfg: Mapping, issue_date: str | None = None) -> list[Path]:
     figures are drawn (by ``plots.workers`` processes) into a staging folder and moved into
     place only when every one was drawn, so a failed or killed drawing leaves the earlier
     figures as they were. Temporaries of a killed drawing are removed by the next one.
+    Worker processes are started fresh ("spawn"): a script calling this with
+    ``plots.workers`` other than 1 needs the usual ``if __name__ == "__main__":`` guard.
 
     Returns
     -------
