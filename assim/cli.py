@@ -124,8 +124,11 @@ def _command(cfg, args: argparse.Namespace) -> str:
         return f"hindcast written: {ds.attrs.get('product_path', cfg['results'])}"
     if cmd == "forecast":
         ds = pipeline.forecast(cfg, args.issue_date)
+        note = ds.attrs.get("forcing_note", "none")
         return (f"forecast written: {ds.attrs.get('product_path', cfg['results'])}\n"
-                f"analysis {ds.attrs.get('analysis', 'unknown')}")
+                f"bulletin written: {ds.attrs.get('bulletin', 'none')}\n"
+                f"analysis {ds.attrs.get('analysis', 'unknown')}"
+                + (f"\nnote: {note}" if note != "none" else ""))
     if cmd == "verify":
         ds = pipeline.verify(cfg)
         return f"skill written: {ds.attrs.get('product_path', cfg['results'])}"

@@ -46,6 +46,20 @@ def forecast_restart(cfg: Mapping, issue_date: str) -> Path:
     return forecasts(cfg) / f"restart-{issue_date}.nc"
 
 
+def bulletin(cfg: Mapping, issue_date: str) -> Path:
+    """The bulletin page of one issue; its PNGs are in :func:`bulletin_figures`."""
+    return forecasts(cfg) / f"bulletin-{issue_date}.html"
+
+
+def bulletin_figures(cfg: Mapping, issue_date: str) -> Path:
+    return forecasts(cfg) / f"bulletin-{issue_date}"
+
+
+def alerts(cfg: Mapping, issue_date: str, suffix: str = "json") -> Path:
+    """The raised alerts of one issue (``json`` or ``csv``)."""
+    return forecasts(cfg) / f"alerts-{issue_date}.{suffix}"
+
+
 def skill(cfg: Mapping, suffix: str = "nc") -> Path:
     return results(cfg) / f"skill.{suffix}"
 

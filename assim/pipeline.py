@@ -10,6 +10,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
 import xarray as xr
 
 from assim.config import Config
@@ -716,7 +717,8 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
     issue_day = _day(issue_date, "--issue-date")
     iso = conventions.iso(issue_day)
     lock = paths.forecasts(cfg) / f".forecast-{iso}.lock"
-    with forecast_lock(lock, [paths.forecast(cfg, iso), paths.forecast_restart(cfg, iso)]), _reading_layer(cfg):
+    with forecast_lock(lock, [paths.forecast(cfg, iso), paths.forecast_restart(cfg, iso), paths.bulletin(cfg, iso),
+                              paths.alerts(cfg, iso, "json"), paths.alerts(cfg, iso, "csv")]), _reading_layer(cfg):
         # the identity needs only the basins' areas and parameters: one day of inputs
         model, probe, _ = _inputs(cfg, iso, iso)
         identity = _identity(cfg, model, probe, "assimilate")
@@ -736,7 +738,8 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
                 raise ConfigError("forecast.forcing is file but forecast.forcing_file is empty",
                                   file=cfg.source, variable="forecast.forcing_file")
             file_forcing = read_forcing_forecast(fc["forcing_file"], inputs.basin_ids, issue_day, leads)
-        summary = engine.run(model, inputs, settings, None, state=state, until_day=issue_day)
+        assimilated = _Assimilated()  # the ensemble of the days taken in, for the bulletin
+        summary = engine.run(model, inputs, settings, assimilated, state=state, until_day=issue_day)
         _show_warnings(engine.summarise_warnings(summary.warnings))
         n_used = int(summary.n_used.sum())
         n_days = issue_day - valid
@@ -755,6 +758,7 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
                 forcing = fc["forcing_file"] if kind == "file" else Path(cfg["data"]["prepared"]) / "forcing.nc"
                 raise RunError(exc.message, file=forcing, variable=exc.variable, place=exc.place) from None
             raise
+        traces = _forcing_traces(inputs, issue_day, leads, settings.members, kind, file_forcing)
         thr = basins["thresholds"].values
         names = [str(t) for t in basins["threshold"].values] if "threshold" in basins.coords else []
         product, restart_file = paths.forecast(cfg, iso), paths.forecast_restart(cfg, iso)
@@ -764,8 +768,9 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
                 product, basins=inputs.basin_ids, issue_day=issue_day, discharge=q,
                 quantiles=fc["quantiles"], thresholds={n: thr[:, j] for j, n in enumerate(names)},
                 analysis=analysis, float32=settings.float32,
+                assimilated=assimilated.result(inputs.days, valid),
                 attrs={**_attrs(cfg, model, settings), "forcing": kind, "restart": str(restart_path),
-                       "restart_valid_time": conventions.iso(valid),
+                       "restart_valid_time": conventions.iso(valid), **traces,
                        **({"warnings": " | ".join(notes + [str(w) for w in summary.warnings])}
                           if notes or summary.warnings else {})},
                 commit=files,
@@ -773,4 +778,126 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
             write_restart(restart_file, _to_restart(summary.state, model, inputs,
                                                     {**identity, **_readings_identity(cfg, issue_day)}),
                           commit=files)
+        ds.attrs["bulletin"] = str(_write_bulletin(cfg, ds, iso, issue_day))
     return ds
+
+
+class _Assimilated:
+    """Sink of the forecast's assimilation: keeps the ensemble after each day's update."""
+
+    def __init__(self):
+        self.blocks: list[tuple[int, object]] = []
+
+    def write_block(self, start, arrays):
+        if "discharge_analysis" in arrays:
+            self.blocks.append((int(start), arrays["discharge_analysis"].copy()))
+
+    def result(self, days, valid_day: int):
+        """(days, (basin, day, member) m3 s-1) of the days after ``valid_day``, or None."""
+        import numpy as np
+
+        if not self.blocks:
+            return None
+        values = np.concatenate([v for _, v in sorted(self.blocks, key=lambda b: b[0])], axis=1)
+        first = int(np.searchsorted(days, valid_day, side="right"))
+        return np.asarray(days[first:first + values.shape[1]]), values
+
+
+def _forcing_traces(inputs, issue_day: int, leads: int, members: int, kind: str, file_forcing) -> dict[str, str]:
+    """How many distinct weather traces drive the members, and a plain note when fewer
+    than the members (climatology forcing with fewer past years, a forcing file with fewer
+    members): probabilities then move in steps of 1/traces, not 1/members."""
+    import numpy as np
+
+    from assim import engine
+
+    if kind == "climatology":
+        idx = engine.climatology_index(inputs.climatology.days, np.array([issue_day]), leads, np.arange(members))
+        traces, what = len(np.unique(idx[0, 0])), "past years of weather (climatology forcing)"
+    elif kind == "file":
+        traces, what = int(file_forcing["precipitation"].shape[-1]), "members in the forcing file"
+    else:
+        return {"forcing_traces": str(members), "forcing_note": "none"}
+    note = "none"
+    if traces < members:
+        note = (f"Only {traces} distinct {what} for {members} members: each trace is shared by several "
+                f"members, so exceedance probabilities move in steps of about 1/{traces}, not 1/{members}, "
+                "and rest on a small sample.")
+    return {"forcing_traces": str(traces), "forcing_note": note}
+
+
+def _write_bulletin(cfg: Config, forecast: xr.Dataset, iso: str, issue_day: int) -> Path:
+    """The bulletin of one issue (:mod:`assim.bulletin`), from the forecast just written and
+    the prepared layer: the assimilated ensemble of the last ``forecast.history_days`` days
+    (analysis.nc and the forecasts of those days), the observations, the latest reading
+    of each gauge and the last day of the weather."""
+    import numpy as np
+
+    from assim import bulletin, paths
+    from assim.io import prepared as prep_io
+    from assim.io.products import dates, day_numbers
+
+    history = int(cfg["forecast"]["history_days"])
+    obs = prep_io.read_observations(paths.prepared(cfg, prep_io.OBSERVATIONS_FILE))
+    ids = [str(b) for b in obs["basin"].values]
+    observed = prep_io.usable_discharge(obs).assign_coords(basin=ids)
+    had = obs["n_readings"].values > 0  # readings this forecast could take in: up to the issue day
+    had &= (day_numbers(obs["time"].values) <= issue_day)[None, :]
+    last = np.where(had.any(axis=1), had.shape[1] - 1 - np.argmax(had[:, ::-1], axis=1), -1)
+    times = obs["time"].values
+    latest = {b: (times[j] if j >= 0 and had[i, j] else None) for i, (b, j) in enumerate(zip(ids, last, strict=True))}
+    forcing_days = prep_io.read_forcing(paths.prepared(cfg, prep_io.FORCING_FILE))["time"].values
+    b_ds = prep_io.read_basins(paths.prepared(cfg, "basins.nc"))
+    names = {str(k): str(n) for k, n in zip(b_ds["basin"].values, b_ds["name"].values, strict=True)}
+    first = str(dates([issue_day - max(history, 1) + 1])[0].date())
+    recent = _recent_ensemble(cfg, forecast, first, iso, day_numbers)
+    section = cfg["bulletin"]
+    bulletin.write_bulletin(
+        forecast, html_path=paths.bulletin(cfg, iso), figure_folder=paths.bulletin_figures(cfg, iso),
+        alerts_json=paths.alerts(cfg, iso, "json"), alerts_csv=paths.alerts(cfg, iso, "csv"),
+        levels=bulletin.alert_levels(cfg, forecast), observed=observed, recent=recent, latest_reading=latest,
+        weather_through=forcing_days[-1] if len(forcing_days) else None, names=names, history_days=history,
+        max_figures=int(section["max_figures"]))
+    return paths.bulletin(cfg, iso)
+
+
+def _recent_ensemble(cfg: Config, forecast: xr.Dataset, first: str, iso: str, day_numbers):
+    """The ensemble after each day's update from ``first`` to ``iso``: analysis.nc, then the
+    days each forecast of the window assimilated (later files win), this forecast last.
+    (basin, time, member) m3 s-1, or None when no member ensemble covers the window."""
+    import re
+
+    from assim import paths
+    from assim.errors import InputError
+    from assim.io.products import open_product
+
+    parts = []
+    p = paths.run_product(cfg, "assimilate")
+    if p.is_file():
+        try:
+            with open_product(p, ("basin", "time")) as ds:
+                if "discharge" in ds and "member" in ds["discharge"].dims:  # analysis.nc: the analysis
+                    parts.append(ds["discharge"].rename("discharge_analysis").sel(time=slice(first, iso)).load())
+        except InputError:
+            pass  # a damaged earlier product only shortens the history drawn
+    folder = paths.forecasts(cfg)
+    for f in sorted(folder.glob("forecast-????-??-??.nc")):
+        m = re.fullmatch(r"forecast-(\d{4}-\d{2}-\d{2})\.nc", f.name)
+        if not m or not (first <= m.group(1) < iso):
+            continue
+        try:
+            with open_product(f) as ds:
+                if "discharge_analysis" in ds:
+                    parts.append(ds["discharge_analysis"].load())
+        except InputError:
+            pass
+    if "discharge_analysis" in forecast:
+        parts.append(forecast["discharge_analysis"])
+    parts = [x.reset_coords(drop=True).transpose("basin", "time", "member")
+             .assign_coords(basin=[str(b) for b in x["basin"].values])
+             for x in parts if x.sizes.get("time", 0)]
+    if not parts:
+        return None
+    joined = xr.concat(parts, dim="time", join="outer")
+    _, keep = np.unique(joined["time"].values[::-1], return_index=True)  # the last part of each day wins
+    return joined.isel(time=len(joined["time"]) - 1 - keep).sortby("time").sel(time=slice(first, iso))

@@ -18,8 +18,11 @@ them by basin:
 
 from __future__ import annotations
 
+import hashlib
+import os
 import re
 import textwrap
+import unicodedata
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 
@@ -42,27 +45,75 @@ EXPERIMENT_STYLE = {
 }
 Q_LABEL = "Discharge (m$^3$ s$^{-1}$)"
 HYDROGRAPH_DAYS = 365
-KINDS = ("hydrograph", "plume", "skill", "rank-histogram", "spread-skill", "reliability")
+KINDS = ("hydrograph", "plume", "skill", "rank-histogram", "spread-skill", "reliability", "bulletin")
 _DPI = 110
+# The one colour ramp of every threshold (figures, report, bulletin): pale tan for the lowest
+# level of a basin to dark umber for the highest, by value, whatever the levels are named.
+SEVERITY_RAMP = ("#cfae6a", "#3b1407")
+FEW_EVENTS = 10  # reliability from fewer observed events than this is marked as poorly determined
 
 
 # ---------------------------------------------------------------------------------- helpers
 
 
+_VERBATIM = re.compile(r"[A-Za-z0-9]+(?:[._-][A-Za-z0-9]+)*")
+
+
+def name_part(text: str) -> str:
+    """One part of a figure's file name, unique per ``text``.
+
+    ``text`` of at most 40 characters made only of ASCII letters and digits joined by single ``.``, ``_`` or ``-`` is
+    kept as it is; anything else becomes a readable ASCII slug (accents dropped, other
+    characters as ``-``) followed by ``~`` and the first 8 hex digits of the SHA-256 of the
+    text. ``~`` never occurs in a kept name, so ``a/b`` (``a-b~…``) and ``a_b`` (kept) and
+    ``minor!``/``minor?`` (two hashes) get different names. Text longer than 40 characters is
+    shortened the same way, so that a file name stays well under the 255-byte limit."""
+    text = str(text)
+    if len(text) <= 40 and _VERBATIM.fullmatch(text):
+        return text
+    ascii_ = unicodedata.normalize("NFKD", text).encode("ascii", "ignore").decode("ascii")
+    slug = re.sub(r"[^A-Za-z0-9]+", "-", ascii_).strip("-")[:40] or "x"
+    return f"{slug}~{hashlib.sha256(text.encode('utf-8')).hexdigest()[:8]}"
+
+
 def figure_name(kind: str, basin: str, extra: str | None = None) -> str:
-    """File name of a figure: ``<kind>__<basin>[__<extra>].png`` with unsafe characters
-    replaced by ``_``."""
+    """File name of a figure: ``<kind>__<basin>[__<extra>].png``, each part through
+    :func:`name_part`, so that different basin ids (or threshold names) never share a file."""
     parts = [kind, basin] + ([extra] if extra else [])
-    return "__".join(re.sub(r"[^A-Za-z0-9_.-]", "_", str(p)) for p in parts) + ".png"
+    return "__".join(name_part(p) for p in parts) + ".png"
 
 
 def parse_figure_name(name: str) -> tuple[str, str, str | None] | None:
-    """(kind, basin, extra) of a file named by :func:`figure_name`, or None."""
+    """(kind, basin part, extra part) of a file named by :func:`figure_name`, or None.
+
+    The parts are as written (:func:`name_part` of the id); compare them with
+    ``name_part(basin_id)`` to find the basin."""
     stem = Path(name).stem
     parts = stem.split("__")
     if len(parts) < 2 or parts[0] not in KINDS:
         return None
     return parts[0], parts[1], ("__".join(parts[2:]) or None)
+
+
+def severity_order(values) -> list[int]:
+    """Indices of the finite threshold ``values`` from the lowest to the highest (NaN left out)."""
+    values = np.asarray(values, dtype=float)
+    return [int(i) for i in np.argsort(values, kind="stable") if np.isfinite(values[i])]
+
+
+def severity_colors(n: int) -> list[str]:
+    """``n`` colours of :data:`SEVERITY_RAMP`, lightest first (one colour per threshold rank)."""
+    from matplotlib.colors import LinearSegmentedColormap, to_hex
+
+    ramp = LinearSegmentedColormap.from_list("severity", SEVERITY_RAMP)
+    positions = np.linspace(0.0, 1.0, n) if n > 1 else np.array([0.6])
+    return [to_hex(ramp(x)) for x in positions]
+
+
+def threshold_colors(values) -> dict[int, str]:
+    """Index of each finite threshold -> its colour, ranked by value (:func:`severity_order`)."""
+    order = severity_order(values)
+    return dict(zip(order, severity_colors(len(order)), strict=True))
 
 
 def _figure(nrows: int, ncols: int, size: tuple[float, float], **kw):
@@ -169,8 +220,12 @@ def plot_hydrograph(runs: Mapping[str, xr.Dataset], observed: xr.DataArray | Non
     return _save(fig, Path(path))
 
 
+ASSIMILATED_COLOR = "#2e7d6b"
+
+
 def plot_plume(forecast: xr.Dataset, observed: xr.DataArray | None, basin: str, path: str | Path, *,
-               history_days: int = 30, names: Mapping[str, str] | None = None) -> Path:
+               history_days: int = 30, names: Mapping[str, str] | None = None,
+               recent: xr.DataArray | None = None, note: str | None = None) -> Path:
     """Forecast plume of one issue and its exceedance probabilities.
 
     Parameters
@@ -182,8 +237,13 @@ def plot_plume(forecast: xr.Dataset, observed: xr.DataArray | None, basin: str, 
     observed : usable daily discharge (basin, time), m3 s-1, or None
     basin : basin id
     path : PNG to write
-    history_days : days of observations shown before the issue
+    history_days : days of observations (and of ``recent``) shown before the issue
     names : basin id -> name
+    recent : the assimilated ensemble before the issue (discharge after each day's update),
+        (basin, time, member) m3 s-1, or None; drawn as bands beside the observations
+    note : a line printed under the title (e.g. how many distinct weather traces there are)
+
+    Thresholds are drawn in the order of their values with :func:`severity_colors`.
 
     Returns
     -------
@@ -203,35 +263,42 @@ def plot_plume(forecast: xr.Dataset, observed: xr.DataArray | None, basin: str, 
         bands = _quantile_bands(fc["discharge_quantile"].transpose("quantile", "lead"))
     if bands is not None:
         _draw_ensemble(ax, valid, bands, EXPERIMENT_STYLE["assimilation"]["color"], "forecast")
+    start = issue - pd.Timedelta(days=max(history_days, 1) - 1)
+    if recent is not None and basin in recent["basin"].values and history_days > 0:
+        r = recent.sel(basin=basin, time=slice(start, issue)).transpose("time", "member")
+        if r.sizes["time"]:
+            _draw_ensemble(ax, pd.DatetimeIndex(r["time"].values), _bands(r.values.astype(float)),
+                           ASSIMILATED_COLOR, "assimilated")
     if observed is not None and basin in observed["basin"].values and history_days > 0:
-        hist = observed.sel(basin=basin, time=slice(issue - pd.Timedelta(days=history_days - 1), issue))
+        hist = observed.sel(basin=basin, time=slice(start, issue))
         ax.plot(pd.DatetimeIndex(hist["time"].values), hist.values, "o-", color="black", ms=3, lw=0.8,
                 label=f"observed, last {history_days} days")
     ax.axvline(issue, color="black", lw=0.8, ls=":")
     ax.text(issue, 0.02, "issue ", transform=ax.get_xaxis_transform(), ha="right", va="bottom", fontsize=8)
     thr_names = [str(t) for t in fc["threshold"].values] if "threshold" in fc.dims else []
     thr = fc["thresholds"].values.astype(float) if "thresholds" in fc else np.full(len(thr_names), np.nan)
-    colors = ["#e6ab02", "#e7298a", "#7570b3", "#66a61e"]
-    for k, (name, value) in enumerate(zip(thr_names, thr, strict=True)):
-        if np.isfinite(value):
-            c = colors[k % len(colors)]
-            ax.axhline(value, color=c, ls="--", lw=1.1)
-            ax.text(1.0, value, f" {name} ({value:g})", transform=ax.get_yaxis_transform(), color=c,
-                    va="center", fontsize=8, clip_on=False)
+    shown = severity_order(thr)
+    colors = threshold_colors(thr)
+    for k in shown:
+        ax.axhline(thr[k], color=colors[k], ls="--", lw=1.2)
+        ax.text(1.0, thr[k], f" {thr_names[k]} ({thr[k]:g})", transform=ax.get_yaxis_transform(),
+                color=colors[k], va="center", fontsize=8, clip_on=False)
     ax.set_ylabel(Q_LABEL)
     top = np.nanmax([*ax.get_ylim(), *thr[np.isfinite(thr)]]) if len(thr) else ax.get_ylim()[1]
     ax.set_ylim(0, 1.3 * top)  # head room for the legend above the data and thresholds
     ax.grid(alpha=0.3)
     ax.legend(loc="upper left", fontsize=8, ncol=3, framealpha=0.9)
     analysis = textwrap.shorten(str(forecast.attrs.get("analysis", "unknown")), width=110, placeholder=" ...")
-    ax.set_title(f"issued {issue:%Y-%m-%d} (end of day); analysis {analysis}", fontsize=9)
-    # exceedance probability per lead, one bar group per valid day
+    title = f"issued {issue:%Y-%m-%d} (end of day); analysis {analysis}"
+    if note:
+        title += "\n" + textwrap.shorten(note, width=130, placeholder=" ...")
+    ax.set_title(title, fontsize=9)
+    # exceedance probability per lead, one bar group per valid day, thresholds by value
     p = fc["exceedance_probability"].transpose("lead", "threshold").values if thr_names else np.zeros((len(valid), 0))
-    shown = [k for k in range(len(thr_names)) if np.isfinite(thr[k])]
     width = 0.8 / max(1, len(shown))
     for j, k in enumerate(shown):
         offset = pd.to_timedelta((j - (len(shown) - 1) / 2) * width, unit="D")
-        bars = axp.bar(valid + offset, p[:, k], width=width, color=colors[k % len(colors)], label=thr_names[k])
+        bars = axp.bar(valid + offset, p[:, k], width=width, color=colors[k], label=thr_names[k])
         if len(valid) <= 15:
             axp.bar_label(bars, labels=[f"{x:.0%}" if x > 0 else "" for x in p[:, k]], fontsize=6, padding=1)
     if not shown:
@@ -372,6 +439,7 @@ def plot_reliability(skill: xr.Dataset, basin: str, threshold: str, path: str | 
     value = float(skill["threshold_value"].sel(basin=basin, threshold=threshold))
     for ax, lead in zip(axes[0], chosen, strict=True):
         ax.plot([0, 1], [0, 1], color="0.4", lw=0.8, ls="--", label="perfect reliability")
+        fewest = None
         for exp, style in EXPERIMENT_STYLE.items():
             sel = {"basin": basin, "experiment": exp, "lead": lead, "threshold": threshold}
             fp = skill["reliability_forecast_probability"].sel(sel).values
@@ -381,8 +449,13 @@ def plot_reliability(skill: xr.Dataset, basin: str, threshold: str, path: str | 
             if ok.any():
                 ax.plot(fp[ok], of[ok], "-", color=style["color"], lw=1)
                 events = int(round(float(np.sum(of[ok] * n[ok]))))
+                fewest = events if fewest is None else min(fewest, events)
                 ax.scatter(fp[ok], of[ok], s=8 + 60 * np.sqrt(n[ok] / n.max()), color=style["color"],
                            label=f"{style['label']} (n = {n.sum()}, {events} observed)", zorder=3)
+        if fewest is not None and fewest < FEW_EVENTS:
+            ax.text(0.98, 0.03, f"only {fewest} observed event{'s' if fewest != 1 else ''}:\n"
+                    "reliability poorly determined", transform=ax.transAxes, ha="right", va="bottom",
+                    fontsize=8, color="#8b0000", bbox={"fc": "white", "ec": "#8b0000", "lw": 0.6})
         ax.set_xlim(-0.02, 1.02)
         ax.set_ylim(-0.02, 1.02)
         ax.set_aspect("equal")
@@ -420,11 +493,83 @@ def _latest_forecast(cfg: Mapping) -> Path | None:
     return found[-1] if found else None
 
 
-def plot_results(cfg: Mapping, issue_date: str | None = None) -> list[Path]:
-    """Draw every figure for which the products exist into ``results/figures/``.
+def select_basins(ids: Sequence[str], *, max_basins: int, raised: Sequence[str] = (),
+                  skill: xr.Dataset | None = None) -> list[str]:
+    """The basins worth drawing when there are too many: at most ``max_basins`` (0 = all).
 
-    Basins are ``outputs.figures`` (all basins of the products when empty). The plume is the
-    forecast of ``issue_date``, or the latest forecast file when ``issue_date`` is None.
+    First the basins in ``raised`` (raised alerts, in that order), then the worst skill:
+    the lowest CRPSS of the assimilation at the shortest hindcast lead (lead 0 without a
+    hindcast), unscored basins last. The result keeps the order of ``ids``.
+    """
+    ids = [str(b) for b in ids]
+    if max_basins <= 0 or len(ids) <= max_basins:
+        return ids
+    ranked = [b for b in dict.fromkeys(str(r) for r in raised) if b in ids]
+    if skill is not None and "crpss" in skill["metric"].values:
+        leads = [int(x) for x in skill["lead"].values]
+        lead = min((x for x in leads if x > 0), default=leads[0])
+        s = skill["skill"].sel(experiment="assimilation", lead=lead, metric="crpss")
+        s = s.where(skill["n"].sel(experiment="assimilation", lead=lead, metric="crpss") > 0)
+        score = dict(zip((str(b) for b in s["basin"].values), s.values.astype(float), strict=True))
+        ranked += sorted((b for b in ids if np.isfinite(score.get(b, np.nan))), key=lambda b: score[b])
+    ranked += ids
+    chosen = set(list(dict.fromkeys(ranked))[:max_basins])
+    return [b for b in ids if b in chosen]
+
+
+def _draw_basin(folder: Path, basin: str, data: Mapping) -> list[str]:
+    """Every figure of one basin into ``folder`` (one task of :func:`plot_results`)."""
+    names, observed, out = data["names"], data["observed"], []
+    if data["runs"]:
+        out.append(plot_hydrograph(data["runs"], observed, basin, folder / figure_name("hydrograph", basin),
+                                   names=names))
+    skill = data["skill"]
+    if skill is not None:
+        out.append(plot_skill_by_lead(skill, basin, folder / figure_name("skill", basin), names=names))
+        out.append(plot_spread_skill(skill, basin, folder / figure_name("spread-skill", basin), names=names))
+        if "rank_histogram" in skill and skill.sizes.get("rank", 0) > 1:
+            out.append(plot_rank_histograms(skill, basin, folder / figure_name("rank-histogram", basin),
+                                            names=names))
+        if "threshold_value" in skill:
+            values = skill["threshold_value"].sel(basin=basin).values.astype(float)
+            for k in severity_order(values):
+                t = str(skill["threshold"].values[k])
+                out.append(plot_reliability(skill, basin, t, folder / figure_name("reliability", basin, t),
+                                            names=names))
+    fc = data["forecast"]
+    if fc is not None:
+        out.append(plot_plume(fc, observed, basin, folder / figure_name("plume", basin, data["day"]),
+                              history_days=data["history_days"], names=names))
+    return [p.name for p in out]
+
+
+def _slice(ds, basin: str):
+    return None if ds is None or basin not in ds["basin"].values else ds.sel(basin=[basin])
+
+
+def _remove_leftovers(folder: Path) -> None:
+    """Temporaries of a drawing that was killed: staging folders and ``.*.png.*.part``."""
+    import shutil
+
+    if folder.is_dir():
+        for f in folder.glob(".staging-*"):
+            shutil.rmtree(f, ignore_errors=True)
+        for f in folder.glob(".*.png.*.part"):
+            f.unlink(missing_ok=True)
+
+
+def plot_results(cfg: Mapping, issue_date: str | None = None) -> list[Path]:
+    """Draw the figures of the products into ``results/figures/``: all of them or none.
+
+    Basins are ``outputs.figures`` when given; otherwise at most ``plots.max_basins`` of
+    them (:func:`select_basins`: raised alerts of the forecast shown, then the worst skill).
+    The plume is the forecast of ``issue_date``, or the latest forecast file when
+    ``issue_date`` is None. Every input is read and checked before anything is drawn; the
+    figures are drawn (by ``plots.workers`` processes) into a staging folder and moved into
+    place only when every one was drawn, so a failed or killed drawing leaves the earlier
+    figures as they were. Temporaries of a killed drawing are removed by the next one.
+    Worker processes are started fresh ("spawn"): a script calling this with
+    ``plots.workers`` other than 1 needs the usual ``if __name__ == "__main__":`` guard.
 
     Returns
     -------
@@ -435,63 +580,86 @@ def plot_results(cfg: Mapping, issue_date: str | None = None) -> list[Path]:
     InputError
         when ``issue_date`` is given and its forecast file is missing, when a product is
         unreadable, or when there is nothing to draw.
+    LockError
+        while another drawing writes the same folder.
     """
+    import shutil
+    import tempfile
+
+    from assim.io.common import output_lock
+
     folder = paths.figures(cfg)
-    observed, names = _inputs(cfg)
-    wanted = [str(b) for b in cfg.get("outputs", {}).get("figures", [])]
-    written: list[Path] = []
-
-    def basins_of(ds):
-        ids = [str(b) for b in ds["basin"].values]
-        return [b for b in ids if b in wanted] if wanted else ids
-
-    runs = {}
-    for exp, mode in (("openloop", "openloop"), ("assimilation", "assimilate")):
-        p = paths.run_product(cfg, mode)
-        if p.is_file():
-            runs[exp] = open_product(p, ("basin", "time"), any_of=("discharge", "discharge_quantile"), load=True)
-    try:
-        if runs:
-            first = next(iter(runs.values()))
-            for b in basins_of(first):
-                present = {e: ds for e, ds in runs.items() if b in ds["basin"].values}
-                written.append(plot_hydrograph(present, observed, b, folder / figure_name("hydrograph", b),
-                                               names=names))
-    finally:
-        for ds in runs.values():
-            ds.close()
-
-    s_path = paths.skill(cfg, "nc")
-    if s_path.is_file():
-        skill = read_skill(s_path)
-        for b in basins_of(skill):
-            written.append(plot_skill_by_lead(skill, b, folder / figure_name("skill", b), names=names))
-            written.append(plot_spread_skill(skill, b, folder / figure_name("spread-skill", b), names=names))
-            if "rank_histogram" in skill and skill.sizes.get("rank", 0) > 1:
-                written.append(plot_rank_histograms(skill, b, folder / figure_name("rank-histogram", b),
-                                                    names=names))
-            if "threshold_value" in skill:
-                for t in skill["threshold"].values:
-                    if np.isfinite(float(skill["threshold_value"].sel(basin=b, threshold=t))):
-                        written.append(plot_reliability(skill, b, str(t),
-                                                        folder / figure_name("reliability", b, str(t)),
-                                                        names=names))
-
     if issue_date is not None:
         f_path = paths.forecast(cfg, issue_date)
         if not f_path.is_file():
             raise InputError(f"no forecast for issue date {issue_date} (run `assim forecast`)", file=f_path)
     else:
         f_path = _latest_forecast(cfg)
+    observed, names = _inputs(cfg)
+    runs = {}
+    for exp, mode in (("openloop", "openloop"), ("assimilation", "assimilate")):
+        p = paths.run_product(cfg, mode)
+        if p.is_file():
+            ds = open_product(p, ("basin", "time"), any_of=("discharge", "discharge_quantile"), load=True)
+            t1 = pd.Timestamp(ds["time"].values[-1]) if ds.sizes["time"] else None
+            runs[exp] = ds if t1 is None else ds.sel(time=slice(t1 - pd.Timedelta(days=HYDROGRAPH_DAYS - 1), t1))
+    s_path = paths.skill(cfg, "nc")
+    skill = read_skill(s_path) if s_path.is_file() else None
+    fc, day = None, None
     if f_path is not None:
-        with open_product(f_path, ("exceedance_probability", "valid_time"),
-                          any_of=("discharge", "discharge_quantile"), load=True) as fc:
-            day = str(fc.attrs.get("issue_date", f_path.stem[len("forecast-"):]))[:10]
-            history = int(cfg.get("forecast", {}).get("history_days", 30))
-            for b in basins_of(fc):
-                written.append(plot_plume(fc, observed, b, folder / figure_name("plume", b, day),
-                                          history_days=history, names=names))
-    if not written:
+        fc = open_product(f_path, ("exceedance_probability", "valid_time"),
+                          any_of=("discharge", "discharge_quantile"), load=True)
+        day = str(fc.attrs.get("issue_date", f_path.stem[len("forecast-"):]))[:10]
+    if not runs and skill is None and fc is None:
         raise InputError("nothing to draw: no run, skill or forecast product found "
                          "(run `assim run`, `assim verify` or `assim forecast` first)", file=paths.results(cfg))
+
+    ids = list(dict.fromkeys(str(b) for ds in (*runs.values(), skill, fc) if ds is not None
+                             for b in ds["basin"].values))
+    wanted = [str(b) for b in cfg.get("outputs", {}).get("figures", [])]
+    if wanted:
+        basins = [b for b in ids if b in wanted]
+    else:
+        from assim.bulletin import alert_levels, raised_alerts
+
+        raised = [] if fc is None else [a["basin"] for a in raised_alerts(fc, alert_levels(cfg, fc))]
+        basins = select_basins(ids, max_basins=int(cfg.get("plots", {}).get("max_basins", 0)), raised=raised,
+                               skill=skill)
+    if not basins:
+        raise InputError("no basin of outputs.figures is in the products", file=paths.results(cfg),
+                         variable="outputs.figures", place=", ".join(wanted))
+    history = int(cfg.get("forecast", {}).get("history_days", 30))
+    tasks = [(b, {"names": {b: names[b]} if names and b in names else None,
+                  "observed": None if observed is None or b not in observed["basin"].values
+                  else observed.sel(basin=[b]),
+                  "runs": {e: ds.sel(basin=[b]) for e, ds in runs.items() if b in ds["basin"].values},
+                  "skill": _slice(skill, b), "forecast": _slice(fc, b), "day": day, "history_days": history})
+             for b in basins]
+    workers = int(cfg.get("plots", {}).get("workers", 0)) or (os.cpu_count() or 1)
+    with output_lock(folder / ".figures.lock", "drawing figures"):
+        _remove_leftovers(folder)
+        staging = Path(tempfile.mkdtemp(prefix=".staging-", dir=folder))
+        try:
+            drawn = _draw_all(staging, tasks, workers)
+            written = []
+            for name in drawn:
+                os.replace(staging / name, folder / name)
+                written.append(folder / name)
+        finally:
+            shutil.rmtree(staging, ignore_errors=True)
     return written
+
+
+def _draw_all(staging: Path, tasks, workers: int) -> list[str]:
+    """Draw every basin's figures into ``staging``, in worker processes when there are
+    several basins and ``workers`` > 1; returns the file names."""
+    if workers <= 1 or len(tasks) <= 1:
+        return [n for b, data in tasks for n in _draw_basin(staging, b, data)]
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    # spawn: a fresh interpreter per worker, never a fork of a process holding library locks
+    with ProcessPoolExecutor(max_workers=min(workers, len(tasks)),
+                             mp_context=multiprocessing.get_context("spawn")) as pool:
+        futures = [pool.submit(_draw_basin, staging, b, data) for b, data in tasks]
+        return [n for f in futures for n in f.result()]

@@ -16,6 +16,7 @@ import hashlib
 import html
 from collections.abc import Mapping, Sequence
 from pathlib import Path
+from urllib.parse import quote
 
 import numpy as np
 import xarray as xr
@@ -26,9 +27,12 @@ from assim._version import __version__
 from assim.caution import CAUTION
 from assim.io.common import atomic_path
 from assim.io.skill import read_skill
-from assim.plots import KINDS, parse_figure_name
+from assim.plots import KINDS, name_part, parse_figure_name, severity_order, threshold_colors
 
 SUMMARY_METRICS = ("crpss", "crpss_openloop", "crps", "nse", "kge", "kge_modified", "spread_skill")
+# Figures are embedded (base64) while their files total at most this; beyond, the report
+# links them, so that it stays small however many basins were drawn.
+EMBED_LIMIT_BYTES = 25_000_000
 PRODUCTS = ("openloop.nc", "analysis.nc", "hindcast.nc", "skill.nc", "skill.csv")
 _KIND_TITLES = {
     "hydrograph": "Hydrograph",
@@ -52,7 +56,7 @@ code,pre{font-family:ui-monospace,Menlo,Consolas,monospace;font-size:.85em}
 pre{background:#f6f8fa;padding:.8em;overflow-x:auto;border:1px solid #e1e4e8}
 figure{margin:1em 0 1.8em}figure img{max-width:100%;border:1px solid #e5e5e5}
 figcaption{font-size:.85em;color:#555}.note{color:#555;font-size:.9em}
-nav a{margin-right:.8em}
+nav a{margin-right:.8em}.honesty{background:#fffbe6;border:1px solid #b08d00;padding:.5em 1em}
 """
 
 
@@ -87,14 +91,17 @@ def render_report(cfg: Mapping) -> str:
     s_path = paths.skill(cfg, "nc")
     skill = read_skill(s_path) if s_path.is_file() else None
     figures = sorted(paths.figures(cfg).glob("*.png")) if paths.figures(cfg).is_dir() else []
+    names = _basin_names(cfg)
+    known = [str(b) for b in skill["basin"].values] if skill is not None else []
+    ids = {name_part(b): b for b in [*names, *known]}  # file-name part -> basin id
     by_basin: dict[str, list[Path]] = {}
     other: list[Path] = []
     for f in figures:
         parsed = parse_figure_name(f.name)
-        (by_basin.setdefault(parsed[1], []) if parsed else other).append(f)
-    basins = [str(b) for b in skill["basin"].values] if skill is not None else []
-    basins += [b for b in by_basin if b not in basins]
-    names = _basin_names(cfg)
+        (by_basin.setdefault(ids.get(parsed[1], parsed[1]), []) if parsed else other).append(f)
+    basins = [b for b in known if b in by_basin] + [b for b in by_basin if b not in known]
+    unshown = [b for b in known if b not in by_basin]
+    embed = sum(f.stat().st_size for f in figures) <= EMBED_LIMIT_BYTES
 
     now = _dt.datetime.now(_dt.UTC).replace(microsecond=0).isoformat()
     out = [
@@ -112,17 +119,22 @@ def render_report(cfg: Mapping) -> str:
                                                    ("basins", "Basins"))) + "</nav>",
     ]
     out += _provenance(cfg, __version__)
-    out += _summary(skill)
+    out += _summary(skill, cfg)
     out.append('<h2 id="basins">Basins</h2>')
     if basins:
         out.append("<p>" + " ".join(f'<a href="#{_anchor(b)}">{_e(_name(b, names))}</a>' for b in basins) + "</p>")
     else:
-        out.append('<p class="note">No basin to show: no skill.nc and no figures.</p>')
+        out.append('<p class="note">No basin to show: no figures (run <code>assim plot</code>).</p>')
+    if not embed:
+        out.append(f'<p class="note">The {len(figures)} figures exceed {EMBED_LIMIT_BYTES // 10**6} MB: each is '
+                   "shown as a link to its file in the figures folder (keep report.html beside figures/).</p>")
     for b in basins:
-        out += _basin_section(b, names, skill, by_basin.get(b, []))
+        out += _basin_section(b, names, skill, by_basin.get(b, []), embed)
+    if unshown:
+        out += _unshown_table(unshown, names, skill)
     if other:
         out.append("<h2>Other figures</h2>")
-        out += [_figure_html(f) for f in other]
+        out += [_figure_html(f, embed) for f in other]
     if not figures:
         out.append('<p class="note">No figures in the figures folder (run <code>assim plot</code>).</p>')
     out.append(f'<div class="caution"><strong>Caution.</strong> {_e(CAUTION)}</div>')
@@ -138,7 +150,7 @@ def _e(text) -> str:
 
 
 def _anchor(basin: str) -> str:
-    return "basin-" + "".join(c if c.isalnum() or c in "-_" else "_" for c in basin)
+    return "basin-" + name_part(basin)
 
 
 def _name(basin: str, names: Mapping[str, str]) -> str:
@@ -221,9 +233,17 @@ def _provenance(cfg: Mapping, version: str) -> list[str]:
     return out
 
 
-def _metrics(skill: xr.Dataset) -> list[str]:
+def _metrics(skill: xr.Dataset, basin: str | None = None) -> list[str]:
+    """The metrics shown: the summary ones, then the Brier scores by threshold value (of
+    ``basin``, or the median over basins)."""
     present = [str(k) for k in skill["metric"].values]
-    return [k for k in SUMMARY_METRICS if k in present] + [k for k in present if k.startswith("brier_")]
+    brier = [k for k in present if k.startswith("brier_")]
+    if "threshold_value" in skill and brier:
+        v = skill["threshold_value"]
+        v = v.sel(basin=basin) if basin is not None else v.median("basin", skipna=True)
+        value = dict(zip((f"brier_{t}" for t in v["threshold"].values), v.values.astype(float), strict=True))
+        brier.sort(key=lambda k: (not np.isfinite(value.get(k, np.nan)), value.get(k, np.inf)))
+    return [k for k in SUMMARY_METRICS if k in present] + brier
 
 
 def _skill_table(values: xr.DataArray, n: xr.DataArray, metrics: Sequence[str], units: Mapping[str, str]) -> list[str]:
@@ -252,10 +272,35 @@ def _units(skill: xr.Dataset) -> dict[str, str]:
     return {str(k): str(u) for k, u in zip(skill["metric"].values, skill["metric_units"].values, strict=True)}
 
 
-def _summary(skill: xr.Dataset | None) -> list[str]:
+_FORCING_WORDS = {
+    "observed": "observed (the recorded weather of the valid days: perfect forcing, an upper bound of what a "
+                "forecast with predicted weather can reach)",
+    "climatology": "climatology (past years' weather for the same dates: ensemble streamflow prediction)",
+    "file": "file (a forcing-forecast file)",
+}
+
+
+def _forcing_note(skill: xr.Dataset, cfg: Mapping) -> str:
+    """Which forcing the hindcast skill used, beside the operational forecast's."""
+    used = str(skill.attrs.get("hindcast_forcing", "unknown"))
+    operational = str(cfg.get("forecast", {}).get("forcing", "unknown"))
+    if used == "none":
+        return "No hindcast was scored: leads 1..L have no skill."
+    text = (f"Hindcast skill (leads 1..L) was measured with forcing {_FORCING_WORDS.get(used, used)}. "
+            f"The operational forecast uses forcing {_FORCING_WORDS.get(operational, operational)}. ")
+    if used == operational:
+        return text + "The same kind: the hindcast skill is what the operational forecasts can be expected to have."
+    lower = " and is expected to be lower" if used == "observed" else ""
+    return text + (f"These differ: the skill of forecasts with {operational} forcing is not measured here{lower}. "
+                   f"To measure it, run the hindcast and verification with hindcast.forcing={operational} into "
+                   "another results folder and compare the two reports.")
+
+
+def _summary(skill: xr.Dataset | None, cfg: Mapping | None = None) -> list[str]:
     out = ['<h2 id="summary">Skill by lead time</h2>']
     if skill is None:
         return out + ['<p class="note">No skill.nc yet (run <code>assim verify</code>).</p>']
+    out.append(f'<p class="honesty" id="skill-forcing"><strong>Forcing.</strong> {_e(_forcing_note(skill, cfg or {}))}</p>')
     metrics = _metrics(skill)
     scored = skill["skill"].where(skill["n"] > 0)
     median = scored.median("basin", skipna=True)
@@ -272,30 +317,63 @@ def _summary(skill: xr.Dataset | None) -> list[str]:
     return out
 
 
-def _figure_html(path: Path) -> str:
+def _figure_html(path: Path, embed: bool = True) -> str:
     parsed = parse_figure_name(path.name)
     kind = _KIND_TITLES.get(parsed[0], parsed[0]) if parsed else path.stem
     extra = f": {parsed[2]}" if parsed and parsed[2] else ""
+    if not embed:
+        link = f"{path.parent.name}/{quote(path.name)}"
+        return f'<p><a href="{_e(link)}">{_e(kind + extra)} ({_e(path.name)})</a></p>'
     data = base64.b64encode(path.read_bytes()).decode("ascii")
     return (f'<figure><img src="data:image/png;base64,{data}" alt="{_e(kind + extra)}">'
             f"<figcaption>{_e(kind + extra)} ({_e(path.name)})</figcaption></figure>")
 
 
+def _unshown_table(basins: Sequence[str], names: Mapping[str, str], skill: xr.Dataset | None) -> list[str]:
+    """One line per basin without figures (not selected by ``plots.max_basins``)."""
+    out = [f'<h3 id="other-basins">Basins without figures ({len(basins)})</h3>',
+           '<p class="note">Not drawn by <code>assim plot</code> (see <code>plots.max_basins</code>, '
+           "<code>outputs.figures</code>); their scores are in skill.csv.</p>"]
+    if skill is None or "crpss" not in skill["metric"].values:
+        return out + ["<p>" + ", ".join(_e(_name(b, names)) for b in basins) + "</p>"]
+    leads = [int(x) for x in skill["lead"].values]
+    lead = min((x for x in leads if x > 0), default=leads[0])
+    s = skill["skill"].sel(experiment="assimilation", lead=lead, metric="crpss")
+    out.append(f'<table><tr><th class="l">basin</th><th>CRPSS, assimilation, lead {lead}</th></tr>')
+    for b in basins:
+        v = float(s.sel(basin=b)) if b in s["basin"].values else float("nan")
+        out.append(f'<tr><td class="l">{_e(_name(b, names))}</td><td>{v:.3g}</td></tr>')
+    out.append("</table>")
+    return out
+
+
 def _basin_section(basin: str, names: Mapping[str, str], skill: xr.Dataset | None,
-                   figures: Sequence[Path]) -> list[str]:
+                   figures: Sequence[Path], embed: bool = True) -> list[str]:
     out = [f'<section id="{_anchor(basin)}"><h3>{_e(_name(basin, names))}</h3>']
+    rank: dict[str, int] = {}  # threshold file-name part -> rank by value
     if skill is not None and basin in skill["basin"].values:
         thr = skill["threshold_value"].sel(basin=basin) if "threshold_value" in skill else None
         if thr is not None and thr.size:
-            levels = ", ".join(f"{t} {float(x):g} m3 s-1" for t, x in zip(thr["threshold"].values, thr.values,
-                                                                            strict=True) if np.isfinite(x))
-            if levels:
-                out.append(f"<p>Thresholds: {_e(levels)}.</p>")
-        out += _skill_table(skill["skill"].sel(basin=basin), skill["n"].sel(basin=basin), _metrics(skill),
+            t_names = [str(t) for t in thr["threshold"].values]
+            values = thr.values.astype(float)
+            colors = threshold_colors(values)
+            order = severity_order(values)
+            rank = {name_part(t_names[k]): i for i, k in enumerate(order)}
+            if order:
+                out.append("<p>Thresholds: " + ", ".join(
+                    f'<span style="display:inline-block;width:.8em;height:.8em;border:1px solid #555;'
+                    f'background:{colors[k]}"></span> {_e(t_names[k])} {values[k]:g} m3 s-1' for k in order)
+                    + ".</p>")
+        out += _skill_table(skill["skill"].sel(basin=basin), skill["n"].sel(basin=basin), _metrics(skill, basin),
                             _units(skill))
     order = {k: i for i, k in enumerate(KINDS)}
-    for f in sorted(figures, key=lambda p: (order.get((parse_figure_name(p.name) or ("",))[0], 99), p.name)):
-        out.append(_figure_html(f))
+
+    def key(p: Path):
+        parsed = parse_figure_name(p.name) or ("", "", None)
+        return order.get(parsed[0], 99), rank.get(parsed[2] or "", 99), p.name
+
+    for f in sorted(figures, key=key):
+        out.append(_figure_html(f, embed))
     out.append("</section>")
     return out
 

@@ -71,6 +71,10 @@ SPIKES_PER_BASIN, SPIKE_FACTOR = 4, 8.0
 NEGATIVE = ("oskerrin", 2, -9999.0)  # logger error code, twice
 BELOW_H0 = ("velmorra", "2020-02-14T09:00", 3, 0.05)  # three stage readings of 0.05 m
 
+# Demonstration thresholds: the T-year levels of the true discharge, named after T (q2y: the
+# 2-year level), i.e. after what they are rather than after any warning category.
+RETURN_PERIODS = (2, 5, 10)
+
 
 def _days() -> np.ndarray:
     return np.arange(START, END + np.timedelta64(1, "D"), dtype="datetime64[D]")
@@ -144,7 +148,7 @@ def run_truth(precipitation, pet):
     return runoff, states
 
 
-def gumbel_levels(discharge: np.ndarray, days: np.ndarray, periods=(2, 5, 10)) -> np.ndarray:
+def gumbel_levels(discharge: np.ndarray, days: np.ndarray, periods=RETURN_PERIODS) -> np.ndarray:
     """T-year levels of a Gumbel distribution fitted by moments to the annual maxima.
 
     discharge : (basin, time); returns (basin, len(periods)).
@@ -278,7 +282,7 @@ def make(out: Path) -> None:
             "    model: gr4j",
             "    parameters: {" + ", ".join(f"{n}: {v}" for n, v in prior.items()) + "}",
             "    thresholds_m3s: {" + ", ".join(
-                f"{n}: {_sig3(v)}" for n, v in zip(("minor", "moderate", "major"), levels[k], strict=True)) + "}",
+                f"q{t}y: {_sig3(v)}" for t, v in zip(RETURN_PERIODS, levels[k], strict=True)) + "}",
         ]
         if b["gauge"] == "stage":
             r = ratings[b["id"]]

@@ -364,3 +364,39 @@ def test_forecast_from_a_forcing_file_uses_its_weather(prepared, tmp_path):
     dry, wet = out[0.0]["discharge"].values, out[40.0]["discharge"].values
     assert out[0.0].attrs["forcing"] == "file"
     assert (wet >= dry).all() and (wet[:, -1] > dry[:, -1]).all()
+
+
+def test_forecast_writes_its_bulletin_and_counts_weather_traces(operational, capsys):
+    """The forecast writes its bulletin beside it (page, PNG per basin, alert files). With
+    climatology forcing from a three-year record, member m takes the year Y-1-(m mod n)
+    among the n = 2 other years (the rule documented in config.schema.yaml, counted here by
+    hand), so 8 members share 2 traces: the product, the bulletin and the CLI say so."""
+    import json
+
+    from assim import paths
+
+    cfg = operational
+    conf = cfg.results / "config.yaml"
+    conf.write_text(yaml.safe_dump(dict(cfg)))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        code = main(["forecast", "--config", str(conf), "--issue-date", "2003-06-22"])
+    out = capsys.readouterr().out
+    assert code == 0
+    with xr.open_dataset(paths.forecast(cfg, "2003-06-22")) as ds:
+        assert ds.attrs["forcing_traces"] == "2"
+        assert "Only 2 distinct past years" in ds.attrs["forcing_note"]
+        assert ds["discharge_analysis"].sizes["time"] == 2  # the two days since the restart
+    assert "note: Only 2 distinct past years" in out and "bulletin written:" in out
+    page = paths.bulletin(cfg, "2003-06-22").read_text()
+    assert "Only 2 distinct past years" in page and "restart.nc" in page
+    # each gauge's latest reading is the latest the forecast could use (none after the issue)
+    import re
+
+    ages = re.findall(r"(\d{4}-\d{2}-\d{2}) \((\d+) days? (before|after) the issue\)", page)
+    assert ("2003-12-31", "192", "after") in ages  # the weather on record
+    gauges = [a for a in ages if a[0] != "2003-12-31"]
+    assert len(gauges) == 2 and all(a[2] == "before" and a[0] <= "2003-06-22" for a in gauges)
+    assert len(list(paths.bulletin_figures(cfg, "2003-06-22").glob("*.png"))) == 2
+    doc = json.loads(paths.alerts(cfg, "2003-06-22", "json").read_text())
+    assert doc["issue_date"] == "2003-06-22" and doc["raised"] == len(doc["alerts"])

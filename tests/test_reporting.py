@@ -91,3 +91,37 @@ def test_report_without_products_says_what_is_missing(tmp_path):
     text = report.write_report(cfg).read_text()
     assert CAUTION in text and "assim verify" in text and "assim plot" in text
     assert "<img" not in text
+
+
+def test_report_names_the_hindcast_forcing(study):
+    """Common practice, no published source: the skill section says which forcing the
+    hindcast skill used and, when the operational forecast uses another, that its skill is
+    not measured here; when they agree, it says so."""
+    cfg, _ = study
+    skill = v.verify_results(cfg)
+    assert skill.attrs["hindcast_forcing"] == "unknown"  # the synthetic hindcast records none
+    skill.attrs["hindcast_forcing"] = "observed"
+    text = " ".join(report._summary(skill, dict(cfg, forecast={"forcing": "climatology"})))
+    assert "perfect forcing" in text and "not measured here" in text and "hindcast.forcing=climatology" in text
+    text = " ".join(report._summary(skill, dict(cfg, forecast={"forcing": "observed"})))
+    assert "The same kind" in text and "not measured" not in text
+
+
+def test_report_links_figures_beyond_the_size_limit(study, tmp_path, monkeypatch):
+    """Issue case at a smaller scale (common practice, no published source): with hundreds
+    of figures past the embedding limit, the report links each one (relative path into
+    figures/) instead of embedding it, and stays small; basins without figures are listed."""
+    import shutil
+
+    cfg, _ = study
+    big = type(cfg)(dict(cfg, results=str(tmp_path / "r")))
+    shutil.copytree(paths.results(cfg), paths.results(big))
+    png = next(paths.figures(big).glob("*.png")).read_bytes()
+    for i in range(300):
+        (paths.figures(big) / plots.figure_name("hydrograph", f"extra{i:03d}")).write_bytes(png)
+    monkeypatch.setattr(report, "EMBED_LIMIT_BYTES", 2 * len(png))
+    text = report.render_report(big)
+    assert "data:image/png" not in text
+    assert text.count('href="figures/hydrograph__extra') == 300
+    assert len(text.encode()) < 400_000
+    assert "Basins without figures (1)" in text and "Alder Creek (alder)" in text

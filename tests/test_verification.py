@@ -385,7 +385,8 @@ def make_study(tmp_path, *, days=150, members=8, leads=3, every=7, hindcast=True
         ds.to_netcdf(path, encoding=_encode_time(ds, "valid_time", "issue_time"))
         out["issue_date"] = str(day)
     cfg = load_config(None, data={"prepared": str(prepared)}, results=str(results),
-                      forecast={"history_days": 20}, ensemble={"members": members, "basin_chunk": 1})
+                      forecast={"history_days": 20}, ensemble={"members": members, "basin_chunk": 1},
+                      plots={"workers": 1})  # drawn in this process, where tests can watch it
     return cfg, out
 
 

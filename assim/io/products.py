@@ -428,6 +428,7 @@ def write_forecast(
     float32: bool = True,
     attrs: Mapping[str, str] | None = None,
     commit=None,
+    assimilated: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> xr.Dataset:
     """Write ``forecast-YYYY-MM-DD.nc`` and return it.
 
@@ -438,6 +439,10 @@ def write_forecast(
     thresholds : name -> (basin,) m3 s-1 (NaN where a basin has no such level)
     analysis : "performed ..." or "not performed: ..."
     commit : the :class:`assim.io.common.FileSet` the file belongs to (with its restart)
+    assimilated : (days, values) of the days assimilated before the issue: (n,) day numbers
+        and (basin, n, member) m3 s-1, the ensemble after each day's update; written as
+        ``discharge_analysis`` on (basin, time, member) (absent when None or n = 0), so that
+        the assimilated history of daily forecasts can be pieced together
     """
     nb, nl, nm = discharge.shape
     _require_finite(discharge, path, "discharge", basins, issue_day + np.arange(1, nl + 1))
@@ -472,16 +477,29 @@ def write_forecast(
             **dict(attrs or {}),
         ),
     )
+    if assimilated is not None and len(assimilated[0]):
+        a_days, a_values = assimilated
+        ds["discharge_analysis"] = (("basin", "time", "member"), np.asarray(a_values, dtype=np.float64),
+                                    {**DISCHARGE_ATTRS, "long_name": "assimilated discharge before the issue "
+                                     "(ensemble after each day's update)"})
+        ds = ds.assign_coords(time=("time", dates(a_days), {"standard_name": "time", "axis": "T",
+                                                            "long_name": "day assimilated before the issue"}))
     ds.attrs.pop("featureType", None)  # one issue: no time series (CF-1.8 section 9)
     enc_t = {"units": TIME_UNITS, "calendar": CALENDAR, "dtype": "i4"}
     encoding = {"valid_time": enc_t, "issue_time": enc_t, "lead": {"dtype": "i4"}, "member": {"dtype": "i4"},
                 "quantile": {"_FillValue": None}}
     fdtype = "f4" if float32 else "f8"
-    for v in ("discharge", "discharge_quantile"):
-        encoding[v] = {"dtype": fdtype, "zlib": float32, "_FillValue": np.nan}
+    for v in ("discharge", "discharge_quantile", "discharge_analysis"):
+        if v in ds:
+            encoding[v] = {"dtype": fdtype, "zlib": float32, "_FillValue": np.nan}
+    if "time" in ds.coords:
+        encoding["time"] = enc_t
     encoding.update({d: {"dtype": str} for d in ("basin", "threshold")})
+    on_disk = labels_to_file(ds)
+    if "discharge_analysis" in on_disk:  # time last on disk (CF-1.8 section 2.4), as in run products
+        on_disk["discharge_analysis"] = on_disk["discharge_analysis"].transpose("basin", "member", "time")
     with atomic_path(path, commit) as tmp:
-        labels_to_file(ds).to_netcdf(tmp, encoding=encoding, format="NETCDF4")
+        on_disk.to_netcdf(tmp, encoding=encoding, format="NETCDF4")
     ds.attrs["product_path"] = str(path)
     return ds
 

@@ -235,6 +235,7 @@ def _verify(cfg, runs, hindcast, observed, thresholds, notes) -> xr.Dataset:
             crpss_openloop_reference="openloop (0 for the open loop by definition)",
             lead_0="background discharge of openloop.nc / analysis.nc (no same-day reading used)",
             exceedance="strictly above the threshold",
+            hindcast_forcing=str(hindcast.attrs.get("forcing", "unknown")) if hindcast is not None else "none",
             notes="; ".join(notes) if notes else "none",
         ),
     )

@@ -9,7 +9,7 @@ rule figures:
     output:
         directory(f"{RESULTS}/figures"),
     params:
-        settings=settings("outputs", "forecast"),
+        settings=settings("outputs", "forecast", "plots", "bulletin"),
         issue=f"--issue-date {issue_date()}" if issue_date() else "",
     log:
         f"{LOGS}/figures.log",

@@ -12,17 +12,22 @@ def _first_restart(wildcards):
 
 
 rule forecast:
-    """Ensemble forecast and flood-threshold exceedance probabilities for one issue date."""
+    """Ensemble forecast and flood-threshold exceedance probabilities for one issue date, and
+    its bulletin (page, a PNG per basin, raised alerts as JSON and CSV)."""
     input:
         PREPARED,
         _first_restart,
     output:
         f"{RESULTS}/forecasts/forecast-{{date}}.nc",
         f"{RESULTS}/forecasts/restart-{{date}}.nc",
+        f"{RESULTS}/forecasts/bulletin-{{date}}.html",
+        directory(f"{RESULTS}/forecasts/bulletin-{{date}}"),
+        f"{RESULTS}/forecasts/alerts-{{date}}.json",
+        f"{RESULTS}/forecasts/alerts-{{date}}.csv",
     wildcard_constraints:
         date=r"\d{4}-\d{2}-\d{2}",
     params:
-        settings=settings("model", "ensemble", "perturbation", "filter", "forecast"),
+        settings=settings("model", "ensemble", "perturbation", "filter", "forecast", "bulletin"),
     threads: workflow.cores
     log:
         f"{LOGS}/forecast-{{date}}.log",
