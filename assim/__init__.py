@@ -18,7 +18,7 @@ from assim.config import load_config
 
 __version__ = "0.1.0"
 
-_PIPELINE = ("prep", "check", "run", "hindcast", "forecast", "verify", "plot", "report")
+_PIPELINE = ("prep", "check", "calibrate", "run", "hindcast", "forecast", "verify", "plot", "report")
 
 __all__ = ["CAUTION", "__version__", "load_config", *_PIPELINE]
 

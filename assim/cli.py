@@ -39,6 +39,7 @@ def _parser() -> argparse.ArgumentParser:
 
     add("prep", "prepare raw records (basins.yaml, weather.csv, gauge.csv) into CF NetCDF")
     add("check", "validate the config and inputs and summarise them")
+    add("calibrate", "calibrate each basin's model parameters against its gauge (calibration.nc)")
     s = add("run", "ensemble run: open loop or assimilation of gauge readings")
     s.add_argument("--mode", choices=["openloop", "assimilate"], default="assimilate")
     s.add_argument("--restart-from", metavar="FILE", help="continue from this restart file")
@@ -97,6 +98,8 @@ def _dispatch(args: argparse.Namespace) -> str:
 
 
 def _command(cfg, args: argparse.Namespace) -> str:
+    import importlib
+
     from assim import pipeline
 
     cmd = args.command
@@ -105,6 +108,10 @@ def _command(cfg, args: argparse.Namespace) -> str:
         return f"prepared layer written to {cfg['data']['prepared']}"
     if cmd == "check":
         return pipeline.check(cfg)
+    if cmd == "calibrate":
+        ds = pipeline.calibrate(cfg)
+        summary = importlib.import_module("assim.calibration_study").summary(ds)
+        return f"calibration written: {ds.attrs.get('product_path', cfg['results'])}\n{summary}"
     if cmd == "run":
         ds = pipeline.run(cfg, mode=args.mode, restart_from=args.restart_from, until=args.until)
         return f"{args.mode} run written: {ds.attrs.get('product_path', cfg['results'])}"

@@ -36,6 +36,21 @@ def check(cfg: Config) -> str:
     return _prep.check(cfg)
 
 
+def calibrate(cfg: Config) -> xr.Dataset:
+    """Calibrate each basin's parameters against its gauge (config section ``calibration``);
+    writes calibration.nc and returns it (``attrs["product_path"]`` set). basins.yaml is
+    never rewritten: point ``model.calibrated_parameters`` at the file and run ``prep``."""
+    from assim import paths
+
+    study = importlib.import_module("assim.calibration_study")
+    bar = _progress(cfg, "calibrate")
+    try:
+        with _product_lock(paths.calibration(cfg)):
+            return study.run_calibration(cfg, progress=bar)
+    finally:
+        bar.close()
+
+
 def verify(cfg: Config) -> xr.Dataset:
     """Skill of the runs and hindcasts in ``cfg['results']``; writes skill.nc and skill.csv."""
     _verify = importlib.import_module("assim.verify")

@@ -291,8 +291,11 @@ def _daily_observations(basins: list[raw_io.Basin], readings: raw_io.Readings, d
     return (mean, day_flag, coverage, n_read, n_rej), flags, inside
 
 
-def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
+def build(cfg: Mapping, calibrated: bool = True) -> tuple[dict[str, xr.Dataset], dict]:
     """Read and validate the raw folder and build the three prepared Datasets (no writing).
+
+    With ``calibrated`` (the default) and ``model.calibrated_parameters`` set, the basins
+    listed in that calibration file take their parameters from it instead of basins.yaml.
 
     Returns
     -------
@@ -333,6 +336,14 @@ def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
     th = np.array([[b.thresholds_m3s.get(lv, np.nan) for lv in levels] for b in basins]).reshape(len(ids), len(levels))
     model = basins[0].model
     params = {p: np.array([b.parameters[p] for b in basins]) for p in basins[0].parameters}
+    source = cfg.get("model", {}).get("calibrated_parameters")
+    if calibrated and source:
+        from assim.io.calibration import calibrated_parameters
+
+        found = calibrated_parameters(source, model, list(params))
+        for j, b in enumerate(ids):
+            for p, v in found.get(b, {}).items():
+                params[p][j] = v
     basins_ds = prep_io.basins_dataset(ids, [b.name for b in basins], area, lat, lon, model, params, th,
                                        levels, [b.gauge.kind for b in basins])
     folder_out = Path(data["prepared"])

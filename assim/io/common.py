@@ -85,6 +85,8 @@ LABELS = {
     "threshold": "threshold_name",
     "experiment": "experiment_name",
     "metric": "metric_name",
+    "parameter": "parameter_name",
+    "period": "period_name",
 }
 
 # The dimension order of the products contract; on disk time comes last (CF-1.8 section 2.4).
