@@ -126,11 +126,19 @@ def run_calibration(cfg: Mapping, progress=None) -> xr.Dataset:
         raise InputError(f"only {int(n_cal[j])} days with an observed discharge in the calibration period "
                          f"(calibration.min_days is {c['min_days']})",
                          file=cfg["data"]["raw"], variable="discharge", place=f"basin '{ids[j]}'")
-    fixed_names = [n for n in model.parameter_names if n in c["fixed"]]
+    # snow_routine says which basins have snow: never searched
+    fixed_names = [n for n in model.parameter_names if n in c["fixed"] or n == "snow_routine"]
     names = tuple(n for n in model.parameter_names if n not in fixed_names)
     lo, hi = _search_box(cfg, model, names)
     nb = len(ids)
     lower, upper = np.tile(lo, (nb, 1)), np.tile(hi, (nb, 1))
+    if "snow_routine" in basins:  # a rain-only basin keeps its (unused) snow parameters
+        from assim.models.snow import NAMES
+
+        rain_only = basins["snow_routine"].values == 0
+        for j, n in enumerate(names):
+            if n in NAMES:
+                lower[rain_only, j] = upper[rain_only, j] = basins[n].values[rain_only]
     fixed = {n: basins[n].values.astype(np.float64) for n in fixed_names}
     w0 = max(c0 - warmup, 0)
     fields = {n: forcing[n].values.astype(np.float64) for n in model.forcings}

@@ -324,8 +324,10 @@ def build(cfg: Mapping, calibrated: bool = True) -> tuple[dict[str, xr.Dataset],
 
     obs_arrays, flags, inside = _daily_observations(basins, readings, weather.dates, data)
     pet = potential_evaporation(data["pet_method"], weather, lat)
+    with_snow = any(b.snow is not None for b in basins)
     forcing = prep_io.forcing_dataset(ids, weather.dates, weather.precipitation, pet, lat, lon,
-                                      pet_method=data["pet_method"])
+                                      pet_method=data["pet_method"],
+                                      temperature=0.5 * (weather.tmin + weather.tmax) if with_snow else None)
     settings = {"daily_coverage": data["daily_coverage"],
                 "max_reading_gap_hours": data["max_reading_gap_hours"], **data["qc"]}
     observations = prep_io.observations_dataset(ids, weather.dates, *obs_arrays, lat, lon,
@@ -336,6 +338,13 @@ def build(cfg: Mapping, calibrated: bool = True) -> tuple[dict[str, xr.Dataset],
     th = np.array([[b.thresholds_m3s.get(lv, np.nan) for lv in levels] for b in basins]).reshape(len(ids), len(levels))
     model = basins[0].model
     params = {p: np.array([b.parameters[p] for b in basins]) for p in basins[0].parameters}
+    if with_snow:  # one model for the run: rain-only basins switch the snow routine off
+        from assim.models import snow
+
+        model += snow.SUFFIX
+        for sp in snow.PARAMETERS:
+            params[sp.name] = np.array([(b.snow or {}).get(sp.name, sp.default) for b in basins], dtype=float)
+        params["snow_routine"] = np.array([float(b.snow is not None) for b in basins])
     source = cfg.get("model", {}).get("calibrated_parameters")
     if calibrated and source:
         from assim.io.calibration import calibrated_parameters
