@@ -235,7 +235,7 @@ def search(model, problem: Problem, settings: Settings, objective: Objective,
     settings : population, generations, tolerance, DE constants, seed
     objective : ``objective(sim, obs) -> score``, sim (basin, member, time) and obs
         (basin, 1, time), both mm d-1 with NaN where missing; larger is better (e.g.
-        :func:`assim.verify.metrics.kge`)
+        :func:`assim.verification.metrics.kge`)
     progress : called as ``progress(generation, max_generations)``
 
     Returns

@@ -22,18 +22,17 @@ flows (NSE of logs) alike; common practice, no single published source.
 
 from __future__ import annotations
 
-import importlib
 from collections.abc import Mapping
 
 import numpy as np
 import xarray as xr
 
-from assim import calibration
+from assim import calibration, preparation
 from assim.errors import ConfigError, InputError
 from assim.io import calibration as cal_io
 from assim.io import prepared as prep_io
 from assim.io.products import day_numbers
-from assim.verify import metrics
+from assim.verification import metrics
 
 
 def _composite(sim, obs):
@@ -105,9 +104,8 @@ def run_calibration(cfg: Mapping, progress=None) -> xr.Dataset:
     """
     from assim import paths
 
-    prep = importlib.import_module("assim.prep")
     c = cfg["calibration"]
-    datasets, _ = prep.build(cfg, calibrated=False)
+    datasets, _ = preparation.build(cfg, calibrated=False)
     forcing, obs, basins = datasets["forcing"], datasets["observations"], datasets["basins"]
     from assim import models
 

@@ -98,8 +98,6 @@ def _dispatch(args: argparse.Namespace) -> str:
 
 
 def _command(cfg, args: argparse.Namespace) -> str:
-    import importlib
-
     from assim import pipeline
 
     cmd = args.command
@@ -110,7 +108,9 @@ def _command(cfg, args: argparse.Namespace) -> str:
         return pipeline.check(cfg)
     if cmd == "calibrate":
         ds = pipeline.calibrate(cfg)
-        summary = importlib.import_module("assim.calibration_study").summary(ds)
+        from assim.calibration_study import summary
+
+        summary = summary(ds)
         return f"calibration written: {ds.attrs.get('product_path', cfg['results'])}\n{summary}"
     if cmd == "run":
         ds = pipeline.run(cfg, mode=args.mode, restart_from=args.restart_from, until=args.until)
@@ -136,7 +136,7 @@ def _command(cfg, args: argparse.Namespace) -> str:
 def main(argv: Sequence[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     if args.version:
-        from assim import __version__
+        from assim._version import __version__
 
         print(f"assim {__version__}")
         return 0

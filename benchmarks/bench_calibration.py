@@ -24,7 +24,7 @@ import time  # noqa: E402
 import numpy as np  # noqa: E402
 
 from assim import calibration, models  # noqa: E402
-from assim.verify import metrics  # noqa: E402
+from assim.verification import metrics  # noqa: E402
 
 TARGET_WALL_S = 300.0
 TARGET_RATIO = 3.0

@@ -9,7 +9,7 @@ import pandas as pd
 import pytest
 
 from assim import calibration, models
-from assim.verify import metrics
+from assim.verification import metrics
 
 SAMPLE = Path(__file__).resolve().parents[1] / "sample_basin"
 AREA = {"velmorra": 48.5, "oskerrin": 262.0, "tamblewyn": 915.0}

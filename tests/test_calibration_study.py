@@ -13,7 +13,7 @@ from assim.cli import main
 from assim.config import load_config
 from assim.io import prepared as prep_io
 from assim.io.calibration import read_calibration
-from assim.verify import metrics
+from assim.verification import metrics
 
 QUICK = {"start": "2013-01-01", "end": "2013-12-31", "validation_start": "2014-01-01",
          "validation_end": "2014-06-30", "warmup_days": 365, "min_days": 200, "population": 8,
@@ -30,7 +30,7 @@ def study(tmp_path):
 
 def test_calibrate_writes_scores_and_prep_takes_the_parameters(study, capsys):
     """calibration.nc holds the best member of the final population, its scores in both
-    periods (recomputed here with assim.verify.metrics), and `assim prep` with
+    periods (recomputed here with assim.verification.metrics), and `assim prep` with
     model.calibrated_parameters puts those values in basins.nc; basins.yaml is unchanged."""
     root, defaults = study
     cfg_path = write_config(root, defaults, calibration=QUICK)
@@ -119,7 +119,7 @@ def test_calibrated_parameters_beat_the_true_ones_on_the_recorded_data(tmp_path)
     ds = importlib.import_module("assim.calibration_study").run_calibration(cfg)
     truth = {"x1": [180.0, 950.0, 420.0], "x2": [-0.6, 0.45, -0.2], "x3": [55.0, 320.0, 130.0],
              "x4": [1.15, 3.4, 2.3]}
-    datasets, _ = importlib.import_module("assim.prep").build(cfg, calibrated=False)
+    datasets, _ = importlib.import_module("assim.preparation").build(cfg, calibrated=False)
     days = datasets["forcing"]["time"].values
     c0 = int(np.searchsorted(days, np.datetime64("2013-01-01")))
     c1 = int(np.searchsorted(days, np.datetime64("2017-01-01")))
