@@ -131,3 +131,21 @@ def test_calibrated_parameters_beat_the_true_ones_on_the_recorded_data(tmp_path)
     cal_kge = ds["score"].sel(period="calibration", metric="kge").values
     assert (cal_kge >= true_kge).all(), (cal_kge, true_kge)
     assert (ds["score"].sel(period="validation", metric="kge").values > 0.8).all()
+
+
+def test_figure_and_report_section(study):
+    """`assim plot` draws one calibration figure per basin (with the caution line, as every
+    figure) and `assim report` holds a calibration table with each basin's scores."""
+    root, defaults = study
+    cfg_path = write_config(root, defaults, calibration=QUICK)
+    assert main(["calibrate", "--config", str(cfg_path)]) == 0
+    assert main(["plot", "--config", str(cfg_path)]) == 0
+    for b in ("velmorra", "tamblewyn"):
+        png = root / "results" / "figures" / f"calibration__{b}.png"
+        assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert main(["report", "--config", str(cfg_path)]) == 0
+    html = (root / "results" / "report.html").read_text()
+    ds = read_calibration(root / "results" / "calibration.nc")
+    assert '<h2 id="calibration">Calibration</h2>' in html
+    assert f"{ds['score'].sel(period='validation', metric='kge').values[0]:.3f}" in html
+    assert "calibration__velmorra.png" in html
