@@ -149,3 +149,30 @@ def test_figure_and_report_section(study):
     assert '<h2 id="calibration">Calibration</h2>' in html
     assert f"{ds['score'].sel(period='validation', metric='kge').values[0]:.3f}" in html
     assert "calibration__velmorra.png" in html
+
+
+def test_snow_parameters_are_calibrated_where_a_basin_has_snow(study, capsys):
+    """With a `snow:` block on one basin the run's model is gr4j+snow: its snow parameters
+    are searched, the rain-only basin's stay fixed (search_lower == search_upper), the
+    snow_routine switch is never searched; ensemble runs refuse the model in one line until
+    they pass temperature."""
+    import yaml
+
+    root, defaults = study
+    doc = yaml.safe_load((root / "raw" / "basins.yaml").read_text())
+    doc["basins"][1]["snow"] = {"degree_day_factor": 4.0}
+    (root / "raw" / "basins.yaml").write_text(yaml.safe_dump(doc, sort_keys=False))
+    cfg_path = write_config(root, defaults, calibration=QUICK)
+    assert main(["calibrate", "--config", str(cfg_path)]) == 0
+    ds = read_calibration(root / "results" / "calibration.nc")
+    assert ds.attrs["model"] == "gr4j+snow"
+    lo, hi = ds["search_lower"], ds["search_upper"]
+    for name in ("degree_day_factor", "snow_threshold", "melt_threshold"):
+        assert float(lo.sel(basin="velmorra", parameter=name)) == float(hi.sel(basin="velmorra", parameter=name))
+        assert float(lo.sel(basin="tamblewyn", parameter=name)) < float(hi.sel(basin="tamblewyn", parameter=name))
+    assert (lo.sel(parameter="snow_routine") == hi.sel(parameter="snow_routine")).all()
+    assert list(ds["snow_routine"].values) == [0.0, 1.0]
+    assert main(["prep", "--config", str(cfg_path)]) == 0
+    capsys.readouterr()
+    assert main(["run", "--config", str(cfg_path), "--mode", "openloop"]) == 2
+    assert "needs the forcing 'temperature'" in capsys.readouterr().err
