@@ -142,9 +142,14 @@ def simulate(model, forcing: Mapping[str, np.ndarray], params: Mapping[str, np.n
     -------
     (batch, time - first) float64, mm d-1 (a transposed view of a (time, batch) array)
     """
+    series = {n: np.ascontiguousarray(np.asarray(forcing[n], dtype=np.float64).T) for n in model.forcings}
+    return _run(model, series, params, first).T
+
+
+def _run(model, series: Mapping[str, np.ndarray], params: Mapping[str, np.ndarray], first: int) -> np.ndarray:
+    """:func:`simulate` on forcing already laid out as (time, batch); returns (time, batch)."""
     prepared = model.prepare(params)
     names = tuple(model.forcings)
-    series = {n: np.ascontiguousarray(np.asarray(forcing[n], dtype=np.float64).T) for n in names}
     nt, nb = series[names[0]].shape
     state = model.initial_state(prepared)
     out = np.empty((max(nt - first, 0), nb))
@@ -152,7 +157,7 @@ def simulate(model, forcing: Mapping[str, np.ndarray], params: Mapping[str, np.n
         state, fluxes = model.step(state, {n: series[n][t] for n in names}, prepared)
         if t >= first:
             out[t - first] = fluxes["runoff"]
-    return out.T
+    return out
 
 
 def _uniforms(seed: int, keys: np.ndarray, count: int, generation: int) -> np.ndarray:
@@ -217,8 +222,10 @@ def _evaluate(model, problem: Problem, idx: np.ndarray, pos: np.ndarray,
     values = lo + pos * (hi - lo)
     params = {n: values[..., j].reshape(-1) for j, n in enumerate(problem.names)}
     params.update({n: np.repeat(v[idx], npop) for n, v in problem.fixed.items()})
-    forcing = {n: np.repeat(np.asarray(v)[idx], npop, axis=0) for n, v in problem.forcing.items()}
-    q = simulate(model, forcing, params, first=problem.warmup).reshape(nb, npop, -1)
+    # (time, basin x member) forcing built in one pass; the runoff back to time-last once,
+    # so that the objective reduces over contiguous memory
+    series = {n: np.repeat(np.asarray(v, dtype=np.float64)[idx].T, npop, axis=1) for n, v in problem.forcing.items()}
+    q = np.ascontiguousarray(_run(model, series, params, problem.warmup).T).reshape(nb, npop, -1)
     obs = problem.observed[idx, problem.warmup:][:, None, :]
     score = np.asarray(objective(q, obs), dtype=np.float64)
     return np.where(np.isfinite(score), score, -np.inf)
