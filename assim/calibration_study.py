@@ -123,7 +123,7 @@ def run_calibration(cfg: Mapping, progress=None) -> xr.Dataset:
         j = int(np.flatnonzero(few)[0])
         raise InputError(f"only {int(n_cal[j])} days with an observed discharge in the calibration period "
                          f"(calibration.min_days is {c['min_days']})",
-                         file=cfg["data"]["raw"], variable="discharge", place=f"basin '{ids[j]}'")
+                         file=f"{cfg['data']['raw']}/gauge.csv", variable="value", place=f"basin '{ids[j]}'")
     # snow_routine says which basins have snow: never searched
     fixed_names = [n for n in model.parameter_names if n in c["fixed"] or n == "snow_routine"]
     names = tuple(n for n in model.parameter_names if n not in fixed_names)
