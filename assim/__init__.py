@@ -17,7 +17,7 @@ from assim._version import __version__
 from assim.caution import CAUTION
 from assim.config import load_config
 
-_PIPELINE = ("prep", "check", "run", "hindcast", "forecast", "verify", "plot", "report")
+_PIPELINE = ("prep", "check", "calibrate", "run", "hindcast", "forecast", "verify", "plot", "report")
 
 __all__ = ["CAUTION", "__version__", "load_config", *_PIPELINE]
 

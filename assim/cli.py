@@ -44,6 +44,7 @@ def _parser() -> argparse.ArgumentParser:
 
     add("prep", "prepare raw records (basins.yaml, weather.csv, gauge.csv) into CF NetCDF")
     add("check", "validate the config and inputs and summarise them")
+    add("calibrate", "calibrate each basin's model parameters against its gauge (calibration.nc)")
     s = add("run", "ensemble run: open loop or assimilation of gauge readings")
     s.add_argument("--mode", choices=["openloop", "assimilate"], default="assimilate")
     s.add_argument("--restart-from", metavar="FILE", help="continue from this restart file")
@@ -116,6 +117,12 @@ def _command(cfg, args: argparse.Namespace) -> str:
         return f"prepared layer written to {cfg['data']['prepared']}"
     if cmd == "check":
         return pipeline.check(cfg)
+    if cmd == "calibrate":
+        ds = pipeline.calibrate(cfg)
+        from assim.calibration_study import summary
+
+        summary = summary(ds)
+        return f"calibration written: {ds.attrs.get('product_path', cfg['results'])}\n{summary}"
     if cmd == "run":
         ds = pipeline.run(cfg, mode=args.mode, restart_from=args.restart_from, until=args.until)
         return f"{args.mode} run written: {ds.attrs.get('product_path', cfg['results'])}"

@@ -29,6 +29,11 @@ def restart(cfg: Mapping, mode: str = "assimilate") -> Path:
     return results(cfg) / ("restart.nc" if mode == "assimilate" else "restart-openloop.nc")
 
 
+def calibration(cfg: Mapping) -> Path:
+    """``calibration.nc``, written by ``assim calibrate``."""
+    return results(cfg) / "calibration.nc"
+
+
 def hindcast(cfg: Mapping) -> Path:
     return results(cfg) / "hindcast.nc"
 

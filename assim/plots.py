@@ -45,7 +45,8 @@ EXPERIMENT_STYLE = {
 }
 Q_LABEL = "Discharge (m$^3$ s$^{-1}$)"
 HYDROGRAPH_DAYS = 365
-KINDS = ("hydrograph", "plume", "skill", "rank-histogram", "spread-skill", "reliability", "bulletin")
+KINDS = ("hydrograph", "plume", "skill", "rank-histogram", "spread-skill", "reliability", "bulletin",
+         "calibration")
 _DPI = 110
 # The one colour ramp of every threshold (figures, report, bulletin): pale tan for the lowest
 # level of a basin to dark umber for the highest, by value, whatever the levels are named.
@@ -472,6 +473,71 @@ def plot_reliability(skill: xr.Dataset, basin: str, threshold: str, path: str | 
 # ---------------------------------------------------------------------------------- all
 
 
+def plot_calibration(cal: xr.Dataset, basin: str, path: str | Path, *,
+                     names: Mapping[str, str] | None = None) -> Path:
+    """Calibration of one basin (calibration.nc): simulated against observed discharge over
+    the calibration and validation periods, the scores of both periods, and each parameter
+    within its searched range (the final population's spread as a bar, the value a dot).
+
+    Returns
+    -------
+    the written path
+    """
+    fig = Figure(figsize=(11, 7.5), dpi=_DPI, layout="constrained")
+    grid = fig.add_gridspec(2, 2, height_ratios=(1.3, 1))
+    ax, ax_s, ax_p = fig.add_subplot(grid[0, :]), fig.add_subplot(grid[1, 0]), fig.add_subplot(grid[1, 1])
+    c = cal.sel(basin=basin)
+    t = cal["time"].values
+    flag = cal["period_flag"].values
+    colors = {1: "#1f77b4", 2: "#d62728"}
+    for k, label in ((1, "calibration"), (2, "validation")):
+        sel = flag == k
+        if sel.any():
+            ax.axvspan(t[sel][0], t[sel][-1], color=colors[k], alpha=0.06, lw=0)
+            ax.plot(t, np.where(sel, c["discharge_simulated"].values, np.nan), color=colors[k], lw=1.0,
+                    label=f"simulated, {label}")
+    ax.plot(t, c["discharge_observed"].values, color="k", lw=0.6, alpha=0.8, label="observed")
+    ax.set_ylabel("discharge (m3 s-1)")
+    ax.legend(loc="upper right", fontsize=8, ncols=3)
+    _date_axis(ax)
+    objective = cal.attrs.get("objective", "kge")
+    ax.set_title(f"{_title(basin, names)}: calibrated {cal.attrs.get('model', '')} ({objective}), "
+                 f"calibration {cal.attrs.get('calibration_period', '')}, validation "
+                 f"{cal.attrs.get('validation_period', '')}", fontsize=10)
+    metrics = [str(m) for m in cal["metric"].values]
+    x = np.arange(len(metrics))
+    for k, period in enumerate(cal["period"].values):
+        v = c["score"].sel(period=period).values
+        bars = ax_s.bar(x + (k - 0.5) * 0.38, v, 0.38, color=colors[k + 1], label=str(period))
+        ax_s.bar_label(bars, labels=[f"{y:.2f}" if np.isfinite(y) else "" for y in v], fontsize=7)
+    ax_s.set_xticks(x, metrics)
+    ax_s.axhline(0, color="k", lw=0.6)
+    ax_s.set_ylim(min(0.0, float(np.nanmin(c["score"].values)) - 0.05) if np.isfinite(c["score"].values).any()
+                  else 0.0, 1.08)
+    ax_s.set_title("scores by period", fontsize=10)
+    ax_s.legend(fontsize=8, loc="lower right")
+    params = [str(p) for p in cal["parameter"].values]
+    lo, hi = c["search_lower"].values, c["search_upper"].values
+    width = np.where(hi > lo, hi - lo, 1.0)
+    pop = (c["population"].values - lo) / width
+    best = (np.array([float(c[p]) for p in params]) - lo) / width
+    y = np.arange(len(params))
+    ax_p.hlines(y, 0, 1, color="#bbbbbb", lw=6)
+    ax_p.hlines(y, pop.min(axis=0), pop.max(axis=0), color="#1f77b4", lw=6, alpha=0.6, label="final population")
+    ax_p.plot(best, y, "o", color="k", ms=5, label="calibrated")
+    for j, p in enumerate(params):
+        fixed = hi[j] <= lo[j]
+        ax_p.text(1.02, j, f"{float(c[p]):.4g}" + (" (fixed)" if fixed else f"  [{lo[j]:g}, {hi[j]:g}]"),
+                  va="center", fontsize=7)
+    ax_p.set_yticks(y, params)
+    ax_p.set_xlim(-0.02, 1.6)
+    ax_p.set_xticks([0, 0.5, 1], ["low", "mid", "high"])
+    ax_p.invert_yaxis()
+    ax_p.set_title("parameters within the searched range", fontsize=10)
+    ax_p.legend(fontsize=7, loc="lower right")
+    return _save(fig, Path(path))
+
+
 def _inputs(cfg: Mapping):
     """(observed, names) from the prepared layer, each None when the file is absent."""
     from assim.io.prepared import read_basins, read_observations, usable_discharge
@@ -536,6 +602,9 @@ def _draw_basin(folder: Path, basin: str, data: Mapping) -> list[str]:
                 t = str(skill["threshold"].values[k])
                 out.append(plot_reliability(skill, basin, t, folder / figure_name("reliability", basin, t),
                                             names=names))
+    cal = data.get("calibration")
+    if cal is not None:
+        out.append(plot_calibration(cal, basin, folder / figure_name("calibration", basin), names=names))
     fc = data["forecast"]
     if fc is not None:
         out.append(plot_plume(fc, observed, basin, folder / figure_name("plume", basin, data["day"]),
@@ -605,16 +674,23 @@ def plot_results(cfg: Mapping, issue_date: str | None = None) -> list[Path]:
             runs[exp] = ds if t1 is None else ds.sel(time=slice(t1 - pd.Timedelta(days=HYDROGRAPH_DAYS - 1), t1))
     s_path = paths.skill(cfg, "nc")
     skill = read_skill(s_path) if s_path.is_file() else None
+    c_path = paths.calibration(cfg)
+    cal = None
+    if c_path.is_file():
+        from assim.io.calibration import read_calibration
+
+        cal = read_calibration(c_path)
     fc, day = None, None
     if f_path is not None:
         fc = open_product(f_path, ("exceedance_probability", "valid_time"),
                           any_of=("discharge", "discharge_quantile"), load=True)
         day = str(fc.attrs.get("issue_date", f_path.stem[len("forecast-"):]))[:10]
-    if not runs and skill is None and fc is None:
-        raise InputError("nothing to draw: no run, skill or forecast product found "
-                         "(run `assim run`, `assim verify` or `assim forecast` first)", file=paths.results(cfg))
+    if not runs and skill is None and fc is None and cal is None:
+        raise InputError("nothing to draw: no run, skill, calibration or forecast product found "
+                         "(run `assim run`, `assim verify`, `assim calibrate` or `assim forecast` first)",
+                         file=paths.results(cfg))
 
-    ids = list(dict.fromkeys(str(b) for ds in (*runs.values(), skill, fc) if ds is not None
+    ids = list(dict.fromkeys(str(b) for ds in (*runs.values(), skill, fc, cal) if ds is not None
                              for b in ds["basin"].values))
     wanted = [str(b) for b in cfg.get("outputs", {}).get("figures", [])]
     if wanted:
@@ -633,7 +709,8 @@ def plot_results(cfg: Mapping, issue_date: str | None = None) -> list[Path]:
                   "observed": None if observed is None or b not in observed["basin"].values
                   else observed.sel(basin=[b]),
                   "runs": {e: ds.sel(basin=[b]) for e, ds in runs.items() if b in ds["basin"].values},
-                  "skill": _slice(skill, b), "forecast": _slice(fc, b), "day": day, "history_days": history})
+                  "skill": _slice(skill, b), "forecast": _slice(fc, b), "calibration": _slice(cal, b),
+                  "day": day, "history_days": history})
              for b in basins]
     workers = int(cfg.get("plots", {}).get("workers", 0)) or (os.cpu_count() or 1)
     with output_lock(folder / ".figures.lock", "drawing figures"):

@@ -335,8 +335,11 @@ def check_plausible(basins: list[raw_io.Basin], weather: raw_io.Weather, reading
                     file=gauge, variable="value", place=f"basin '{b.id}'")
 
 
-def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
+def build(cfg: Mapping, calibrated: bool = True) -> tuple[dict[str, xr.Dataset], dict]:
     """Read and validate the raw folder and build the three prepared Datasets (no writing).
+
+    With ``calibrated`` (the default) and ``model.calibrated_parameters`` set, the basins
+    listed in that calibration file take their parameters from it instead of basins.yaml.
 
     Returns
     -------
@@ -365,8 +368,10 @@ def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
 
     obs_arrays, flags, inside = _daily_observations(basins, readings, weather.dates, data)
     pet = potential_evaporation(data["pet_method"], weather, lat)
+    with_snow = any(b.snow is not None for b in basins)
     forcing = prep_io.forcing_dataset(ids, weather.dates, weather.precipitation, pet, lat, lon,
-                                      pet_method=data["pet_method"])
+                                      pet_method=data["pet_method"],
+                                      temperature=0.5 * (weather.tmin + weather.tmax) if with_snow else None)
     settings = {"daily_coverage": data["daily_coverage"],
                 "max_reading_gap_hours": data["max_reading_gap_hours"], **data["qc"]}
     observations = prep_io.observations_dataset(ids, weather.dates, *obs_arrays, lat, lon,
@@ -377,6 +382,21 @@ def build(cfg: Mapping) -> tuple[dict[str, xr.Dataset], dict]:
     th = np.array([[b.thresholds_m3s.get(lv, np.nan) for lv in levels] for b in basins]).reshape(len(ids), len(levels))
     model = basins[0].model
     params = {p: np.array([b.parameters[p] for b in basins]) for p in basins[0].parameters}
+    if with_snow:  # one model for the run: rain-only basins switch the snow routine off
+        from assim.models import snow
+
+        model += snow.SUFFIX
+        for sp in snow.PARAMETERS:
+            params[sp.name] = np.array([(b.snow or {}).get(sp.name, sp.default) for b in basins], dtype=float)
+        params["snow_routine"] = np.array([float(b.snow is not None) for b in basins])
+    source = cfg.get("model", {}).get("calibrated_parameters")
+    if calibrated and source:
+        from assim.io.calibration import calibrated_parameters
+
+        found = calibrated_parameters(source, model, list(params))
+        for j, b in enumerate(ids):
+            for p, v in found.get(b, {}).items():
+                params[p][j] = v
     basins_ds = prep_io.basins_dataset(ids, [b.name for b in basins], area, lat, lon, model, params, th,
                                        levels, [b.gauge.kind for b in basins])
     folder_out = Path(data["prepared"])

@@ -41,6 +41,7 @@ _KIND_TITLES = {
     "rank-histogram": "Rank histograms",
     "spread-skill": "Spread-skill ratio",
     "reliability": "Reliability",
+    "calibration": "Calibration",
 }
 
 _CSS = """
@@ -116,10 +117,11 @@ def render_report(cfg: Mapping) -> str:
         f"<code>{_e(paths.results(cfg))}</code>.</p>",
         "<nav>" + " ".join(
             f'<a href="#{a}">{t}</a>' for a, t in (("provenance", "Settings"), ("summary", "Skill summary"),
-                                                   ("basins", "Basins"))) + "</nav>",
+                                                   ("calibration", "Calibration"), ("basins", "Basins"))) + "</nav>",
     ]
     out += _provenance(cfg, __version__)
     out += _summary(skill, cfg)
+    out += _calibration(cfg, names)
     out.append('<h2 id="basins">Basins</h2>')
     if basins:
         out.append("<p>" + " ".join(f'<a href="#{_anchor(b)}">{_e(_name(b, names))}</a>' for b in basins) + "</p>")
@@ -314,6 +316,33 @@ def _summary(skill: xr.Dataset | None, cfg: Mapping | None = None) -> list[str]:
     notes = skill.attrs.get("notes", "none")
     if notes and notes != "none":
         out.append(f'<p class="note">Notes: {_e(notes)}</p>')
+    return out
+
+
+def _calibration(cfg: Mapping, names: Mapping[str, str]) -> list[str]:
+    """The calibration section: each basin's parameters and its scores in both periods."""
+    path = paths.calibration(cfg)
+    if not path.is_file():
+        return []
+    from assim.io.calibration import read_calibration
+
+    cal = read_calibration(path)
+    params = [str(p) for p in cal["parameter"].values]
+    metrics = [str(m) for m in cal["metric"].values]
+    out = ['<h2 id="calibration">Calibration</h2>',
+           f"<p>{_e(cal.attrs.get('method', ''))}; objective {_e(cal.attrs.get('objective', ''))}, "
+           f"calibration {_e(cal.attrs.get('calibration_period', ''))}, validation "
+           f"{_e(cal.attrs.get('validation_period', ''))}, warm-up {_e(cal.attrs.get('warmup_days', ''))} days "
+           f"(<code>{_e(path)}</code>). The figures are in each basin's section.</p>",
+           "<table><tr><th class=l>basin</th>" + "".join(f"<th>{_e(p)}</th>" for p in params)
+           + "".join(f"<th>{_e(m)} cal</th><th>{_e(m)} val</th>" for m in metrics) + "<th>generations</th></tr>"]
+    for j, b in enumerate(cal["basin"].values):
+        score = cal["score"].values[j]
+        cells = "".join(f"<td>{float(cal[p].values[j]):.4g}</td>" for p in params)
+        cells += "".join(f"<td>{score[0, k]:.3f}</td><td>{score[1, k]:.3f}</td>" for k in range(len(metrics)))
+        out.append(f'<tr><td class=l>{_e(_name(str(b), names))}</td>{cells}'
+                   f"<td>{int(cal['generations'].values[j])}</td></tr>")
+    out.append("</table>")
     return out
 
 

@@ -14,9 +14,11 @@ subprocess, for their own peak memory; the rest in this process), and tabulates 
 4. whole assimilation runs against the baselines in the same configuration (stochastic EnKF,
    no innovation gate, one core): one basin of 100 members over 20 years and 100 basins of
    100 members over one year, for assim, ``baseline_loop.run`` and ``baseline_filterpy.run``;
-5. the demo workflow: ``snakemake`` on a copy of ``config/config.yaml`` in a temporary folder
+5. calibration (``bench_calibration.run``): 100 basins x 10 years in one batch against one
+   basin alone (``assim.calibration.search``, DE, population 40);
+6. the demo workflow: ``snakemake`` on a copy of ``config/config.yaml`` in a temporary folder
    (raw data from the repository's ``sample_basin``), package installation excluded;
-6. one ordinary day of operation (``bench_daily.run``): the `issue` target's commands
+7. one ordinary day of operation (``bench_daily.run``): the `issue` target's commands
    (`assim prep` with the day's records appended, `assim forecast`) for 100 basins x 64
    members with a 5- and a 10-year record, to show the cost does not grow with the record.
 
@@ -53,6 +55,7 @@ sys.path.insert(1, str(REPO))
 
 import baseline_filterpy  # noqa: E402
 import baseline_loop  # noqa: E402
+import bench_calibration  # noqa: E402
 import bench_daily  # noqa: E402
 import bench_engine  # noqa: E402
 import bench_filters  # noqa: E402
@@ -418,7 +421,28 @@ def baseline_rows(quick: bool, figures: dict) -> list[Row]:
     return rows
 
 
-# ---------------------------------------------------------------- 5. the demo workflow
+# ---------------------------------------------------------------- 5. calibration
+
+
+def calibration_rows(quick: bool, figures: dict) -> list[Row]:
+    _log("calibration (bench_calibration): batch of basins, then one basin alone")
+    f = bench_calibration.run(quick=quick)
+    figures["calibration"] = f
+    b, s = f["batch"], f["single"]
+    what = (f"{b['basins']} basins x {b['years']} y after 1 y warm-up, GR4J, KGE, DE population 40, "
+            f"{b['generations_mean']:.0f} generations on average (max {b['generations_max']}); one thread")
+    return [
+        Row("calibration, batch of basins", what, f"{b['wall_s']:.0f} s wall ({b['cpu_s']:.0f} s CPU)",
+            target=f"<= {bench_calibration.TARGET_WALL_S:.0f} s", met=f["met_wall"]),
+        Row("calibration, cost per basin-year", f"the batch above against 1 basin x {s['years']} y alone "
+            f"({s['wall_s']:.1f} s wall, {s['generations_mean']:.0f} generations)",
+            f"{1e3 * b['per_basin_year_s']:.0f} ms batched, {1e3 * s['per_basin_year_s']:.0f} ms alone",
+            ratio=f["ratio_per_basin_year"], target=f"batched <= {bench_calibration.TARGET_RATIO:g}x alone",
+            met=f["met_ratio"]),
+    ]
+
+
+# ---------------------------------------------------------------- 6. the demo workflow
 
 
 def demo_rows(quick: bool, figures: dict, shortened: bool = False) -> list[Row]:
@@ -498,7 +522,7 @@ def run(quick: bool = False, demo: bool = False) -> tuple[dict, list[Row]]:
     parts = {}
     # The engine first, while this process is small (see _engine); the table keeps the
     # order of the module docstring.
-    for section in (engine_rows, gr4j_rows, analysis_rows, baseline_rows):
+    for section in (engine_rows, gr4j_rows, analysis_rows, baseline_rows, calibration_rows):
         name = section.__name__.removesuffix("_rows")
         load[name] = os.getloadavg()[0]
         parts[name] = section(quick, figures)
@@ -507,7 +531,7 @@ def run(quick: bool = False, demo: bool = False) -> tuple[dict, list[Row]]:
     load["daily"] = os.getloadavg()[0]
     parts["daily"] = daily_rows(quick, figures)
     load["end"] = os.getloadavg()[0]
-    for name in ("gr4j", "analysis", "engine", "baseline", "demo", "daily"):
+    for name in ("gr4j", "analysis", "engine", "baseline", "calibration", "demo", "daily"):
         rows += parts[name]
     if quick:  # small sizes: the targets are not judged
         for r in rows:

@@ -587,3 +587,37 @@ def test_appending_a_day_changes_no_earlier_day_and_repeats_are_counted(tmp_path
     for v in ("discharge", "qc_flag", "coverage", "n_readings", "n_rejected"):
         np.testing.assert_array_equal(after[v].values[:, :-1], before[v].values, err_msg=v)
     assert "gauge rows repeating another exactly (dropped): 1" in prep.check(cfg)
+# ---------------------------------------------------------------------------------- snow
+
+
+def test_snow_block_brings_temperature_and_the_wrapped_model(tmp_path):
+    """A basin with a `snow:` block makes the run's model `gr4j+snow`: forcing.nc gets the
+    daily mean temperature (tmin + tmax) / 2 in degC, the snow basin its parameters (the
+    others their defaults) with snow_routine 1, the rain-only basin snow_routine 0; without
+    any block nothing changes (no temperature, model gr4j)."""
+    text = BASINS_YAML.replace("    gauge: {kind: discharge}\n",
+                               "    gauge: {kind: discharge}\n    snow: {degree_day_factor: 4.5}\n")
+    raw = make_raw(tmp_path / "raw", basins_yaml=text)
+    out = prep.prepare(config(raw, tmp_path / "prepared"))
+    f, b = out["forcing"], out["basins"]
+    assert b.attrs["model"] == "gr4j+snow"
+    np.testing.assert_array_equal(f["temperature"].values, np.full((2, DAYS.size), 7.0))
+    assert f["temperature"].attrs["units"] == "degC"
+    assert list(b["snow_routine"].values) == [0.0, 1.0]
+    assert list(b["degree_day_factor"].values) == [3.0, 4.5]
+    back = prep_io.read_forcing(tmp_path / "prepared" / "forcing.nc")
+    np.testing.assert_array_equal(back["temperature"].values, f["temperature"].values)
+    plain = prep.prepare(config(make_raw(tmp_path / "raw2"), tmp_path / "prepared2"))
+    assert "temperature" not in plain["forcing"] and plain["basins"].attrs["model"] == "gr4j"
+
+
+@pytest.mark.parametrize("block, variable", [("{melt_rate: 3}", "snow.melt_rate"),
+                                             ("{degree_day_factor: 40}", "snow.degree_day_factor"),
+                                             ("[1, 2]", "snow")])
+def test_bad_snow_block(tmp_path, block, variable):
+    text = BASINS_YAML.replace("    gauge: {kind: discharge}\n", f"    gauge: {{kind: discharge}}\n    snow: {block}\n")
+    raw = make_raw(tmp_path / "raw", basins_yaml=text)
+    with pytest.raises(InputError) as info:
+        prep.prepare(config(raw, tmp_path / "prepared"))
+    assert info.value.variable == variable and info.value.place == "basin 'beta'"
+    assert not (tmp_path / "prepared").exists()

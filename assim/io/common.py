@@ -354,9 +354,9 @@ def global_attributes(title: str, *, product: bool = True, feature_type: str | N
 # compliance-checker 5 reports no failure for them (its monotonicity check of coordinate
 # variables raises on strings and is skipped). Files written before kept the labels as
 # ``basin_id(basin)``, ...: readers still accept those.
-LABELS = ("basin", "threshold", "experiment", "metric")
+LABELS = ("basin", "threshold", "experiment", "metric", "parameter", "period")
 _EARLIER_LABELS = {"basin": "basin_id", "threshold": "threshold_name", "experiment": "experiment_name",
-                   "metric": "metric_name"}
+                   "metric": "metric_name", "parameter": "parameter_name", "period": "period_name"}
 
 def labels_to_file(ds):
     """String labels of the dimensions as variable-length strings (netCDF-4 ``string``)."""

@@ -88,7 +88,7 @@ def _base(basins: Sequence[str], dates, latitude, longitude) -> xr.Dataset:
 
 
 def forcing_dataset(basins, dates, precipitation, pet, latitude, longitude, *,
-                    pet_method: str = "") -> xr.Dataset:
+                    pet_method: str = "", temperature=None) -> xr.Dataset:
     """The forcing.nc Dataset.
 
     Parameters
@@ -98,6 +98,8 @@ def forcing_dataset(basins, dates, precipitation, pet, latitude, longitude, *,
     precipitation, pet : (basin, time) float64, mm d-1
     latitude, longitude : (basin,) float64, degrees
     pet_method : how PET was obtained (recorded in the ``pet`` attributes)
+    temperature : (basin, time) float64, degC, the daily mean air temperature (for a snow
+        routine), or None
     """
     ds = _base(basins, dates, latitude, longitude)
     ds["precipitation"] = (("basin", "time"), np.asarray(precipitation, dtype=float), {
@@ -110,6 +112,10 @@ def forcing_dataset(basins, dates, precipitation, pet, latitude, longitude, *,
     })
     if not pet_method:
         del ds["pet"].attrs["comment"]
+    if temperature is not None:
+        ds["temperature"] = (("basin", "time"), np.asarray(temperature, dtype=float), {
+            "standard_name": "air_temperature", "long_name": "basin mean air temperature, (tmin + tmax) / 2",
+            "units": "degC", "cell_methods": "time: mean"})
     ds.attrs = global_attributes("assim prepared forcing", product=False)
     return ds
 
@@ -348,7 +354,9 @@ def check_forcing(ds: xr.Dataset, path, start=None, end=None) -> None:
         if neg.any():
             raise InputError("negative values", file=path, variable=name, place=_first_bad(neg, ids, days))
     lo, hi = _period_index(days, path, start, end)
-    for name in ("precipitation", "pet"):
+    for name in ("precipitation", "pet", "temperature"):
+        if name == "temperature" and name not in ds:
+            continue
         nan = ~np.isfinite(ds[name].values[:, lo:hi])
         if nan.any():
             raise InputError("missing (NaN) value inside the run period", file=path, variable=name,
@@ -477,7 +485,7 @@ def _read_forcing(path, start, end) -> tuple[xr.Dataset, np.ndarray]:
     """The forcing over [start, end] and the file's whole daily axis."""
     ds = _open(path)
     check_forcing(ds, path, start, end)
-    ds = _float64(ds, ("precipitation", "pet"))
+    ds = _float64(ds, ("precipitation", "pet", "temperature") if "temperature" in ds else ("precipitation", "pet"))
     days = ds["time"].values.astype("datetime64[D]")
     lo, hi = _period_index(days, path, start, end)
     return ds.isel(time=slice(lo, hi)), days

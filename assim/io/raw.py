@@ -68,6 +68,7 @@ class Basin:
     parameters: dict[str, float]
     thresholds_m3s: dict[str, float]
     gauge: Gauge
+    snow: dict[str, float] | None = None  # degree-day snow parameters; None: rain only
 
 
 @dataclass(frozen=True)
@@ -230,6 +231,31 @@ def _model_parameters(model_name, raw, file, place) -> dict[str, float]:
     return out
 
 
+def _snow_parameters(raw, file, place) -> dict[str, float]:
+    """The ``snow:`` block of a basin: any of the snow routine's parameters (the others take
+    their defaults); an empty block means the defaults."""
+    from assim.models import snow
+
+    spec = {p.name: p for p in snow.PARAMETERS if p.name != "snow_routine"}
+    if raw is None:
+        raw = {}
+    if not isinstance(raw, Mapping):
+        raise InputError(f"must be a mapping of snow parameters ({', '.join(spec)})", file=file,
+                         variable="snow", place=place)
+    unknown = sorted(set(raw) - set(spec))
+    if unknown:
+        raise InputError(f"the snow routine has no parameter {unknown[0]!r} (it has {', '.join(spec)})",
+                         file=file, variable=f"snow.{unknown[0]}", place=place)
+    out = {}
+    for name, p in spec.items():
+        x = _number(raw[name], file, f"snow.{name}", place) if name in raw else p.default
+        if not p.low <= x <= p.high:
+            raise InputError(f"{x} is outside the valid range [{p.low}, {p.high}] {p.unit}",
+                             file=file, variable=f"snow.{name}", place=place)
+        out[name] = x
+    return out
+
+
 def read_basins_yaml(path: str | Path, select: Sequence[str] = ()) -> list[Basin]:
     """Read and validate basins.yaml.
 
@@ -274,7 +300,7 @@ def read_basins_yaml(path: str | Path, select: Sequence[str] = ()) -> list[Basin
         if bid in seen:
             raise InputError("duplicated basin id", file=path, variable="id", place=place)
         seen.add(bid)
-        bad = sorted(set(raw) - _BASIN_KEYS)
+        bad = sorted(set(raw) - _BASIN_KEYS - {"snow"})
         if bad:
             raise InputError(f"unknown key {bad[0]!r}", file=path, variable=bad[0], place=place)
         for key in sorted(_BASIN_KEYS - set(raw)):
@@ -305,7 +331,8 @@ def read_basins_yaml(path: str | Path, select: Sequence[str] = ()) -> list[Basin
                                  variable="thresholds_m3s", place=place)
             thresholds[level] = _number(value, path, f"thresholds_m3s.{level}", place, positive=True)
         gauge = _gauge(raw["gauge"], path, place)
-        out.append(Basin(bid, raw["name"].strip(), area, lat, lon, model, params, thresholds, gauge))
+        snow = _snow_parameters(raw["snow"], path, place) if "snow" in raw else None
+        out.append(Basin(bid, raw["name"].strip(), area, lat, lon, model, params, thresholds, gauge, snow))
     models_used = {b.model for b in out}
     if len(models_used) > 1:
         first = out[0]

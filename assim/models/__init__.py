@@ -6,10 +6,11 @@
 >>> state, fluxes = m.step(state, {"precipitation": p, "pet": e}, params)
 
 Built in: ``gr4j`` (:mod:`assim.models.gr4j`) and ``linear_reservoir``
-(:mod:`assim.models.linear_reservoir`). A user model joins with :func:`register`.
+(:mod:`assim.models.linear_reservoir`). A user model joins with :func:`register`. Any model
+behind the degree-day snow routine (:mod:`assim.models.snow`): ``get("gr4j+snow")``.
 """
 
-from assim.models import gr4j, linear_reservoir
+from assim.models import gr4j, linear_reservoir, snow
 from assim.models.base import (
     Model,
     Parameter,
@@ -30,4 +31,5 @@ __all__ = [
     "gr4j",
     "linear_reservoir",
     "register",
+    "snow",
 ]

@@ -179,12 +179,19 @@ def register(model: Model) -> Model:
 
 
 def get(name: str) -> Model:
-    """The model registered under ``name``; KeyError naming the known models otherwise."""
-    try:
+    """The model registered under ``name``; KeyError naming the known models otherwise.
+
+    ``"<model>+snow"`` is any registered model behind the degree-day snow routine
+    (:func:`assim.models.snow.wrap`), built on first use."""
+    if name in _REGISTRY:
         return _REGISTRY[name]
-    except KeyError:
-        known = ", ".join(sorted(_REGISTRY))
-        raise KeyError(f"unknown model {name!r}; known models: {known}") from None
+    base = name.removesuffix("+snow")
+    if base != name and base in _REGISTRY:
+        from assim.models import snow
+
+        return snow.wrap(_REGISTRY[base])
+    known = ", ".join(sorted(_REGISTRY))
+    raise KeyError(f"unknown model {name!r}; known models: {known} (each also as <model>+snow)")
 
 
 def available() -> tuple[str, ...]:

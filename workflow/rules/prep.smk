@@ -2,10 +2,12 @@ rule prep:
     """Raw records (basins.yaml, weather.csv, gauge.csv) -> prepared CF NetCDF."""
     input:
         RAW,
+        # parameters from `assim calibrate`, when the config points at them
+        [CFG["model"]["calibrated_parameters"]] if CFG["model"]["calibrated_parameters"] else [],
     output:
         PREPARED,
     params:
-        settings=settings("data"),
+        settings=settings("data", "model"),
     log:
         f"{LOGS}/prep.log",
     shell:
