@@ -210,6 +210,7 @@ class Settings:
     time_block_days: int = 365
     scheduler: str = "threads"
     workers: int = 0
+    kernel: str = "auto"
 
     @property
     def assimilate(self) -> bool:
@@ -248,7 +249,7 @@ def settings_from_config(cfg: Mapping, model: Model, mode: str) -> Settings:
     else:
         write = ()
     oe, tr, inf = fil["obs_error"], fil["transform"], fil["inflation"]
-    return Settings(
+    settings = Settings(
         mode=mode,
         members=int(ens["members"]),
         seed=int(ens["seed"]),
@@ -280,7 +281,16 @@ def settings_from_config(cfg: Mapping, model: Model, mode: str) -> Settings:
         time_block_days=int(ens["time_block_days"]),
         scheduler=str(ens["scheduler"]),
         workers=int(ens["workers"]),
+        kernel=str(ens.get("kernel", "auto")),
     )
+    if settings.kernel == "compiled":
+        from assim.fused_block import kernel_choice
+
+        why = kernel_choice(model, settings)
+        if why is not None:
+            raise ConfigError(f"the compiled kernel cannot run this: {why}", file=getattr(cfg, "source", None),
+                              variable="ensemble.kernel")
+    return settings
 
 
 # ---------------------------------------------------------------- initial ensemble
@@ -607,6 +617,16 @@ def advance(
     -------
     BlockResult
     """
+    if issue_index is None and not check_daily:
+        from assim import fused_block
+
+        if fused_block.applicable(model, settings):
+            r = fused_block.advance(model, inputs, state, settings, t0, t1, members=members,
+                                    first_output=first_output, first_analysis=first_analysis,
+                                    collect=collect, fixed=fixed)
+            if r is not None:
+                return r
+            check_daily = True  # a state went non-finite: the numpy path names it
     nb, nm = inputs.n_basin, len(members)
     ns = model.n_state
     s = settings
