@@ -13,10 +13,9 @@ Entry points (each returns the xarray Dataset it wrote)::
 The assimilation step alone: :mod:`assim.filters` (numpy only).
 """
 
+from assim._version import __version__
 from assim.caution import CAUTION
 from assim.config import load_config
-
-__version__ = "0.1.0"
 
 _PIPELINE = ("prep", "check", "run", "hindcast", "forecast", "verify", "plot", "report")
 

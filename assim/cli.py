@@ -129,7 +129,7 @@ def _command(cfg, args: argparse.Namespace) -> str:
 def main(argv: Sequence[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     if args.version:
-        from assim import __version__
+        from assim._version import __version__
 
         print(f"assim {__version__}")
         return 0

@@ -7,9 +7,6 @@ Each function takes a validated :class:`assim.config.Config`, reads inputs throu
 
 from __future__ import annotations
 
-# Submodules are imported by name: `from assim import verify` would find the package-level
-# entry point of the same name (assim.__getattr__) instead of the module.
-import importlib
 from pathlib import Path
 
 import xarray as xr
@@ -21,37 +18,41 @@ def prep(cfg: Config) -> dict[str, xr.Dataset]:
     """Raw records -> prepared layer; returns {"forcing", "observations", "basins"} Datasets.
 
     Holds the prepared folder's lock while writing (a second ``prep`` is refused)."""
+    from assim import preparation
     from assim.io.common import output_lock
 
-    _prep = importlib.import_module("assim.prep")
     folder = Path(cfg["data"]["prepared"])
     with output_lock(folder / ".prepared.lock", "the prepared layer",
                      [folder / n for n in ("forcing.nc", "observations.nc", "basins.nc")]):
-        return _prep.prepare(cfg)
+        return preparation.prepare(cfg)
 
 
 def check(cfg: Config) -> str:
     """Validate config and inputs; return a short summary for a person."""
-    _prep = importlib.import_module("assim.prep")
-    return _prep.check(cfg)
+    from assim import preparation
+
+    return preparation.check(cfg)
 
 
 def verify(cfg: Config) -> xr.Dataset:
     """Skill of the runs and hindcasts in ``cfg['results']``; writes skill.nc and skill.csv."""
-    _verify = importlib.import_module("assim.verify")
-    return _verify.verify_results(cfg)
+    from assim.verification.results import verify_results
+
+    return verify_results(cfg)
 
 
 def plot(cfg: Config, issue_date: str | None = None) -> list[Path]:
     """Every figure of the results folder (PNG); returns the written paths."""
-    plots = importlib.import_module("assim.plots")
+    from assim import plots
+
     return plots.plot_results(cfg, issue_date=issue_date)
 
 
 def report(cfg: Config) -> Path:
     """The self-contained HTML report; returns its path."""
-    _report = importlib.import_module("assim.report")
-    return _report.write_report(cfg)
+    from assim import reporting
+
+    return reporting.write_report(cfg)
 
 
 # ---------------------------------------------------------------- runs, hindcasts, forecasts

@@ -275,7 +275,7 @@ def plot_skill_by_lead(skill: xr.Dataset, basin: str, path: str | Path, *,
 
     Parameters
     ----------
-    skill : the skill Dataset (:func:`assim.verify.verify_results`)
+    skill : the skill Dataset (:func:`assim.verification.verify_results`)
     basin : basin id
     path : PNG to write
 

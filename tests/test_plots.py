@@ -6,10 +6,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from matplotlib.image import imread
-from test_verify import make_study  # the synthetic study shared by the product tests
+from test_verification import make_study  # the synthetic study shared by the product tests
 
 import assim.plots as plots
-import assim.verify as v
+import assim.verification as v
 from assim import paths
 from assim.caution import CAUTION_SHORT
 from assim.errors import InputError

@@ -128,11 +128,11 @@ def _compliance(path: Path, tmp_path: Path) -> dict:
 
 @pytest.fixture(scope="module")
 def sample_prepared(tmp_path_factory):
-    import assim.prep
+    import assim.preparation
 
     out = tmp_path_factory.mktemp("sample")
     cfg = load_config(None, data={"raw": str(REPO / "sample_basin"), "prepared": str(out)})
-    return out, assim.prep.prepare(cfg)
+    return out, assim.preparation.prepare(cfg)
 
 
 @pytest.mark.filterwarnings("ignore::DeprecationWarning")

@@ -86,9 +86,9 @@ def test_skill_nc_passes_the_cf_checker(tmp_path):
     import json
 
     from compliance_checker.runner import CheckSuite, ComplianceChecker
-    from test_verify import make_study
+    from test_verification import make_study
 
-    import assim.verify as v
+    import assim.verification as v
 
     cfg, _ = make_study(tmp_path, forecast=False)
     path = v.verify_results(cfg).attrs["product_path"]

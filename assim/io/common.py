@@ -9,6 +9,7 @@ import tempfile
 from collections.abc import Iterable, Iterator
 from pathlib import Path
 
+from assim._version import __version__
 from assim.caution import CAUTION
 from assim.errors import AssimWarning, RunError
 
@@ -59,7 +60,6 @@ def global_attributes(title: str, *, product: bool = True, **extra: str) -> dict
 
     Products (everything but the prepared inputs) carry the caution text.
     """
-    from assim import __version__
 
     now = _dt.datetime.now(_dt.UTC).replace(microsecond=0).isoformat()
     attrs = {

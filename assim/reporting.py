@@ -14,8 +14,6 @@ import base64
 import datetime as _dt
 import hashlib
 import html
-import sys
-import types
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 
@@ -24,6 +22,7 @@ import xarray as xr
 import yaml
 
 from assim import paths
+from assim._version import __version__
 from assim.caution import CAUTION
 from assim.io.common import atomic_path
 from assim.io.skill import read_skill
@@ -84,7 +83,6 @@ def write_report(cfg: Mapping) -> Path:
 
 def render_report(cfg: Mapping) -> str:
     """The report's HTML text (see :func:`write_report`)."""
-    from assim import __version__
 
     s_path = paths.skill(cfg, "nc")
     skill = read_skill(s_path) if s_path.is_file() else None
@@ -301,14 +299,3 @@ def _basin_section(basin: str, names: Mapping[str, str], skill: xr.Dataset | Non
     out.append("</section>")
     return out
 
-
-class _CallableModule(types.ModuleType):
-    """``assim.report`` is both this module and the entry point ``assim.report(cfg)``: once
-    the module is imported it shadows the entry point on ``assim``, so calling the module
-    does what the entry point does."""
-
-    def __call__(self, cfg):
-        return write_report(cfg)
-
-
-sys.modules[__name__].__class__ = _CallableModule

@@ -23,8 +23,6 @@ ones: they neither enter the mean nor cover time.
 from __future__ import annotations
 
 import importlib
-import sys
-import types
 from collections.abc import Mapping
 from pathlib import Path
 
@@ -452,13 +450,3 @@ def check(cfg: Mapping) -> str:
                      f"{pf.sizes['time']} days; {state}")
     return "\n".join(lines)
 
-
-class _CallableModule(types.ModuleType):
-    """``assim.prep`` is both this module and the entry point ``assim.prep(cfg)``: once the
-    module is imported it replaces the package attribute, so calling it must prepare."""
-
-    def __call__(self, cfg: Mapping) -> dict[str, xr.Dataset]:
-        return prepare(cfg)
-
-
-sys.modules[__name__].__class__ = _CallableModule

@@ -1,4 +1,4 @@
-"""Tests of assim.verify: metrics against reference libraries, published values and hand
+"""Tests of assim.verification: metrics against reference libraries, published values and hand
 computations; verify_results on small synthetic product files."""
 
 from __future__ import annotations
@@ -11,7 +11,7 @@ import scoringrules
 import xarray as xr
 from scipy import stats
 
-import assim.verify as v
+import assim.verification as v
 from assim.config import load_config
 from assim.errors import InputError
 
@@ -439,7 +439,7 @@ def test_verify_results_writes_tidy_csv_and_counts_usable_readings(tmp_path):
 
 def test_verify_results_matches_metric_functions_on_hindcast(tmp_path):
     """Common practice, no published source: a hindcast lead is scored on valid day
-    issue_time + lead; NSE of the median equals assim.verify.nse on those pairs."""
+    issue_time + lead; NSE of the median equals assim.verification.nse on those pairs."""
     cfg, truth = make_study(tmp_path)
     ds = v.verify_results(cfg)
     usable = _usable(truth)
@@ -466,11 +466,18 @@ def test_verify_results_skips_absent_hindcast_and_needs_a_product(tmp_path):
         v.verify_results(cfg)
 
 
-def test_package_is_callable_like_the_entry_point(tmp_path):
-    """Common practice, no published source: `assim.verify(cfg)` keeps working after the
-    assim.verify package has been imported (it shadows the entry point on `assim`)."""
-    import assim
+def test_entry_point_and_module_have_distinct_names(tmp_path):
+    """Common practice, no published source: `assim.verify` is the entry point whatever was
+    imported before it (the metrics live in `assim.verification`, a module of another
+    name), so `from assim import verify` never returns a module."""
+    import types
 
+    import assim
+    import assim.verification
+    from assim import pipeline, verify
+
+    assert verify is pipeline.verify and not isinstance(verify, types.ModuleType)
+    assert isinstance(assim.verification, types.ModuleType)
     cfg, _ = make_study(tmp_path, hindcast=False, forecast=False)
     ds = assim.verify(cfg)
     assert ds.attrs["product_path"].endswith("skill.nc")
@@ -488,7 +495,7 @@ def _to_quantiles(path, qs=(0.05, 0.25, 0.5, 0.75, 0.95)):
 
 def test_verify_results_on_quantile_products(tmp_path):
     """Common practice, no published source: a run written as quantiles is scored by its
-    median (deterministic metrics equal assim.verify.nse of the 0.5 quantile); ensemble
+    median (deterministic metrics equal assim.verification.nse of the 0.5 quantile); ensemble
     metrics are not scored (n = 0) and leave no CSV row."""
     cfg, truth = make_study(tmp_path, hindcast=False, forecast=False)
     q = _to_quantiles(tmp_path / "results" / "openloop.nc")
@@ -507,7 +514,7 @@ def test_verify_results_on_quantile_products(tmp_path):
 def test_climatology_crps_against_hand_built_sample():
     """Reference library: properscoring.crps_ensemble of the sample of every usable value
     within 15 days of the day of year (all years), built by hand with pandas."""
-    from assim.verify.results import climatology_crps
+    from assim.verification.results import climatology_crps
 
     rng = np.random.default_rng(13)
     days = pd.date_range("2001-01-01", "2004-12-31", freq="D")

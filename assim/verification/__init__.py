@@ -1,14 +1,11 @@
-"""Verification: metrics on numpy arrays (:mod:`assim.verify.metrics`) and the skill of
+"""Verification: metrics on numpy arrays (:mod:`assim.verification.metrics`) and the skill of
 the run and hindcast products (:func:`verify_results`, writing skill.nc and skill.csv).
 
 Metric functions take arrays with time on the last axis of ``obs`` and members on the last
-axis of ``ens`` (time second-last); see :mod:`assim.verify.metrics` for the conventions.
+axis of ``ens`` (time second-last); see :mod:`assim.verification.metrics` for the conventions.
 """
 
-import sys
-import types
-
-from assim.verify.metrics import (
+from assim.verification.metrics import (
     Reliability,
     brier_score,
     count_pairs,
@@ -30,8 +27,8 @@ from assim.verify.metrics import (
 
 
 def verify_results(cfg):
-    """Skill of every product in ``cfg["results"]``; see :func:`assim.verify.results.verify_results`."""
-    from assim.verify.results import verify_results as _verify_results
+    """Skill of every product in ``cfg["results"]``; see :func:`assim.verification.results.verify_results`."""
+    from assim.verification.results import verify_results as _verify_results
 
     return _verify_results(cfg)
 
@@ -57,14 +54,3 @@ __all__ = [
     "verify_results",
 ]
 
-
-class _CallableModule(types.ModuleType):
-    """``assim.verify`` is both this package and the entry point ``assim.verify(cfg)``: once
-    the package is imported it shadows the entry point on ``assim``, so calling the package
-    does what the entry point does."""
-
-    def __call__(self, cfg):
-        return verify_results(cfg)
-
-
-sys.modules[__name__].__class__ = _CallableModule

@@ -1,4 +1,4 @@
-"""Tests of assim.report: one self-contained HTML file with the caution, provenance, skill
+"""Tests of assim.reporting: one self-contained HTML file with the caution, provenance, skill
 and every figure embedded."""
 
 from __future__ import annotations
@@ -9,12 +9,12 @@ import re
 from html.parser import HTMLParser
 
 import pytest
-from test_verify import make_study  # the synthetic study shared by the product tests
+from test_verification import make_study  # the synthetic study shared by the product tests
 
 import assim
 import assim.plots as plots
-import assim.report as report
-import assim.verify as v
+import assim.reporting as report
+import assim.verification as v
 from assim import paths
 from assim.caution import CAUTION
 

@@ -36,7 +36,7 @@ from assim.errors import InputError
 from assim.io.common import global_attributes
 from assim.io.products import open_product
 from assim.io.skill import write_skill
-from assim.verify import metrics as m
+from assim.verification import metrics as m
 
 EXPERIMENTS = ("openloop", "assimilation")
 RUN_MODES = {"openloop": "openloop", "assimilation": "assimilate"}

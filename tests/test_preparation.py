@@ -1,4 +1,4 @@
-"""Tests of assim.prep: rating, QC, daily means, PET, prepare/check and bad raw inputs."""
+"""Tests of assim.preparation: rating, QC, daily means, PET, prepare/check and bad raw inputs."""
 
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-import assim.prep as prep
+import assim.preparation as prep
 from assim.config import load_config
 from assim.errors import AssimError, InputError
 from assim.evaporation import day_of_year, extraterrestrial_radiation, oudin
@@ -329,6 +329,23 @@ def test_assim_prep_is_the_entry_point(good, tmp_path):
     cfg, _ = good
     out = assim.prep(config(Path(cfg["data"]["raw"]), tmp_path / "p"))
     assert set(out) == {"forcing", "observations", "basins"}
+
+
+def test_second_prep_in_one_process_takes_the_lock(good, tmp_path):
+    """Common practice, no published source: every caller of ``assim.prep`` goes through
+    the prepared folder's lock, so a second prep while the first holds it is refused
+    (LockError) and writes nothing."""
+    import assim
+    from assim.errors import LockError
+    from assim.io.common import output_lock
+
+    cfg, _ = good
+    prepared = tmp_path / "p"
+    second = config(Path(cfg["data"]["raw"]), prepared)
+    with output_lock(prepared / ".prepared.lock", "the prepared layer"):
+        with pytest.raises(LockError):
+            assim.prep(second)
+    assert not (prepared / "forcing.nc").exists()
 
 
 # ---------------------------------------------------------------------------------- bad inputs
