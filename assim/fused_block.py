@@ -86,7 +86,7 @@ def advance(model, inputs, state, settings, t0, t1, *, members, first_output, fi
         np.ascontiguousarray(inputs.pet[:, t0:t1], dtype=np.float64), first_day, dh, ck, e_prev, ar1, area,
         np.ascontiguousarray(y, dtype=np.float64), np.ascontiguousarray(r, dtype=np.float64), analysed,
         s.method, s.inflation, s.rtps, s.rtpp, s.gate_sigma, True, transform, upd,
-        np.ascontiguousarray(lower[:, upd].T), np.ascontiguousarray(upper[:, upd].T), wcols,
+        np.ascontiguousarray(lower[:, upd].T), np.ascontiguousarray(upper[:, upd].T), wcols, spreads=assim,
     )
     if not ok:
         return None
@@ -109,7 +109,7 @@ def advance(model, inputs, state, settings, t0, t1, *, members, first_output, fi
     collapse_first = np.full(nb, -1, dtype=np.int64)
     if assim and nt:
         used_blk, gated_blk = out["used"], out["gated"]
-        spread_b = en._member_sd(q_blk)
+        spread_b = out["spread_before"]
         n_used += used_blk.sum(axis=1)
         n_gated += gated_blk.sum(axis=1)
         a_days = np.flatnonzero(analysed)
@@ -119,8 +119,8 @@ def advance(model, inputs, state, settings, t0, t1, *, members, first_output, fi
         if n_out:
             arrays["innovation"] = out["innovation"][:, k_out0:].copy()
             arrays["innovation_variance"] = out["innovation_variance"][:, k_out0:].copy()
-            arrays["spread_before"] = spread_b[:, k_out0:]
-            arrays["spread_after"] = en._member_sd(qa_blk[:, k_out0:])
+            arrays["spread_before"] = spread_b[:, k_out0:].copy()
+            arrays["spread_after"] = out["spread_after"][:, k_out0:].copy()
             arrays["observed_discharge"] = obs_blk[:, k_out0:].copy()
             arrays["clipped_water"] = out["clipped_water"][:, k_out0:].copy()
             arrays["obs_status"] = np.where(used_blk, en.OBS_USED, np.where(

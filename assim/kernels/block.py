@@ -254,9 +254,22 @@ def analyse_basin(X, c0, N, upd, q, y, r, z, method, gamma, rtps, rtpp, gate, ce
 
 
 @numba.njit(**_JIT)
+def _spread(a, N):
+    """Ensemble standard deviation (ddof = 1) of a (N,) row, two passes."""
+    mean = 0.0
+    for i in range(N):
+        mean += a[i]
+    mean /= N
+    ss = 0.0
+    for i in range(N):
+        ss += (a[i] - mean) * (a[i] - mean)
+    return math.sqrt(ss / (N - 1))
+
+
+@numba.njit(**_JIT)
 def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e, ar1, area,
            y, r, analyse, method, gamma, rtps, rtpp, gate, centre, tr_kind, tr_off, tr_lam,
-           upd, lo, hi, wcols, q_out, qa_out, w_out, innov, ivar, clip, used, gated):
+           upd, lo, hi, wcols, q_out, qa_out, w_out, innov, ivar, clip, used, gated, sd_b, sd_a):
     """Every basin of the chunk over the block's days; returns False if a discharge or a
     state went non-finite (the caller then runs the block on the numpy path, which names
     the first bad day)."""
@@ -323,6 +336,9 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
                 clip[b, k] = cw / N
             for i in range(N):
                 qa_out[b, k, i] = q[i]
+            if sd_b.shape[0]:  # the discharge spreads before and after, as engine._member_sd
+                sd_b[b, k] = _spread(q_out[b, k], N)
+                sd_a[b, k] = _spread(q, N) if ana else sd_b[b, k]
             for j in range(wcols.size):
                 for i in range(N):
                     w_out[j, b, k, i] = X[wcols[j], c0 + i]
@@ -334,7 +350,7 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
 
 
 def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y, r, analyse,
-              method, gamma, rtps, rtpp, gate, centre, transform, upd, lo, hi, wcols):
+              method, gamma, rtps, rtpp, gate, centre, transform, upd, lo, hi, wcols, spreads=False):
     """Advance a chunk over a block in one compiled call (see the module docstring).
 
     Parameters
@@ -355,6 +371,7 @@ def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y
     method : str; gamma, rtps, rtpp, gate : float (gate 0: none); centre : bool
     transform : (kind, offset, lambda); upd : (n_u,) int rows updated; lo, hi : (n_u,
         basin * member) their bounds; wcols : (n_w,) int, state rows recorded
+    spreads : also return the member spreads of the discharge before and after the analysis
 
     Returns
     -------
@@ -362,7 +379,7 @@ def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y
     arrays : dict with ``discharge`` and ``discharge_analysis`` (basin, day, member),
         ``states`` (n_w, basin, day, member), ``innovation``, ``innovation_variance``,
         ``clipped_water`` (basin, day, NaN/0 where not analysed), ``used``, ``gated``
-        (basin, day) bool
+        (basin, day) bool, and with ``spreads`` ``spread_before``, ``spread_after`` (basin, day)
     """
     nb, nt = prec.shape
     N = X.shape[1] // max(nb, 1)
@@ -374,6 +391,8 @@ def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y
     clip = np.zeros((nb, nt))
     used = np.zeros((nb, nt), dtype=np.bool_)
     gated = np.zeros((nb, nt), dtype=np.bool_)
+    sd_b = np.empty((nb, nt) if spreads else (0, 0))
+    sd_a = np.empty((nb, nt) if spreads else (0, 0))
     kind, offset, lam = transform
     if kind == "boxcox" and lam == 0.0:
         kind = "log"
@@ -382,8 +401,8 @@ def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y
         np.asarray(ar1, dtype=np.float64), area, y, r, analyse, METHOD_CODES[method], float(gamma),
         float(rtps), float(rtpp), float(gate), bool(centre), TRANSFORM_CODES[kind], float(offset),
         float(lam), np.asarray(upd, dtype=np.int64), lo, hi, np.asarray(wcols, dtype=np.int64),
-        q_out, qa_out, w_out, innov, ivar, clip, used, gated,
+        q_out, qa_out, w_out, innov, ivar, clip, used, gated, sd_b, sd_a,
     )
     return bool(ok), {"discharge": q_out, "discharge_analysis": qa_out, "states": w_out,
                       "innovation": innov, "innovation_variance": ivar, "clipped_water": clip,
-                      "used": used, "gated": gated}
+                      "used": used, "gated": gated, "spread_before": sd_b, "spread_after": sd_a}
