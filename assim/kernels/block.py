@@ -254,6 +254,14 @@ def analyse_basin(X, c0, N, upd, q, y, r, z, method, gamma, rtps, rtpp, gate, ce
 
 
 @numba.njit(**_JIT)
+def _normal_row(ck, dh, zc, zs):
+    """The normal pairs of the counters ``ck (N,)`` on one day pair (a loop of its own, so
+    that the compiler pipelines it)."""
+    for i in range(ck.size):
+        zc[i], zs[i] = normal_pair(ck[i], dh)
+
+
+@numba.njit(**_JIT)
 def _spread(a, N):
     """Ensemble standard deviation (ddof = 1) of a (N,) row, two passes."""
     mean = 0.0
@@ -277,10 +285,10 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
     phi_p, c_p, s_p, h_p, phi_e, c_e, s_e, h_e = ar1[0], ar1[1], ar1[2], ar1[3], ar1[4], ar1[5], ar1[6], ar1[7]
     first_pair = first_day >> 1
     enkf = method == 0
-    zsp = np.empty(N)
-    zse = np.empty(N)
-    zso = np.empty(N)
-    z = np.empty(N)
+    zn = np.empty((6, N))
+    zcp, zsp, zce, zse, zco, zso = zn[0], zn[1], zn[2], zn[3], zn[4], zn[5]
+    fp = np.empty(N)
+    fe = np.empty(N)
     q = np.empty(N)
     yp = np.empty(N)
     u = np.empty(N)
@@ -292,39 +300,31 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
             day = first_day + k
             jp = (day >> 1) - first_pair
             odd = day & 1
-            fresh = odd == 0 or k == 0  # the pair's normals are not yet drawn
+            if odd == 0 or k == 0:  # the pair's normals, cosine (even day) and sine (odd day)
+                _normal_row(ck_p[b], dh[jp], zcp, zsp)
+                _normal_row(ck_e[b], dh[jp], zce, zse)
+                if enkf and (analyse[k] or (k + 1 < nt and analyse[k + 1])):
+                    _normal_row(ck_o[b], dh[jp], zco, zso)
+            zp = zsp if odd else zcp
+            ze = zse if odd else zce
+            z = zso if odd else zco
             pk = prec[b, k]
             ek = pet[b, k]
             ana = analyse[k] and math.isfinite(y[b, k])
             for i in range(N):
-                if fresh:
-                    zc, zsp[i] = normal_pair(ck_p[b, i], dh[jp])
-                    zp = zsp[i] if odd else zc
-                    zc, zse[i] = normal_pair(ck_e[b, i], dh[jp])
-                    ze = zse[i] if odd else zc
-                else:
-                    zp = zsp[i]
-                    ze = zse[i]
                 # assim.perturb.LognormalAR1: stationary AR(1) log error, multiplier exp(s e - s^2/2)
-                ep = phi_p * e_p[b, i] + c_p * zp
-                ee = phi_e * e_e[b, i] + c_e * ze
+                ep = phi_p * e_p[b, i] + c_p * zp[i]
+                ee = phi_e * e_e[b, i] + c_e * ze[i]
                 e_p[b, i] = ep
                 e_e[b, i] = ee
-                fp = math.exp(s_p * ep - h_p) * pk
-                fe = math.exp(s_e * ee - h_e) * ek
-                runoff = _step_member(code, X, c0 + i, P, kk, fp, fe)
+                fp[i] = math.exp(s_p * ep - h_p) * pk
+                fe[i] = math.exp(s_e * ee - h_e) * ek
+            for i in range(N):
+                runoff = _step_member(code, X, c0 + i, P, kk, fp[i], fe[i])
                 q[i] = runoff * area[b]
                 q_out[b, k, i] = q[i]
                 if not math.isfinite(q[i]):
                     good = False
-            if enkf and fresh and (analyse[k] or (k + 1 < nt and analyse[k + 1])):
-                # the observation normals of the pair (the sine one serves the odd day)
-                for i in range(N):
-                    zc, zso[i] = normal_pair(ck_o[b, i], dh[jp])
-                    z[i] = zso[i] if odd else zc
-            elif enkf and not fresh:
-                for i in range(N):
-                    z[i] = zso[i]
             if ana:
                 u_, g_, inn, iv, cw = analyse_basin(
                     X, c0, N, upd, q, y[b, k], r[b, k], z, method, gamma, rtps, rtpp, gate,
