@@ -25,6 +25,7 @@ CONFIG_KEYS: dict[str, tuple[str, ...]] = {
     "time_block_days": ("ensemble", "time_block_days"),
     "scheduler": ("ensemble", "scheduler"),
     "workers": ("ensemble", "workers"),
+    "kernel": ("ensemble", "kernel"),
     "spinup_days": ("period", "spinup_days"),
     "method": ("filter", "method"),
     "transform": ("filter", "transform", "kind"),
@@ -82,7 +83,7 @@ def settings_from_config(cfg: Mapping, model: Model, mode: str) -> Settings:
     update = tuple(n for n in names if n in chosen)  # model order
     write = names if out["all_states"] else update if out["states"] else ()
     oe = fil["obs_error"]
-    return Settings(
+    settings = Settings(
         mode=mode,
         precipitation=pt.LognormalAR1(float(per["precipitation_cv"]), float(per["precipitation_ar1"])),
         pet=pt.LognormalAR1(float(per["pet_cv"]), float(per["pet_ar1"])),
@@ -95,3 +96,11 @@ def settings_from_config(cfg: Mapping, model: Model, mode: str) -> Settings:
         write_states=write,
         **plain,
     )
+    if settings.kernel == "compiled":
+        from assim.engine.fused import kernel_choice
+
+        why = kernel_choice(model, settings)
+        if why is not None:
+            raise ConfigError(f"the compiled kernel cannot run this: {why}", file=getattr(cfg, "source", None),
+                              variable="ensemble.kernel")
+    return settings

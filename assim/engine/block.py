@@ -456,6 +456,16 @@ def advance(
     -------
     BlockResult
     """
+    if issue_index is None and not check_daily:
+        from assim.engine import fused
+
+        if fused.applicable(model, settings):
+            r = fused.advance(model, inputs, state, settings, t0, t1, members=members,
+                              first_output=first_output, first_analysis=first_analysis,
+                              collect=collect, fixed=fixed)
+            if r is not None:
+                return r
+            check_daily = True  # a state went non-finite: the numpy path names it
     if not check_daily:
         try:
             return _advance(model, inputs, state, settings, t0, t1, members, first_output, first_analysis, collect,

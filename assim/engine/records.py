@@ -194,6 +194,7 @@ class Settings:
     time_block_days: int = 365
     scheduler: str = "threads"
     workers: int = 0
+    kernel: str = "auto"
 
     @property
     def assimilate(self) -> bool:

@@ -216,8 +216,7 @@ def prepare(params: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
         ``x1..x4`` as contiguous (batch,) float64; ``_uh1`` (batch, k1) and ``_uh2``
         (batch, k2), the Fortran-ordered ordinates already multiplied by the 0.9 and 0.1
         shares, where k1 = ceil(max X4) and k2 = ceil(2 max X4) over the batch; ``_inv_x1``
-        = 1/X1, ``_perc_x1`` = 4/(9 X1), ``_inv_x3`` = 1/X3, ``_exchange`` = X2 / X3^(7/2),
-        and the constants ``_zero`` and ``_one`` (numpy is faster with array operands).
+        = 1/X1, ``_perc_x1`` = 4/(9 X1), ``_inv_x3`` = 1/X3 and ``_exchange`` = X2 / X3^(7/2).
     """
     if "_uh1" in params:
         return params  # type: ignore[return-value]
@@ -242,8 +241,6 @@ def prepare(params: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
         "_perc_x1": (4.0 / 9.0) / x1,
         "_inv_x3": 1.0 / x3,
         "_exchange": x2 / (x3 * x3 * x3 * np.sqrt(x3)),
-        "_zero": np.zeros(x1.shape[0]),
-        "_one": np.ones(x1.shape[0]),
     }
 
 
@@ -269,111 +266,106 @@ def initial_state(params: Mapping[str, np.ndarray]) -> np.ndarray:
 
 
 _PREPARED_ROWS = ("x1", "x3", "_inv_x1", "_perc_x1", "_inv_x3", "_exchange")
-_N_WORK = 6  # scratch rows per block
+
+
+# ---------------------------------------------------------------- the formulas, written once
+#
+# production() and routing() are element-wise: every argument is a float or an array (all
+# broadcast together), and they use only +, -, *, /, sqrt, minimum, maximum and tanh. The
+# numpy step applies them to a block of the batch; assim.kernels compiles the same function
+# objects with numba for one member at a time. Both give the same bits but for tanh (numpy's
+# and the C library's may differ in the last unit).
+
+
+def production(S, p, e, x1, ix1, px1):
+    """The production store over one day: interception, store update, percolation.
+
+    Parameters
+    ----------
+    S : start-of-day production store, mm
+    p, e : precipitation and PET, mm d-1
+    x1, ix1, px1 : X1 (mm), 1 / X1 and 4 / (9 X1) (from :func:`prepare`)
+
+    Returns
+    -------
+    S_end, pn, ae, perc, pr : the new store (mm) and the day's net rainfall, actual
+        evaporation (interception + Es), percolation and the water routed on (mm d-1)
+    """
+    d = p - e
+    pn = np.maximum(d, 0.0)  # Perrin et al. (2003), appendix: Pn = P - E if P >= E
+    ae = np.minimum(p, e)  # interception: the part of E met by P
+    # tanh is odd and at most one of Pn, En is non-zero: one tanh serves both.
+    u = np.tanh(d * ix1)
+    ta = np.maximum(u, 0.0)  # tanh(Pn / X1)
+    tb = ta - u  # tanh(En / X1), En = E - P if E > P
+    s = S * ix1
+    ps = (x1 - S * s) * ta / (s * ta + 1.0)  # Perrin et al. (2003), appendix: Ps = X1 (1 - (S/X1)^2) tanh(Pn/X1) / (1 + S/X1 tanh(Pn/X1))
+    ps = np.minimum(ps, pn)  # Ps <= Pn holds exactly; keep it so under rounding
+    c = tb - s * tb  # (1 - S/X1) tanh(En/X1)
+    es = (c + tb) * S / (c + 1.0)  # Perrin et al. (2003), appendix: Es = S (2 - S/X1) tanh(En/X1) / (1 + (1 - S/X1) tanh(En/X1))
+    es = np.minimum(es, S)  # Es <= S holds exactly; keep it so under rounding
+    s1 = S - es + ps  # Perrin et al. (2003), appendix: S = S - Es + Ps
+    t = s1 * px1
+    t = t * t
+    t = t * t
+    S_end = s1 / np.sqrt(np.sqrt(t + 1.0))  # S (1 + (4/9 S/X1)^4)^(-1/4)
+    perc = s1 - S_end  # Perrin et al. (2003), appendix: Perc = S (1 - (1 + (4/9 S/X1)^4)^(-1/4))
+    pr = pn - ps + perc  # Perrin et al. (2003), appendix: Pr = Perc + (Pn - Ps)
+    return S_end, pn, ae + es, perc, pr
+
+
+def routing(R, q9, q1, x3, ix3, cx):
+    """The routing store and the direct branch over one day.
+
+    Parameters
+    ----------
+    R : start-of-day routing store, mm
+    q9, q1 : the day's outputs of UH1 (0.9 branch) and UH2 (0.1 branch), mm d-1
+    x3, ix3, cx : X3 (mm), 1 / X3 and X2 / X3^(7/2) (from :func:`prepare`)
+
+    Returns
+    -------
+    R_end, qr, qd, exchange, q : the new store (mm), routed and direct runoff, the exchange
+        actually applied to both branches and the runoff Q = Qr + Qd (mm d-1)
+    """
+    f = np.sqrt(R) * R * R * R * cx  # Perrin et al. (2003), appendix: F = X2 (R/X3)^(7/2)
+    qd = np.maximum(q1 + f, 0.0)  # Perrin et al. (2003), appendix: Qd = max(0, Q1 + F)
+    fd = qd - q1  # exchange actually applied to the direct branch
+    rq = R + q9
+    r1 = np.maximum(rq + f, 0.0)  # Perrin et al. (2003), appendix: R = max(0, R + Q9 + F)
+    fr = r1 - rq  # exchange actually applied to the routing store
+    t = r1 * ix3
+    t = t * t
+    t = t * t
+    R_end = np.minimum(r1 / np.sqrt(np.sqrt(t + 1.0)), x3)  # R_end < X3 holds exactly; keep it so under rounding
+    qr = r1 - R_end  # Perrin et al. (2003), appendix: Qr = R (1 - (1 + (R/X3)^4)^(-1/4))
+    return R_end, qr, qd, fr + fd, qr + qd  # Perrin et al. (2003), appendix: Q = Qr + Qd
 
 
 def _block(S, R, U1, U2, p, e, x1, x3, ix1, px1, ix3, cx, o1, o2,
-           S_out, Z1, Z2, f_pn, f_ae, f_perc, f_ex, f_qr, f_qd, f_q, zero, one, w, clear):
+           S_out, Z1, Z2, f_pn, f_ae, f_perc, f_ex, f_qr, f_qd, f_q, clear):
     """Advance one block of b elements (every argument is a view of the caller's arrays).
 
     S, R : (b,) start-of-day stores; U1, U2 : (b, k - 1) unit-hydrograph slots in use;
     p, e : (b,) forcing; x1 .. cx : (b,) prepared parameters; o1, o2 : (b, k) ordinates;
     S_out : (b,) and Z1, Z2 : (b, k) the new state from column 1 and from the last UH1
-    column on; f_* : (b,) fluxes; zero, one : (b,) constant arrays (faster than scalar
-    operands in numpy); w : (_N_WORK, b) scratch; clear : whether Z2[:, 0] must end as 0.
-
-    Written as in-place numpy calls with positional outputs: at small batch the cost is the
-    number of calls, at large batch the number of passes over the block.
+    column on; f_* : (b,) fluxes; clear : whether Z2[:, 0] must end as 0.
     """
-    mul, add, sub, div, sqrt = np.multiply, np.add, np.subtract, np.divide, np.sqrt
-    vmax, vmin = np.maximum, np.minimum
-    w0, w1, w2, w3, w4, w5 = w
-
-    # Interception: E is met by P first; Pn = max(P - E, 0), En = max(E - P, 0).
-    d = sub(p, e, w0)
-    pn = vmax(d, zero, out=f_pn)  # Perrin et al. (2003), appendix: Pn = P - E if P >= E
-    ae = vmin(p, e, out=f_ae)  # interception: the part of E met by P
-    # tanh is odd and at most one of Pn, En is non-zero: one tanh serves both.
-    u = mul(d, ix1, w1)
-    np.tanh(u, u)
-    ta = vmax(u, zero, out=w2)  # tanh(Pn / X1)
-    tb = sub(ta, u, w1)  # tanh(En / X1), En = E - P if E > P
-
-    # Production store.
-    s = mul(S, ix1, w3)
-    ps = mul(S, s, w4)
-    sub(x1, ps, ps)
-    mul(ps, ta, ps)
-    den = mul(s, ta, w5)
-    add(den, one, den)
-    div(ps, den, ps)  # Perrin et al. (2003), appendix: Ps = X1 (1 - (S/X1)^2) tanh(Pn/X1) / (1 + S/X1 tanh(Pn/X1))
-    vmin(ps, pn, out=ps)  # Ps <= Pn holds exactly; keep it so under rounding
-    v = mul(s, tb, w5)
-    c = sub(tb, v, w3)  # (1 - S/X1) tanh(En/X1)
-    es = add(c, tb, w2)
-    mul(es, S, es)
-    add(c, one, c)
-    div(es, c, es)  # Perrin et al. (2003), appendix: Es = S (2 - S/X1) tanh(En/X1) / (1 + (1 - S/X1) tanh(En/X1))
-    vmin(es, S, out=es)  # Es <= S holds exactly; keep it so under rounding
-    add(ae, es, ae)
-    s1 = sub(S, es, w3)
-    add(s1, ps, s1)  # Perrin et al. (2003), appendix: S = S - Es + Ps
-
-    # Percolation.
-    t = mul(s1, px1, w5)
-    mul(t, t, t)
-    mul(t, t, t)
-    add(t, one, t)
-    sqrt(t, t)
-    sqrt(t, t)
-    div(s1, t, S_out)  # S (1 + (4/9 S/X1)^4)^(-1/4)
-    perc = sub(s1, S_out, f_perc)  # Perrin et al. (2003), appendix: Perc = S (1 - (1 + (4/9 S/X1)^4)^(-1/4))
-    pr = sub(pn, ps, w4)
-    add(pr, perc, pr)  # Perrin et al. (2003), appendix: Pr = Perc + (Pn - Ps)
-
-    # Groundwater exchange from the routing store level at the start of the day.
-    f = sqrt(R, w2)
-    mul(f, R, f)
-    mul(f, R, f)
-    mul(f, R, f)
-    mul(f, cx, f)  # Perrin et al. (2003), appendix: F = X2 (R/X3)^(7/2)
-
+    S_out[...], f_pn[...], f_ae[...], f_perc[...], pr = production(S, p, e, x1, ix1, px1)
     # Unit hydrographs: today's share leaves now, the rest moves one day closer. Z[:, 0] is
     # the day's output and Z[:, 1:] the new slots; Z1[:, 0] is the routing-store column and
     # Z2[:, 0] the last UH1 column of the new state, used as scratch until overwritten.
-    mul(o2, pr[:, None], Z2)
+    np.multiply(o2, pr[:, None], out=Z2)
     if U2.shape[1]:
-        add(Z2[:, :-1], U2, Z2[:, :-1])
-    q1 = Z2[:, 0]  # Perrin et al. (2003), appendix: Q1 = 0.1 sum_k UH2(k) Pr(t - k + 1)
-
-    # Direct branch.
-    qd = add(q1, f, f_qd)
-    vmax(qd, zero, out=qd)  # Perrin et al. (2003), appendix: Qd = max(0, Q1 + F)
-    fd = sub(qd, q1, w1)  # exchange actually applied to the direct branch
+        np.add(Z2[:, :-1], U2, out=Z2[:, :-1])
+    q1 = Z2[:, 0].copy()  # Perrin et al. (2003), appendix: Q1 = 0.1 sum_k UH2(k) Pr(t - k + 1)
     if clear:
-        Z2[:, 0] = zero  # a UH1 slot beyond every time base of the batch
-
-    mul(o1, pr[:, None], Z1)
+        Z2[:, 0] = 0.0  # a UH1 slot beyond every time base of the batch
+    np.multiply(o1, pr[:, None], out=Z1)
     if U1.shape[1]:
-        add(Z1[:, :-1], U1, Z1[:, :-1])
+        np.add(Z1[:, :-1], U1, out=Z1[:, :-1])
     q9 = Z1[:, 0]  # Perrin et al. (2003), appendix: Q9 = 0.9 sum_k UH1(k) Pr(t - k + 1)
-
-    # Routing store.
-    rq = add(R, q9, w0)
-    r1 = add(rq, f, w3)
-    vmax(r1, zero, out=r1)  # Perrin et al. (2003), appendix: R = max(0, R + Q9 + F)
-    fr = sub(r1, rq, w0)  # exchange actually applied to the routing store
-    t = mul(r1, ix3, w5)
-    mul(t, t, t)
-    mul(t, t, t)
-    add(t, one, t)
-    sqrt(t, t)
-    sqrt(t, t)
-    R_out = div(r1, t, Z1[:, 0])
-    vmin(R_out, x3, out=R_out)  # R_end < X3 holds exactly; keep it so under rounding
-    qr = sub(r1, R_out, f_qr)  # Perrin et al. (2003), appendix: Qr = R (1 - (1 + (R/X3)^4)^(-1/4))
-    add(fr, fd, f_ex)
-    add(qr, qd, f_q)  # Perrin et al. (2003), appendix: Q = Qr + Qd
+    Z1[:, 0], f_qr[...], f_qd[...], f_ex[...], f_q[...] = routing(R, q9, q1, x3, ix3, cx)
 
 
 def step(
@@ -420,16 +412,15 @@ def step(
         state[:, 0], state[:, 1], state[:, _C1:_C1 + m1], state[:, _C2:_C2 + m2], p, e,
         *(q[k] for k in _PREPARED_ROWS), o1, o2,
         out[:, 0], out[:, 1:2 + m1], out[:, _C2 - 1:_C2 + m2],
-        f_pn, f_ae, f_perc, f_ex, f_qr, f_qd, f_q, q["_zero"], q["_one"],
+        f_pn, f_ae, f_perc, f_ex, f_qr, f_qd, f_q,
     )
     clear = m1 < N_SLOT1
     if n <= BLOCK:
-        _block(*arrays, np.empty((_N_WORK, n)), clear)
+        _block(*arrays, clear)
     else:
-        w = np.empty((_N_WORK, BLOCK))
         for i0 in range(0, n, BLOCK):
             i1 = min(i0 + BLOCK, n)
-            _block(*(a[i0:i1] for a in arrays), w[:, : i1 - i0], clear)
+            _block(*(a[i0:i1] for a in arrays), clear)
     return out, {
         "precipitation": p,
         "pet": e,

@@ -98,6 +98,22 @@ def initial_state(params: Mapping[str, np.ndarray]) -> np.ndarray:
     return np.zeros((k.size, 1))
 
 
+def store(S, p, pet, k, c):
+    """One day of the store, element-wise (floats or arrays; numpy's step applies it to the
+    batch and :mod:`assim.kernels` compiles the same function for one member).
+
+    Returns
+    -------
+    S_end, evaporation, runoff : mm and mm d-1; ``S_end = a (S + P)`` with ``a`` of
+        :func:`transition`, ``runoff = k (S + P)``, evaporation the rest
+    """
+    a = (1.0 - k) * np.exp(-c * pet)  # as transition()
+    filled = S + p
+    new = a * filled
+    runoff = k * filled
+    return new, filled - runoff - new, runoff
+
+
 def step(
     state: np.ndarray, forcing: Mapping[str, np.ndarray], params: Mapping[str, np.ndarray]
 ) -> tuple[np.ndarray, dict[str, np.ndarray]]:
@@ -119,12 +135,9 @@ def step(
     p = np.asarray(forcing["precipitation"], dtype=np.float64)
     pet = np.asarray(forcing["pet"], dtype=np.float64)
     k = np.asarray(params["k"], dtype=np.float64)
-    a, _ = transition(forcing, params)
-    filled = np.asarray(state, dtype=np.float64)[:, 0] + p
-    new = a * filled
-    runoff = k * filled
-    evaporation = filled - runoff - new
-    n = filled.shape[0]
+    c = np.asarray(params["c"], dtype=np.float64)
+    new, evaporation, runoff = store(np.asarray(state, dtype=np.float64)[:, 0], p, pet, k, c)
+    n = new.shape[0]
     return new[:, None], {
         "precipitation": np.broadcast_to(p, (n,)),
         "pet": np.broadcast_to(pet, (n,)),

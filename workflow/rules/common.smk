@@ -74,7 +74,8 @@ def settings(*sections):
     chosen = {}
     for s in sections:
         if s == "ensemble":
-            chosen[s] = {k: CFG[s][k] for k in ("members", "seed")}
+            # the kernel changes results in the last bits: a change reruns the stage
+            chosen[s] = {k: CFG[s].get(k) for k in ("members", "seed", "kernel")}
         else:
             chosen[s] = CFG[s]
     return json.dumps(chosen, sort_keys=True)
