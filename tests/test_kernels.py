@@ -24,6 +24,7 @@ from assim.errors import ConfigError, RunError
 from assim.filters import Inflation, Transform, ensemble_update
 from assim.kernels.block import METHOD_CODES, analyse_basin, pack_parameters
 from assim.kernels.normals import normals_of_days
+from assim.settings import settings_from_config
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "benchmarks"))
@@ -287,11 +288,11 @@ def test_asking_for_the_kernel_where_it_cannot_serve_is_a_config_error():
     cfg = load_config(Path(__file__).resolve().parents[1] / "config" / "config.yaml",
                       ensemble={"kernel": "compiled"}, perturbation={"state_noise": {"routing_store": 0.5}})
     with pytest.raises(ConfigError, match="ensemble.kernel"):
-        engine.settings_from_config(cfg, models.get("gr4j"), "assimilate")
+        settings_from_config(cfg, models.get("gr4j"), "assimilate")
     with pytest.raises(ConfigError, match="state_noise"):
         _run(_inputs(n_days=20), "compiled", state_noise={"routing_store": 0.5})
     cfg = load_config(Path(__file__).resolve().parents[1] / "config" / "config.yaml")
-    assert engine.settings_from_config(cfg, models.get("gr4j"), "assimilate").kernel == "auto"
+    assert settings_from_config(cfg, models.get("gr4j"), "assimilate").kernel == "auto"
 
 
 def test_a_state_gone_bad_on_the_kernel_is_named():
