@@ -142,7 +142,7 @@ def write_bulletin(forecast: xr.Dataset, *, html_path, figure_folder, alerts_jso
                    levels: Mapping[str, float], observed: xr.DataArray | None = None,
                    recent: xr.DataArray | None = None, latest_reading: Mapping[str, object] | None = None,
                    weather_through=None, names: Mapping[str, str] | None = None, history_days: int = 30,
-                   max_figures: int = 0) -> list[Path]:
+                   max_figures: int = 0, figures: bool = True) -> list[Path]:
     """Write the bulletin of one forecast issue (see the module docstring).
 
     Parameters
@@ -158,6 +158,7 @@ def write_bulletin(forecast: xr.Dataset, *, html_path, figure_folder, alerts_jso
     history_days : days shown before the issue
     max_figures : draw figures of at most this many basins (0 = every basin): the raised
         ones first, then by highest exceedance probability; every basin keeps its table
+    figures : False draws no figure at all (the page keeps its tables)
 
     Returns
     -------
@@ -168,7 +169,7 @@ def write_bulletin(forecast: xr.Dataset, *, html_path, figure_folder, alerts_jso
     issue = str(forecast.attrs.get("issue_date", ""))[:10]
     alerts = raised_alerts(forecast, levels, names)
     basins = [str(b) for b in forecast["basin"].values]
-    drawn = _figure_basins(forecast, basins, alerts, max_figures)
+    drawn = _figure_basins(forecast, basins, alerts, max_figures) if figures else []
     note = _traces_note(forecast)
     pngs: dict[str, Path] = {}
     for b in drawn:
@@ -324,7 +325,7 @@ def render_bulletin(forecast: xr.Dataset, *, alerts: Sequence[Mapping], levels: 
             out.append(f'<figure><img src="data:image/png;base64,{data}" alt="forecast of {_e(label(b))}">'
                        f"<figcaption class=\"note\">{_e(Path(figures[b]).name)}</figcaption></figure>")
         else:
-            out.append('<p class="note">Figure not drawn for this basin (bulletin.max_figures).</p>')
+            out.append('<p class="note">Figure not drawn for this basin (bulletin.max_figures, bulletin.figures).</p>')
         out.append("</section>")
     out.append(f'<div class="caution"><strong>Caution.</strong> {_e(CAUTION)}</div>')
     out.append("</body></html>")

@@ -877,7 +877,7 @@ def _write_bulletin(cfg: Config, forecast: xr.Dataset, iso: str, issue_day: int)
         alerts_json=paths.alerts(cfg, iso, "json"), alerts_csv=paths.alerts(cfg, iso, "csv"),
         levels=bulletin.alert_levels(cfg, forecast), observed=observed, recent=recent, latest_reading=latest,
         weather_through=forcing_days[-1] if len(forcing_days) else None, names=names, history_days=history,
-        max_figures=int(section["max_figures"]))
+        max_figures=int(section["max_figures"]), figures=bool(section["figures"]))
     return paths.bulletin(cfg, iso)
 
 

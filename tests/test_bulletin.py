@@ -74,7 +74,7 @@ def page(tmp_path_factory):
     observed = usable_discharge(read_observations(paths.prepared(cfg, "observations.nc")))
     observed = observed.assign_coords(basin=[str(b) for b in observed["basin"].values])
     with open_product(paths.run_product(cfg, "assimilate")) as an:
-        recent = an["discharge_analysis"].load()
+        recent = an["discharge"].load()  # analysis.nc: the analysis
     levels = {t: 0.1 for t in fc["threshold"].values}
     written = bulletin.write_bulletin(
         fc, html_path=paths.bulletin(cfg, day), figure_folder=paths.bulletin_figures(cfg, day),
@@ -169,7 +169,7 @@ def test_bulletin_figure_shows_the_assimilated_history(page, monkeypatch, tmp_pa
     drawn = []
     monkeypatch.setattr(plots, "_save", lambda fig, path: drawn.append(fig) or path)
     with open_product(paths.run_product(cfg, "assimilate")) as an:
-        recent = an["discharge_analysis"].load()
+        recent = an["discharge"].load()  # analysis.nc: the analysis
     plots.plot_plume(fc, None, "alder", tmp_path / "x.png", history_days=10, recent=recent)
     ax = drawn[0].axes[0]
     start = pd.Timestamp(day) - pd.Timedelta(days=9)

@@ -67,9 +67,12 @@ def test_every_subcommand_prints_the_caution_once(tmp_path):
         "ensemble": {"members": 4, "seed": 5, "scheduler": "synchronous", "progress": False},
         "hindcast": {"every_days": 20, "leads": 3, "forcing": "observed"},
         "forecast": {"leads": 3, "forcing": "observed"},
+        "calibration": {"start": "2012-02-01", "end": "2012-03-15", "validation_start": "2012-03-16",
+                        "validation_end": "2012-04-20", "warmup_days": 30, "min_days": 20,
+                        "population": 8, "max_generations": 2, "seed": 1},
     })
     env = {**os.environ, "PYTHONWARNINGS": "ignore"}
-    commands = [("prep",), ("check",), ("run", "--mode", "openloop"), ("run", "--mode", "assimilate"),
+    commands = [("calibrate",), ("prep",), ("check",), ("run", "--mode", "openloop"), ("run", "--mode", "assimilate"),
                 ("hindcast",), ("forecast", "--issue-date", "2012-04-20"), ("verify",),
                 ("plot", "--issue-date", "2012-04-20"), ("report",)]
     from assim.cli import _parser
