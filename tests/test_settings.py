@@ -19,7 +19,7 @@ def test_every_field_comes_from_the_config():
     record's default by a forgotten key). Common practice, no published source."""
     cfg = load_config(
         ensemble={"members": 7, "seed": 11, "basin_chunk": 3, "member_chunk": 2, "time_block_days": 40,
-                  "scheduler": "synchronous", "workers": 1},
+                  "scheduler": "synchronous", "workers": 1, "kernel": "numpy"},
         period={"spinup_days": 9},
         perturbation={"precipitation_cv": 0.25, "precipitation_ar1": 0.4, "pet_cv": 0.15, "pet_ar1": 0.7,
                       "parameters": {"x1": 0.1}, "state_noise": {"routing_store": 0.5}},

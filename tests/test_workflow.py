@@ -29,6 +29,9 @@ def _short_config(root: Path, **changes) -> Path:
     cfg["ensemble"]["members"] = 16
     cfg["hindcast"] = {"every_days": 14, "leads": 4, "forcing": "observed"}
     cfg["forecast"]["leads"] = 4
+    # the forecast issued at the end of the run's last day (the default, the last day of the
+    # weather, lies ten years on)
+    cfg["issue_date"] = "2013-06-30"
     for section, values in changes.items():
         cfg.setdefault(section, {}).update(values)
     (root / "config").mkdir(parents=True, exist_ok=True)
@@ -64,8 +67,8 @@ def _declared_outputs(root: Path):
         "results/analysis.nc",
         "results/restart.nc",
         "results/hindcast.nc",
-        "results/forecasts/forecast-2013-07-01.nc",
-        "results/forecasts/restart-2013-07-01.nc",
+        "results/forecasts/forecast-2013-06-30.nc",
+        "results/forecasts/restart-2013-06-30.nc",
         "results/skill.nc",
         "results/skill.csv",
         "results/report.html",
