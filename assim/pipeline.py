@@ -190,14 +190,16 @@ def _identity(cfg: Config, model, inputs, mode: str) -> dict[str, str]:
 def _to_state(r):
     from assim import engine
 
-    return engine.EnsembleState(r.valid_day, r.states, dict(r.parameters), dict(r.ar1), r.collapse_days)
+    return engine.EnsembleState(r.valid_day, r.states, dict(r.parameters), dict(r.ar1), r.collapse_days,
+                                r.inflation_mean, r.inflation_sd)
 
 
 def _to_restart(state, model, inputs, identity):
     from assim.io.restart import Restart
 
     return Restart(tuple(inputs.basin_ids), int(state.day), model.state_names, state.states,
-                   dict(state.parameters), dict(state.ar1), state.collapse_days, identity)
+                   dict(state.parameters), dict(state.ar1), state.collapse_days, identity,
+                   inflation_mean=state.inflation_mean, inflation_sd=state.inflation_sd)
 
 
 def _read_checked_restart(path, model, inputs, identity):
@@ -366,6 +368,7 @@ def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
         parameter_names=settings.estimate if mode == "assimilate" else (),
         quantiles=settings.quantiles, float32=settings.float32,
         time_chunk=min(settings.time_block_days, 365), state_noise=bool(settings.state_noise),
+        adaptive_inflation=settings.adaptive_inflation and mode == "assimilate",
         earlier=earlier, attrs=_attrs(cfg, model, settings), commit=files,
     )
     # the product and its restart are one set: both replaced, or neither (a full disk)
@@ -375,6 +378,7 @@ def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
                 summary = engine.run(model, inputs, settings, writer, state=state, until_day=until_day,
                                      progress=bar)
                 writer.set_attributes(**_health_attrs(summary, inputs))
+                writer.write_innovation_statistics()
         finally:
             bar.close()
         write_restart(restart_path, _to_restart(summary.state, model, inputs,

@@ -12,26 +12,32 @@ Importable into any model (numpy and scipy only, no files)::
 - :func:`kalman_predict`, :func:`kalman_update`: exact linear Kalman filter (the reference).
 - :func:`ensemble_update`: one analysis (``enkf``, ``etkf``, ``eakf``) returning an
   :class:`Analysis` with the updated states and the diagnostics.
-- :class:`Inflation`: multiplicative, RTPS, RTPP.
+- :class:`Inflation`: multiplicative, RTPS, RTPP; :class:`AdaptiveInflation` (Anderson 2009)
+  with :func:`update_inflation` and :func:`damp_inflation`.
 - :func:`obs_variance`, :class:`Transform`: observation errors and the assimilation space.
 """
 
 from assim.filters.ensemble import METHODS, Analysis, ensemble_update
 from assim.filters.inflation import (
+    AdaptiveInflation,
     Inflation,
+    damp_inflation,
     inflate,
     relax_to_prior_perturbations,
     relax_to_prior_spread,
     rtps_factor,
+    update_inflation,
 )
 from assim.filters.kalman import kalman_predict, kalman_update
 from assim.filters.obs import Transform, obs_variance
 
 __all__ = [
     "METHODS",
+    "AdaptiveInflation",
     "Analysis",
     "Inflation",
     "Transform",
+    "damp_inflation",
     "ensemble_update",
     "inflate",
     "kalman_predict",
@@ -40,4 +46,5 @@ __all__ = [
     "relax_to_prior_perturbations",
     "relax_to_prior_spread",
     "rtps_factor",
+    "update_inflation",
 ]
