@@ -130,12 +130,19 @@ def _inputs(cfg: Config, start=None, end=None, *, climatology: bool = False):
     folder = cfg["data"]["prepared"]
     forcing, obs, basins = prep_io.read_prepared(folder, start, end)
     model = _model(cfg, basins)
-    extra = [f for f in model.forcings if f not in engine.FORCINGS]
-    if extra:  # e.g. the temperature of a snow routine: calibrate takes it, the engine not yet
+    names = engine.forcing_names(model)
+    lacking = [f for f in model.forcings if f not in names]
+    if lacking:  # a user model's own forcing: prep writes precipitation, PET and temperature only
         from assim.errors import RunError
 
-        raise RunError(f"model {model.name} needs the forcing {extra[0]!r}, which ensemble runs do not pass "
-                       "yet (`assim calibrate` does)", file=Path(folder) / "basins.nc", variable="model")
+        raise RunError(f"model {model.name} needs the forcing {lacking[0]!r}, which ensemble runs do not pass",
+                       file=Path(folder) / "basins.nc", variable="model")
+    if "temperature" in names and "temperature" not in forcing:
+        from assim.errors import InputError
+
+        raise InputError(f"model {model.name} takes the daily mean air temperature, which this forcing file "
+                         "lacks: give the basin a `snow:` block in basins.yaml and rerun `assim prep`",
+                         file=Path(folder) / prep_io.FORCING_FILE, variable="temperature")
     usable = prep_io.usable_discharge(obs).values
     rejected_mask = int(prep_io.REJECTED)
     flags = obs["qc_flag"].values.astype(np.int64)
@@ -145,7 +152,7 @@ def _inputs(cfg: Config, start=None, end=None, *, climatology: bool = False):
     if climatology:
         full = prep_io.read_forcing(Path(folder) / prep_io.FORCING_FILE)
         clim = engine.Climatology(day_numbers(full["time"].values), full["precipitation"].values,
-                                  full["pet"].values)
+                                  full["pet"].values, full["temperature"].values if "temperature" in names else None)
     inputs = engine.Inputs(
         basin_ids=ids,
         keys=perturb.basin_keys(ids),
@@ -157,6 +164,8 @@ def _inputs(cfg: Config, start=None, end=None, *, climatology: bool = False):
         rejected=rejected,
         parameters={p: basins[p].values.astype(np.float64) for p in model.parameter_names},
         climatology=clim,
+        temperature=(np.ascontiguousarray(forcing["temperature"].values, dtype=np.float64)
+                     if "temperature" in names else None),
     )
     return model, inputs, basins
 
@@ -478,11 +487,11 @@ def _hindcast(cfg: Config) -> xr.Dataset:
         if not hc["forcing_file"]:
             raise ConfigError("hindcast.forcing is file but hindcast.forcing_file is empty",
                               file=cfg.source, variable="hindcast.forcing_file")
-        parts = [read_forcing_forecast(hc["forcing_file"], inputs.basin_ids, int(inputs.days[i]), leads)
+        names = engine.forcing_names(model)
+        parts = [read_forcing_forecast(hc["forcing_file"], inputs.basin_ids, int(inputs.days[i]), leads, names)
                  for i in issues]
         inputs = dataclasses.replace(inputs, forecast_forcing={
-            "days": inputs.days[issues],
-            **{n: np.stack([p[n] for p in parts], axis=1) for n in ("precipitation", "pet")}})
+            "days": inputs.days[issues], **{n: np.stack([p[n] for p in parts], axis=1) for n in names}})
     path = paths.hindcast(cfg)
     attrs = {**_attrs(cfg, model, base), "forcing": kind, "every_days": every}
     attrs.pop("filter_method")
@@ -757,7 +766,8 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
             if not fc["forcing_file"]:
                 raise ConfigError("forecast.forcing is file but forecast.forcing_file is empty",
                                   file=cfg.source, variable="forecast.forcing_file")
-            file_forcing = read_forcing_forecast(fc["forcing_file"], inputs.basin_ids, issue_day, leads)
+            file_forcing = read_forcing_forecast(fc["forcing_file"], inputs.basin_ids, issue_day, leads,
+                                                 engine.forcing_names(model))
         assimilated = _Assimilated()  # the ensemble of the days taken in, for the bulletin
         summary = engine.run(model, inputs, settings, assimilated, state=state, until_day=issue_day)
         _show_warnings(engine.summarise_warnings(summary.warnings))

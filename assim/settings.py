@@ -87,6 +87,7 @@ def settings_from_config(cfg: Mapping, model: Model, mode: str) -> Settings:
         mode=mode,
         precipitation=pt.LognormalAR1(float(per["precipitation_cv"]), float(per["precipitation_ar1"])),
         pet=pt.LognormalAR1(float(per["pet_cv"]), float(per["pet_ar1"])),
+        temperature=pt.GaussianAR1(float(per["temperature_sd_c"]), float(per["temperature_ar1"])),
         parameter_sd=dict(per["parameters"]),
         state_noise=dict(per["state_noise"]),
         update_states=update,

@@ -38,7 +38,6 @@ from assim.engine.analysis import (
 from assim.engine.forecast import hindcast_forecasts
 from assim.engine.initial import fixed_parameters, parameter_ranges
 from assim.engine.records import (
-    FORCINGS,
     OBS_GATED,
     OBS_MISSING,
     OBS_REJECTED,
@@ -65,31 +64,34 @@ def perturbed_forcing(inputs: Inputs, ar1: Mapping[str, np.ndarray], settings: S
                       t0: int, t1: int, keep_errors: bool) -> tuple[dict, dict, dict]:
     """The perturbed forcing of days ``t0 .. t1 - 1``, one random-number call per stream.
 
+    The forcings are the names of ``ar1`` (:func:`assim.engine.records.forcing_names` of the
+    model), each perturbed by its error model in ``settings`` (the field of the same name).
+
     Parameters
     ----------
-    ar1 : forcing name -> (basin, member) AR(1) log errors on the day before ``t0``
-    keep_errors : keep the log errors of every day (hindcast issues start from them)
+    ar1 : forcing name -> (basin, member) AR(1) errors on the day before ``t0``
+    keep_errors : keep the errors of every day (hindcast issues start from them)
 
     Returns
     -------
-    forcing : name -> (time, basin * member) float64, mm d-1
-    log_errors : name -> (time, basin, member) log errors (empty unless ``keep_errors``)
-    end_ar1 : name -> (basin, member) log errors on the last day
+    forcing : name -> (time, basin * member) float64, mm d-1 (temperature degC)
+    log_errors : name -> (time, basin, member) AR(1) errors (empty unless ``keep_errors``)
+    end_ar1 : name -> (basin, member) AR(1) errors on the last day
     """
     days = inputs.days[t0:t1]
     nt = len(days)
     nb, nm = inputs.n_basin, len(members)
     log_err, end_ar1, forcing = {}, {}, {}
-    for name, stream, model_err in (("precipitation", pt.PRECIPITATION, settings.precipitation),
-                                    ("pet", pt.PET, settings.pet)):
-        ck = pt.counter_keys(settings.seed, inputs.keys, members, stream)
+    for name in ar1:
+        model_err = getattr(settings, name)
+        ck = pt.counter_keys(settings.seed, inputs.keys, members, pt.FORCING_STREAMS[name])
         e = model_err.series(ar1[name], pt.standard_normal(ck, days))
         end_ar1[name] = e[-1].copy() if nt else ar1[name]
         if keep_errors:
             log_err[name] = e
             e = np.empty_like(e)
-        w = model_err.multiplier(log_err.get(name, e), out=e)  # in place when not kept
-        w *= getattr(inputs, name)[:, t0:t1].T[:, :, None]
+        # in place when not kept
+        w = model_err.apply(log_err.get(name, e), getattr(inputs, name)[:, t0:t1].T[:, :, None], out=e)
         forcing[name] = w.reshape(nt, nb * nm)
     return forcing, log_err, end_ar1
 
@@ -256,7 +258,7 @@ def step_day(blk: _Block, k: int, day: int) -> tuple[np.ndarray, np.ndarray | No
     q : (basin, member) float64, m3 s-1, predicted discharge
     added : (basin * member,) mm of water the state noise added, or None without noise
     """
-    blk.x, fluxes = blk.model.step(blk.x, {n: blk.forcing[n][k] for n in FORCINGS}, blk.prepared)
+    blk.x, fluxes = blk.model.step(blk.x, {n: f[k] for n, f in blk.forcing.items()}, blk.prepared)
     added = None
     if blk.noise:
         z = [pt.standard_normal(kk, day).reshape(-1) for kk in blk.noise_keys]

@@ -24,7 +24,15 @@ from assim.engine.diagnostics import health_warnings
 from assim.engine.forecast import issue_indices
 from assim.engine.initial import fixed_parameters, initial_ensemble
 from assim.engine.outputs import reduce_members
-from assim.engine.records import BlockResult, EnsembleState, Inputs, Plan, RunSummary, Settings
+from assim.engine.records import (
+    BlockResult,
+    EnsembleState,
+    Inputs,
+    Plan,
+    RunSummary,
+    Settings,
+    forcing_names,
+)
 from assim.errors import RunError
 from assim.models.base import Model
 
@@ -138,9 +146,19 @@ def run(
     Raises
     ------
     RunError
-        when a state becomes NaN or infinite (naming the basin, the day and the state), or
-        the days asked for are outside the inputs.
+        when a state becomes NaN or infinite (naming the basin, the day and the state), the
+        days asked for are outside the inputs, or ``state`` lacks the AR(1) error of a
+        forcing the model takes.
+    ValueError
+        when ``inputs`` lack a forcing the model takes (:func:`forcing_names`).
     """
+    names = forcing_names(model)
+    lacking = [n for n in names if getattr(inputs, n) is None]
+    if lacking:
+        raise ValueError(f"model {model.name!r} takes the forcing {lacking[0]!r}, which the inputs lack")
+    if state is not None and set(state.ar1) != set(names):
+        raise RunError(f"the ensemble carries forcing errors of {sorted(state.ar1)}, model {model.name} takes "
+                       f"{sorted(names)}", variable="ar1")
     if state is None:
         state = initial_ensemble(model, inputs, settings)
     p = plan(inputs, settings, state, until_day)

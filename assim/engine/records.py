@@ -15,7 +15,15 @@ from assim import perturb as pt
 from assim.conventions import OBS_GATED, OBS_MISSING, OBS_REJECTED, OBS_USED  # noqa: F401 (re-exported)
 
 SECONDS_PER_DAY_OVER_1000 = 86.4  # Q[m3 s-1] = q[mm d-1] * area[km2] / 86.4
-FORCINGS = ("precipitation", "pet")
+FORCINGS = ("precipitation", "pet")  # passed to every model, mm d-1
+OPTIONAL_FORCINGS = ("temperature",)  # passed to a model that declares it (degC, for a snow routine)
+
+
+def forcing_names(model) -> tuple[str, ...]:
+    """The forcings the engine perturbs and passes to ``model.step``: precipitation and PET
+    for every model, then those of :data:`OPTIONAL_FORCINGS` that ``model.forcings``
+    declares. The ensemble carries one AR(1) error per name (:attr:`EnsembleState.ar1`)."""
+    return FORCINGS + tuple(n for n in OPTIONAL_FORCINGS if n in model.forcings)
 
 
 @dataclass(frozen=True)
@@ -29,13 +37,16 @@ class Inputs:
     area_km2 : (basin,) float64, km2
     days : (time,) int64, days since 1970-01-01, consecutive
     precipitation, pet : (basin, time) float64, mm d-1
+    temperature : (basin, time) float64, degC, daily mean air temperature; None unless the
+        model takes it (:func:`forcing_names`)
     observed : (basin, time) float64, m3 s-1, usable daily discharge, NaN where missing
     rejected : (basin, time) bool, readings rejected by quality control
     parameters : dict name -> (basin,) float64, the basins' model parameters
     climatology : optional :class:`Climatology` (the whole forcing record), for
         climatological forecasts
     forecast_forcing : optional forcing forecasts of hindcast issues: ``days`` (issue,)
-        int64 and ``precipitation``, ``pet`` (basin, issue, lead, file_member) mm d-1
+        int64 and ``precipitation``, ``pet`` (basin, issue, lead, file_member) mm d-1 (and
+        ``temperature`` degC when the model takes it)
     """
 
     basin_ids: tuple[str, ...]
@@ -49,6 +60,7 @@ class Inputs:
     parameters: dict[str, np.ndarray]
     climatology: Climatology | None = None
     forecast_forcing: Mapping[str, np.ndarray] | None = None
+    temperature: np.ndarray | None = None
 
     @property
     def n_basin(self) -> int:
@@ -58,7 +70,8 @@ class Inputs:
         """The inputs of day indices ``a .. b - 1`` (what one task of a block needs)."""
         t = slice(a, b)
         return replace(self, days=self.days[t], precipitation=self.precipitation[:, t], pet=self.pet[:, t],
-                       observed=self.observed[:, t], rejected=self.rejected[:, t])
+                       observed=self.observed[:, t], rejected=self.rejected[:, t],
+                       temperature=None if self.temperature is None else self.temperature[:, t])
 
     def subset(self, b: slice) -> Inputs:
         """The inputs of the basins ``b`` (a slice)."""
@@ -75,6 +88,7 @@ class Inputs:
             climatology=None if self.climatology is None else self.climatology.subset(b),
             forecast_forcing=None if self.forecast_forcing is None else {
                 k: (v if k == "days" else v[b]) for k, v in self.forecast_forcing.items()},
+            temperature=None if self.temperature is None else self.temperature[b],
         )
 
 
@@ -82,15 +96,18 @@ class Inputs:
 class Climatology:
     """The forcing record used for climatological (ensemble streamflow prediction) forecasts.
 
-    days : (n,) int64 consecutive days; precipitation, pet : (basin, n) float64, mm d-1
+    days : (n,) int64 consecutive days; precipitation, pet : (basin, n) float64, mm d-1;
+    temperature : (basin, n) float64, degC, or None (as in :class:`Inputs`)
     """
 
     days: np.ndarray
     precipitation: np.ndarray
     pet: np.ndarray
+    temperature: np.ndarray | None = None
 
     def subset(self, b: slice) -> Climatology:
-        return replace(self, precipitation=self.precipitation[b], pet=self.pet[b])
+        return replace(self, precipitation=self.precipitation[b], pet=self.pet[b],
+                       temperature=None if self.temperature is None else self.temperature[b])
 
 
 @dataclass(frozen=True)
@@ -99,7 +116,9 @@ class EnsembleState:
 
     states : (basin, member, n_state) float64, mm
     parameters : dict name -> (basin, member) float64
-    ar1 : dict forcing name -> (basin, member) float64, the AR(1) log errors on ``day``
+    ar1 : dict forcing name -> (basin, member) float64, the AR(1) errors on ``day`` (log errors
+        of precipitation and PET, the standardised temperature error), one per name of
+        :func:`forcing_names`
     collapse_days : (basin,) int64, consecutive days of collapsed spread so far
     """
 
@@ -153,8 +172,8 @@ class Settings:
     :func:`assim.settings.settings_from_config`).
 
     The fields mirror the config: ``mode`` ("openloop" or "assimilate"), ``members``,
-    ``seed``, ``spinup_days`` (``period``); the forcing error models ``precipitation`` and
-    ``pet``, ``parameter_sd`` (relative sd by parameter name) and ``state_noise`` (sd in mm
+    ``seed``, ``spinup_days`` (``period``); the forcing error models ``precipitation``,
+    ``pet`` and ``temperature`` (named as the forcings they perturb), ``parameter_sd`` (relative sd by parameter name) and ``state_noise`` (sd in mm
     by state name) (``perturbation``); ``method``, ``update_states``, ``obs_error``,
     ``transform*``, ``gate_sigma``, ``inflation``/``rtps``/``rtpp``, ``estimate`` and
     ``shrinkage`` (the Liu & West factor a), ``collapse_*`` and ``gating_warn_fraction``
@@ -169,6 +188,7 @@ class Settings:
     spinup_days: int = 0
     precipitation: pt.LognormalAR1 = pt.LognormalAR1(0.3, 0.5)
     pet: pt.LognormalAR1 = pt.LognormalAR1(0.1, 0.8)
+    temperature: pt.GaussianAR1 = pt.GaussianAR1(0.0, 0.7)
     parameter_sd: Mapping[str, float] = field(default_factory=dict)
     state_noise: Mapping[str, float] = field(default_factory=dict)
     method: str = "enkf"

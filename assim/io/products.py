@@ -556,23 +556,25 @@ def _whole_days(lead) -> np.ndarray:
     return lead.astype(np.float64) if lead.dtype.kind in "iuf" else np.full(lead.shape, np.nan)
 
 
-def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: int) -> dict[str, np.ndarray]:
+def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: int,
+                          names: Sequence[str] = ("precipitation", "pet")) -> dict[str, np.ndarray]:
     """Forcing forecast of one issue from a NetCDF file with a member dimension.
 
-    Layout: ``precipitation`` and ``pet`` (``units`` mm d-1, or a spelling of it) on
+    Layout: ``precipitation`` and ``pet`` (``units`` mm d-1, or a spelling of it), and
+    ``temperature`` (degC) when ``names`` asks for it (a model with a snow routine), on
     ``(basin, issue_time, lead, member)`` in any order (``issue_time`` optional when the file
     holds one issue), ``basin`` string ids, ``lead`` days 1..L (integers, or CF time spans in
     days), ``issue_time`` CF-encoded days.
 
     Returns
     -------
-    dict "precipitation", "pet" -> (basin, lead, file_member) float64, mm d-1
+    dict name -> (basin, lead, file_member) float64, mm d-1 (temperature degC)
 
     Raises
     ------
     InputError
         if the file, a variable, a basin, the issue time or a lead is missing, a variable has
-        other dimensions or units, or values are negative or not finite.
+        other dimensions or units, or values are not finite or (but temperature) negative.
     """
     from assim.io.prepared import check_units
 
@@ -595,14 +597,14 @@ def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: in
             raise InputError(f"leads 1..{leads} (days) needed", file=path, variable="lead",
                              place=f"lead {int(lacking[0])}")
         lead_index = [int(np.flatnonzero(have == k)[0]) for k in range(1, leads + 1)]
-        for name in ("precipitation", "pet"):
+        for name in names:
             if name not in ds:
                 raise InputError("variable missing from the forcing forecast", file=path, variable=name)
             dims = set(ds[name].dims)
             if not {"basin", "lead", "member"} <= dims <= {"basin", "issue_time", "lead", "member"}:
                 raise InputError(f"dimensions {tuple(ds[name].dims)}, expected (basin, [issue_time,] lead, member)",
                                  file=path, variable=name)
-            check_units(ds[name], path, "depth_rate")
+            check_units(ds[name], path, "temperature" if name == "temperature" else "depth_rate")
             da = ds[name].isel(sel)
             if "issue_time" in da.dims:
                 days = day_numbers(da["issue_time"].values)
@@ -613,10 +615,11 @@ def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: in
                 da = da.isel(issue_time=int(hit[0]))
             da = da.isel(lead=lead_index).transpose("basin", "lead", "member")
             values = np.asarray(da.values, dtype=np.float64)
-            bad = ~np.isfinite(values) | (values < 0)
+            bad = ~np.isfinite(values) | ((values < 0) & (name != "temperature"))
             if bad.any():
                 b, lead_i, m = (int(i[0]) for i in np.nonzero(bad))
-                raise InputError("negative or missing value", file=path, variable=name,
+                raise InputError("missing value" if name == "temperature" else "negative or missing value",
+                                 file=path, variable=name,
                                  place=f"basin {basins[b]}, lead {lead_i + 1}, member {m}")
             out[name] = values
     return out
