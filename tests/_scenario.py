@@ -2,6 +2,7 @@
 
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import yaml
 
@@ -35,3 +36,61 @@ def write_config(root: Path, defaults: dict, **sections) -> Path:
     path = root / "config.yaml"
     path.write_text(yaml.safe_dump(cfg, sort_keys=False))
     return path
+
+
+# An invented cold basin for the snow tests only (the demo in sample_basin/ stays rain-fed):
+# the weather of velmorra made 7 degC colder, a truth of gr4j+snow with the parameters below
+# and readings every 3 hours of that truth's daily value with a 5 % log error each. basins.yaml holds the prior in
+# COLD["prior"] (what a first calibration might give), not the truth.
+COLD = {
+    "id": "hrimdal", "name": "Hrimdal Water at Kelsby Fold", "area_km2": 130.0, "latitude": 56.41,
+    "longitude": -4.02, "cooling_c": 7.0, "reading_log_sd": 0.05, "seed": 20261205,
+    "truth": {"x1": 260.0, "x2": -0.3, "x3": 70.0, "x4": 1.4, "snow_threshold": 0.5, "snow_interval": 2.0,
+              "melt_threshold": 0.0, "degree_day_factor": 3.5, "water_holding": 0.1, "refreezing": 0.05},
+    "prior": {"x1": 320.0, "x2": 0.1, "x3": 55.0, "x4": 1.55},
+    "prior_snow": {"degree_day_factor": 2.2, "melt_threshold": 0.8},
+}
+
+
+def make_cold_raw(folder: Path, start: str, end: str, with_rain_basin: bool = False):
+    """A raw folder holding the cold basin ``COLD`` (with a ``snow:`` block), and velmorra
+    as it ships (rain only) when ``with_rain_basin``. Returns (folder, truth): truth is the
+    cold basin's true daily discharge (m3 s-1) on the days start..end, from gr4j+snow run on
+    the forcing `assim prep` makes of this folder."""
+    from assim import models, preparation
+    from assim.config import load_config
+
+    make_raw(folder, ["velmorra"], start, end)
+    doc = yaml.safe_load((folder / "basins.yaml").read_text())
+    cold = {"id": COLD["id"], "name": COLD["name"], "area_km2": COLD["area_km2"], "latitude": COLD["latitude"],
+            "longitude": COLD["longitude"], "model": "gr4j", "parameters": dict(COLD["prior"]),
+            "thresholds_m3s": {"q2y": 25.0}, "gauge": {"kind": "discharge"}, "snow": dict(COLD["prior_snow"])}
+    doc["basins"] = (doc["basins"] if with_rain_basin else []) + [cold]
+    (folder / "basins.yaml").write_text(yaml.safe_dump(doc, sort_keys=False))
+    w = pd.read_csv(folder / "weather.csv", dtype=str)
+    c = w.copy()
+    c["basin"] = COLD["id"]
+    for col in ("tmin_c", "tmax_c"):
+        c[col] = (c[col].astype(float) - COLD["cooling_c"]).round(1).astype(str)
+    (pd.concat([w, c]) if with_rain_basin else c).to_csv(folder / "weather.csv", index=False)
+    g = pd.read_csv(folder / "gauge.csv", dtype=str)
+    days = pd.date_range(start, end, freq="D")
+    stamps = (days.values[:, None] + np.arange(0, 24, 3).astype("timedelta64[h]")).reshape(-1)
+    placeholder = pd.DataFrame({"timestamp": pd.DatetimeIndex(stamps).strftime("%Y-%m-%dT%H:%MZ"),
+                                "basin": COLD["id"], "value": "1.0"})
+    (pd.concat([g, placeholder]) if with_rain_basin else placeholder).to_csv(folder / "gauge.csv", index=False)
+    cfg = load_config(data={"raw": str(folder), "prepared": str(folder / "unused")})
+    forcing = preparation.build(cfg, calibrated=False)[0]["forcing"].sel(basin=COLD["id"])
+    model = models.get("gr4j+snow")
+    params = {k: np.array([v], dtype=float) for k, v in {**model.default_parameters(), **COLD["truth"]}.items()}
+    prepared = model.prepare(params)
+    x = model.initial_state(params)
+    q = np.empty(len(days))
+    for i in range(len(days)):
+        x, f = model.step(x, {n: forcing[n].values[i:i + 1] for n in model.forcings}, prepared)
+        q[i] = f["runoff"][0] * COLD["area_km2"] / 86.4
+    z = np.random.default_rng(COLD["seed"]).standard_normal(len(stamps))
+    values = np.repeat(q, 8) * np.exp(COLD["reading_log_sd"] * z)
+    readings = placeholder.assign(value=[f"{v:.4g}" for v in values])
+    (pd.concat([g, readings]) if with_rain_basin else readings).to_csv(folder / "gauge.csv", index=False)
+    return folder, q
