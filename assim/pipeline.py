@@ -782,7 +782,10 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
             analysis = (f"performed: {n_used} gauge readings assimilated over the {n_days} days since the "
                         f"last restart (valid at {conventions.iso(valid)})")
         try:
-            q = engine.forecast_issue(model, inputs, settings, summary.state, leads, kind, file_forcing)
+            cols = tuple(model.state_index(n) for n in settings.write_states)
+            q = engine.forecast_issue(model, inputs, settings, summary.state, leads, kind, file_forcing,
+                                      keep_states=cols)
+            q, kept = q if cols else (q, None)
         except RunError as exc:  # the engine knows no files: name the forcing it lacked
             if exc.file is None:
                 forcing = fc["forcing_file"] if kind == "file" else Path(cfg["data"]["prepared"]) / "forcing.nc"
@@ -799,6 +802,8 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
                 quantiles=fc["quantiles"], thresholds={n: thr[:, j] for j, n in enumerate(names)},
                 analysis=analysis, float32=settings.float32,
                 assimilated=assimilated.result(inputs.days, valid),
+                states={n: kept[..., j] for j, n in enumerate(settings.write_states)},
+                state_units={s.name: s.unit for s in model.states},
                 attrs={**_attrs(cfg, model, settings), "forcing": kind, "restart": str(restart_path),
                        "restart_valid_time": conventions.iso(valid), **traces,
                        **({"warnings": " | ".join(notes + [str(w) for w in summary.warnings])}

@@ -606,7 +606,7 @@ def test_snow_runs_need_their_temperature_and_skip_the_compiled_kernel():
 def test_snow_continued_run_and_forecast_leads():
     """With the temperature perturbed: a run continued from its end state (snowpack and the
     temperature error included) equals the one-shot run bit for bit; an observed-forcing
-    forecast continues the run exactly; climatology and file forecasts take their
+    forecast continues the run exactly (discharge and the snowpack of every lead); climatology and file forecasts take their
     temperature from the same source as their precipitation (colder leads, more snow, less
     discharge)."""
     rng = np.random.default_rng(8)
@@ -637,8 +637,10 @@ def test_snow_continued_run_and_forecast_leads():
     engine.run(SNOW, inputs, ol, whole)
     issue = int(inputs.days[800])
     part = engine.run(SNOW, inputs, ol, None, until_day=issue)
-    q = engine.forecast_issue(SNOW, inputs, ol, part.state, 7, "observed")
+    q, kept = engine.forecast_issue(SNOW, inputs, ol, part.state, 7, "observed",
+                                    keep_states=(SNOW.state_index("snowpack"),))
     np.testing.assert_array_equal(q, whole.get("discharge")[:, 801:808])
+    np.testing.assert_array_equal(kept[..., 0], whole.get("snowpack")[:, 801:808])
     # a winter issue with a pack: leads at +15 degC melt it, leads at -15 degC keep it
     winter = int(np.flatnonzero((np.arange(nt) % 365 > 330) & (np.arange(nt) > 400))[0])
     part = engine.run(SNOW, inputs, ol, None, until_day=int(inputs.days[winter]))

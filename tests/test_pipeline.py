@@ -455,6 +455,9 @@ def test_snow_basin_runs_end_to_end_through_the_cli(snow_study, capsys):
         assert "ar1_temperature" in r and "snowpack" in [str(s) for s in r["state"].values]
     with xr.open_dataset(res / "forecasts" / "forecast-2014-12-28.nc") as fc:
         assert fc.attrs["analysis"].startswith("performed") and fc.attrs["caution"]
+        assert fc["snowpack"].dims == ("basin", "lead", "member") and fc["snowpack"].attrs["units"] == "mm"
+        assert float(fc["snowpack"].sel(basin=COLD["id"]).min()) > 0.0  # December: a pack
+        assert float(abs(fc["snowpack"].sel(basin="velmorra")).max()) == 0.0
     with xr.open_dataset(res / "hindcast.nc") as hc:
         q = hc["discharge"].sel(basin=COLD["id"], lead=1).transpose("experiment", "issue_time", "member").load()
         days = ((hc["issue_time"].values - np.datetime64("2012-01-01")) // np.timedelta64(1, "D")).astype(int) + 1

@@ -152,7 +152,8 @@ def forecast_leads(
     keys: np.ndarray,
     members: np.ndarray,
     lead_days: np.ndarray,
-) -> np.ndarray:
+    keep_states: tuple[int, ...] = (),
+):
     """Advance the ensembles of several issue times over the leads, as one flat batch.
 
     Parameters
@@ -164,10 +165,12 @@ def forecast_leads(
     area_km2 : (basin,)
     keys : (basin,) uint64; members : (member,) int
     lead_days : (lead, issue) int64, day numbers of every lead (for the state noise)
+    keep_states : state columns whose values at the end of every lead are returned too
 
     Returns
     -------
-    (basin, issue, lead, member) float64, m3 s-1
+    (basin, issue, lead, member) float64, m3 s-1; with ``keep_states``, also the states
+    (basin, issue, lead, member, len(keep_states)) float64, mm
     """
     ni, nb, nm, ns = states.shape
     nl = forcing["precipitation"].shape[0]
@@ -179,6 +182,7 @@ def forecast_leads(
         lower, upper = model.bounds(flat)
         noise_keys = [pt.counter_keys(settings.seed, keys, members, k) for k in noise.streams]
     out = np.empty((nb, ni, nl, nm))
+    kept = np.empty((nb, ni, nl, nm, len(keep_states))) if keep_states else None
     area = area_km2[None, :, None] / SECONDS_PER_DAY_OVER_1000
     for lead in range(nl):
         x, fl = model.step(x, {n: f[lead].reshape(-1) for n, f in forcing.items()}, prepared)
@@ -186,7 +190,9 @@ def forecast_leads(
             z = [pt.standard_normal(kk, lead_days[lead]).reshape(-1) for kk in noise_keys]
             x, _ = pt.add_state_noise(x, noise, z, lower, upper)
         out[:, :, lead, :] = (fl["runoff"].reshape(ni, nb, nm) * area).transpose(1, 0, 2)
-    return out
+        if keep_states:
+            kept[:, :, lead] = x[:, list(keep_states)].reshape(ni, nb, nm, -1).transpose(1, 0, 2, 3)
+    return out if kept is None else (out, kept)
 
 
 def hindcast_forecasts(model, inputs, settings, snaps, members, leads, kind):
@@ -215,14 +221,16 @@ def forecast_issue(
     leads: int,
     kind: str,
     file_forcing: Mapping[str, np.ndarray] | None = None,
-) -> np.ndarray:
+    keep_states: tuple[int, ...] = (),
+):
     """Ensemble forecast from ``state`` (valid at the end of the issue day).
 
     ``inputs.days`` must contain the issue day (and, for "observed" forcing, the leads).
 
     Returns
     -------
-    (basin, lead, member) float64, m3 s-1
+    (basin, lead, member) float64, m3 s-1; with ``keep_states`` (state columns), also their
+    values at the end of every lead, (basin, lead, member, len(keep_states)) float64, mm
     """
     members = np.arange(settings.members)
     idx = np.array([int(state.day - inputs.days[0])])
@@ -230,6 +238,6 @@ def forecast_issue(
                            members, leads, kind,
                            None if file_forcing is None else {n: v[:, None] for n, v in file_forcing.items()})
     lead_days = state.day + np.arange(1, leads + 1)[:, None]
-    q = forecast_leads(model, state.states[None], {k: v[None] for k, v in state.parameters.items()}, forcing,
-                       inputs.area_km2, settings, inputs.keys, members, lead_days)
-    return q[:, 0]
+    r = forecast_leads(model, state.states[None], {k: v[None] for k, v in state.parameters.items()}, forcing,
+                       inputs.area_km2, settings, inputs.keys, members, lead_days, keep_states)
+    return (r[0][:, 0], r[1][:, 0]) if keep_states else r[:, 0]

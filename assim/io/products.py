@@ -429,6 +429,8 @@ def write_forecast(
     attrs: Mapping[str, str] | None = None,
     commit=None,
     assimilated: tuple[np.ndarray, np.ndarray] | None = None,
+    states: Mapping[str, np.ndarray] | None = None,
+    state_units: Mapping[str, str] | None = None,
 ) -> xr.Dataset:
     """Write ``forecast-YYYY-MM-DD.nc`` and return it.
 
@@ -443,6 +445,9 @@ def write_forecast(
         and (basin, n, member) m3 s-1, the ensemble after each day's update; written as
         ``discharge_analysis`` on (basin, time, member) (absent when None or n = 0), so that
         the assimilated history of daily forecasts can be pieced together
+    states : name -> (basin, lead, member) model states at the end of every lead (mm, or as
+        ``state_units`` says), the states the run writes (``outputs.states``), e.g. the
+        snowpack of a snow basin
     """
     nb, nl, nm = discharge.shape
     _require_finite(discharge, path, "discharge", basins, issue_day + np.arange(1, nl + 1))
@@ -477,6 +482,10 @@ def write_forecast(
             **dict(attrs or {}),
         ),
     )
+    for name, values in (states or {}).items():
+        ds[name] = (("basin", "lead", "member"), np.asarray(values, dtype=np.float64),
+                    {"units": (state_units or {}).get(name, "mm"),
+                     "long_name": f"model state {name} at the end of the lead day"})
     if assimilated is not None and len(assimilated[0]):
         a_days, a_values = assimilated
         ds["discharge_analysis"] = (("basin", "time", "member"), np.asarray(a_values, dtype=np.float64),
@@ -489,7 +498,7 @@ def write_forecast(
     encoding = {"valid_time": enc_t, "issue_time": enc_t, "lead": {"dtype": "i4"}, "member": {"dtype": "i4"},
                 "quantile": {"_FillValue": None}}
     fdtype = "f4" if float32 else "f8"
-    for v in ("discharge", "discharge_quantile", "discharge_analysis"):
+    for v in ("discharge", "discharge_quantile", "discharge_analysis", *(states or {})):
         if v in ds:
             encoding[v] = {"dtype": fdtype, "zlib": float32, "_FillValue": np.nan}
     if "time" in ds.coords:
