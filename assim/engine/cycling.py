@@ -25,6 +25,7 @@ from assim.engine.forecast import issue_indices
 from assim.engine.initial import fixed_parameters, initial_ensemble
 from assim.engine.outputs import reduce_members
 from assim.engine.records import BlockResult, EnsembleState, Inputs, Plan, RunSummary, Settings
+from assim.engine.window import held_arrays, window_columns
 from assim.errors import RunError
 from assim.models.base import Model
 
@@ -120,9 +121,11 @@ def run(
     ----------
     model : the model of every basin
     inputs : :class:`Inputs`
-    settings : :class:`Settings` (``mode`` "openloop" or "assimilate")
+    settings : :class:`Settings` (``mode`` "openloop", "assimilate" or "reanalysis")
     sink : object with ``write_block(start, arrays)`` (run outputs; ``start`` counts the
-        output days of :attr:`Plan.output_slice`) and, for hindcasts,
+        output days of :attr:`Plan.output_slice`; a reanalysis writes each day when it
+        leaves the smoother's window, W days later, and the last W days after the last
+        block, so its ``start`` may be negative when a run is continued) and, for hindcasts,
         ``write_issues(start, discharge)`` with discharge (basin, issue, lead, member) m3 s-1;
         None keeps nothing (the end state is still returned)
     state : the ensemble to continue from (a restart); None starts a new run
@@ -207,7 +210,9 @@ def run(
             if len(m_chunks) > 1 and merged.arrays:  # else reduced in the lanes
                 merged.arrays = reduce_members(merged.arrays, settings)
             if sink is not None and merged.arrays:
-                sink.write_block(max(t, out0) - out0, merged.arrays)
+                # a reanalysis records the days that left the smoother's window in the block
+                first = max(t - settings.smoother_window, p.first_output) if settings.reanalysis else max(t, out0)
+                sink.write_block(first - out0, merged.arrays)
             if merged.hindcast is not None and sink is not None:
                 sink.write_issues(issue_done, merged.hindcast)
                 issue_done += merged.hindcast.shape[1]
@@ -217,5 +222,12 @@ def run(
                                       merged.collapse_first, first_collapse)
             if progress is not None:
                 progress(t1 - p.start, total)
+    if settings.reanalysis and sink is not None and hindcast is None:
+        # the last days never leave the window: recorded as the window holds them
+        held = held_arrays(state.window, state.window_days, window_columns(settings.write_states),
+                           int(inputs.days[p.first_output]) if p.first_output < len(inputs.days) else 2**62,
+                           np.float32 if settings.float32 else np.float64)
+        if held is not None:
+            sink.write_block(held[0] - int(inputs.days[0]) - out0, held[1])
     warns = health_warnings(inputs.basin_ids, n_used, n_gated, first_collapse, settings)
     return RunSummary(state, warns, n_used, n_gated, first_collapse, p)

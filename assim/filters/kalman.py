@@ -130,7 +130,8 @@ def rts_smooth(x_filtered, P_filtered, x_predicted, P_predicted, F):
     x_predicted : (..., time, n) float64
         One-step predictions ``x_t|t-1`` (element 0 is not used).
     P_predicted : (..., time, n, n) float64
-        Their covariances ``P_t|t-1`` (positive definite from element 1 on).
+        Their covariances ``P_t|t-1`` (element 0 is not used; a singular one is inverted
+        by its pseudo-inverse).
     F : (..., n, n) or (..., time, n, n) float64
         Transition from time t to t + 1 (constant, or element t for each t; the last is
         not used).
@@ -153,9 +154,9 @@ def rts_smooth(x_filtered, P_filtered, x_predicted, P_predicted, F):
     Ps = Pf.copy()
     for t in range(T - 2, -1, -1):  # (over time: each step needs the next one's result)
         Ft = F[..., t, :, :] if varying else F
-        # Rauch, Tung & Striebel (1965): C = P_t|t F^T P_t+1|t^-1, by a solve with the
-        # symmetric P_t+1|t
-        C = np.swapaxes(np.linalg.solve(Pp[..., t + 1, :, :], Ft @ Pf[..., t, :, :]), -1, -2)
+        # Rauch, Tung & Striebel (1965): C = P_t|t F^T P_t+1|t^-1 (pseudo-inverse: a
+        # predicted state known exactly, P = 0, passes no correction back)
+        C = Pf[..., t, :, :] @ np.swapaxes(Ft, -1, -2) @ np.linalg.pinv(Pp[..., t + 1, :, :], hermitian=True)
         dx = xs[..., t + 1, :] - xp[..., t + 1, :]
         xs[..., t, :] = xf[..., t, :] + np.einsum("...ij,...j->...i", C, dx)
         Ps[..., t, :, :] = _symmetric(
