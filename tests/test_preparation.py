@@ -726,3 +726,24 @@ def test_appended_days_update_the_layer_as_preparing_the_whole_record_does(tmp_p
     for name in ("flat_line", "spike", "below_rating_offset", "impossible_value"):  # the QC tests were exercised
         assert ((flags & F[name]) != 0).any(), name
     assert flags[1, 10] & F["spike"] and flags[1, 9] & F["impossible_value"]
+
+
+def test_a_record_of_another_write_or_changed_settings_prepare_the_whole_record(tmp_path):
+    """The record beside the layer is trusted only when it belongs to the layer's write
+    (its set_generation) and to the same data settings (common practice, no published
+    source): otherwise the whole record is prepared again, and the layer equals a rebuild."""
+    import json
+
+    raw = make_raw(tmp_path / "raw")
+    cfg = config(raw, tmp_path / "layer")
+    prep.prepare(cfg)
+    assert prep.prepare(cfg)["forcing"].attrs["prepared"].startswith("appended 0 day")
+    record = tmp_path / "layer" / prep_io.RECORD_FILE
+    d = json.loads(record.read_text())
+    d["set_generation"] = "0" * 32  # e.g. a kill between the renames of two writes
+    record.write_text(json.dumps(d))
+    assert "not the layer's" in prep.prepare(cfg)["forcing"].attrs["prepared"]
+    other = config(raw, tmp_path / "layer", daily_coverage=0.5)
+    assert "other data settings" in prep.prepare(other)["forcing"].attrs["prepared"]
+    prep.prepare(config(raw, tmp_path / "ref", daily_coverage=0.5))
+    _same_layer(tmp_path / "layer", tmp_path / "ref")
