@@ -114,8 +114,8 @@ def _command(cfg, args: argparse.Namespace) -> str:
 
     cmd = args.command
     if cmd == "prep":
-        pipeline.prep(cfg)
-        return f"prepared layer written to {cfg['data']['prepared']}"
+        layer = pipeline.prep(cfg)
+        return f"prepared layer written to {cfg['data']['prepared']}: {layer.forcing.attrs.get('prepared', '')}"
     if cmd == "check":
         return pipeline.check(cfg)
     if cmd == "calibrate":

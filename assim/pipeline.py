@@ -42,7 +42,7 @@ def prep(cfg: Config) -> PreparedLayer:
 
     folder = Path(cfg["data"]["prepared"])
     with output_lock(folder / ".prepared.lock", "the prepared layer",
-                     [folder / n for n in ("forcing.nc", "observations.nc", "basins.nc")]):
+                     [folder / n for n in ("forcing.nc", "observations.nc", "basins.nc", "prep-record.json")]):
         return PreparedLayer(folder, **preparation.prepare(cfg))
 
 
