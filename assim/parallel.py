@@ -48,9 +48,6 @@ import uuid
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
 
-import cloudpickle
-import dask
-
 from assim.errors import ConfigError, RunError
 
 LOCAL = ("synchronous", "threads", "processes")
@@ -78,7 +75,11 @@ def _lane_call(token: str, payload, *after):
 
     ``after`` (ignored) is the previous task of the same chunk, which a dask.distributed
     scheduler must finish first."""
-    fn, item = cloudpickle.loads(payload) if isinstance(payload, bytes) else payload
+    if isinstance(payload, bytes):
+        import cloudpickle
+
+        payload = cloudpickle.loads(payload)
+    fn, item = payload
     return fn(item, _STORES.setdefault(token, {}))
 
 
@@ -135,6 +136,10 @@ class _Executor:
         return _Gathered([self._submit_to(i, fn, item) for i, item in enumerate(items)])
 
     def _compute_threads(self, fn: Callable, items: list) -> list:
+        if len(items) == 1:  # nothing to run side by side (a day's forecast): no dask needed
+            return [_lane_call(self.token, (fn, items[0]))]
+        import dask  # imported when first needed: a short run does not pay its import
+
         tasks = [dask.delayed(_lane_call, pure=False)(self.token, dask.delayed((fn, item), traverse=False, pure=False))
                  for item in items]
         return list(dask.compute(*tasks, scheduler="threads", pool=self.pool, num_workers=self.workers))
@@ -143,6 +148,8 @@ class _Executor:
         """Run ``fn(item, store)`` on the lane of ``chunk``, after the chunk's earlier tasks."""
         target = self._lanes[chunk % len(self._lanes)]
         if self.scheduler == "processes":
+            import cloudpickle
+
             return target.submit(_lane_call, self.token, cloudpickle.dumps((fn, item)))
         prev = self._last.get(chunk)
         fut = self.client.submit(_lane_call, self.token, (fn, item), *(() if prev is None else (prev,)),
@@ -163,6 +170,8 @@ class _Executor:
         """``[fn(item) for item in items]``, one dask task per item, results in order."""
         if self.scheduler == "synchronous" or len(items) == 1 and self.client is None:
             return [fn(item) for item in items]
+        import dask
+
         # Each item enters its task as one opaque argument: dask would otherwise walk every
         # field, dict and tuple of the inputs and states looking for collections.
         tasks = [dask.delayed(fn, pure=False)(dask.delayed(item, traverse=False, pure=False))
