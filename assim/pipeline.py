@@ -42,7 +42,7 @@ def prep(cfg: Config) -> PreparedLayer:
 
     folder = Path(cfg["data"]["prepared"])
     with output_lock(folder / ".prepared.lock", "the prepared layer",
-                     [folder / n for n in ("forcing.nc", "observations.nc", "basins.nc")]):
+                     [folder / n for n in ("forcing.nc", "observations.nc", "basins.nc", "prep-record.json")]):
         return PreparedLayer(folder, **preparation.prepare(cfg))
 
 
@@ -199,14 +199,20 @@ def _identity(cfg: Config, model, inputs, mode: str) -> dict[str, str | int]:
 def _to_state(r):
     from assim import engine
 
-    return engine.EnsembleState(r.valid_day, r.states, dict(r.parameters), dict(r.ar1), r.collapse_days)
+    return engine.EnsembleState(r.valid_day, r.states, dict(r.parameters), dict(r.ar1), r.collapse_days,
+                                r.window, r.window_days)
 
 
-def _to_restart(state, model, inputs, identity):
+def _to_restart(state, model, inputs, identity, settings):
+    from assim.engine.window import window_columns
     from assim.io.restart import Restart
 
+    w = {}
+    if state.window is not None:  # the smoother's window (filter.smoother.window_days > 0)
+        w = dict(window=state.window, window_days=state.window_days,
+                 window_columns=window_columns(settings.write_states))
     return Restart(tuple(inputs.basin_ids), int(state.day), model.state_names, state.states,
-                   dict(state.parameters), dict(state.ar1), state.collapse_days, identity)
+                   dict(state.parameters), dict(state.ar1), state.collapse_days, identity, **w)
 
 
 def _read_checked_restart(path, model, inputs, identity):
@@ -239,6 +245,21 @@ def _attrs(cfg: Config, model, settings, summary=None) -> dict[str, str]:
         "config_digest": cfg.digest(),
         "results_digest": cfg.digest_results(),
     }
+    return out
+
+
+def _smoother_attrs(settings) -> dict:
+    """The fixed-lag smoother's window, and for a reanalysis how final its days are."""
+    w = int(settings.smoother_window)
+    if not settings.assimilate:
+        return {}
+    out = {"smoother_window_days": w}
+    if settings.reanalysis:
+        out["smoothing"] = (
+            f"fixed-lag ensemble Kalman smoother (Evensen & van Leeuwen 2000), window {w} days: each day "
+            f"is corrected by the readings of its own day and of the {w} days after it; the last {w} days "
+            "of the file had fewer later readings (filter plus partial smoothing) and change when the run "
+            "is continued")
     return out
 
 
@@ -286,13 +307,17 @@ def _health_attrs(summary, inputs) -> dict[str, str]:
 
 
 def run(cfg: Config, mode: str = "assimilate", restart_from=None, until=None) -> xr.Dataset:
-    """Open-loop or assimilation run over ``period``; writes openloop.nc or analysis.nc and
-    the restart (restart.nc; restart-openloop.nc for the open loop).
+    """Open-loop, assimilation or reanalysis run over ``period``; writes openloop.nc,
+    analysis.nc or reanalysis.nc and the restart (restart.nc; restart-openloop.nc,
+    restart-reanalysis.nc).
 
     Parameters
     ----------
     cfg : validated config
-    mode : "openloop" or "assimilate"
+    mode : "openloop", "assimilate" or "reanalysis" (the assimilation with the fixed-lag
+        smoother of ``filter.smoother.window_days`` W, recording each day's smoothed
+        ensemble once W later days' readings have corrected it; the last W days of the
+        period hold the filter's values smoothed by the readings up to the period's end only)
     restart_from : restart file to continue from (its valid time + 1 is the first day run).
         When the existing product was written by the run being continued (same config,
         ending on the restart's day), the new file holds its days followed by the continued
@@ -311,8 +336,8 @@ def run(cfg: Config, mode: str = "assimilate", restart_from=None, until=None) ->
     from assim import paths
     from assim.errors import ConfigError
 
-    if mode not in ("openloop", "assimilate"):
-        raise ConfigError(f"mode must be openloop or assimilate, not {mode!r}", variable="mode")
+    if mode not in ("openloop", "assimilate", "reanalysis"):
+        raise ConfigError(f"mode must be openloop, assimilate or reanalysis, not {mode!r}", variable="mode")
     with _product_lock(paths.run_product(cfg, mode), paths.restart(cfg, mode)), _reading_layer(cfg):
         return _run(cfg, mode, restart_from, until)
 
@@ -351,6 +376,10 @@ def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
     state = None
     if restart_from is not None:
         state = _read_checked_restart(restart_from, model, inputs, identity)
+        w = settings.smoother_window
+        if settings.reanalysis and w and (state.window is None or state.window.shape[2] != w):
+            raise RestartError(f"the restart carries no smoother window of {w} days, which a reanalysis "
+                               "continues from", file=restart_from, variable="window")
     until_day = None if until is None else _day(until, "--until")
     try:
         plan = engine.plan(inputs, settings, state, until_day)
@@ -374,8 +403,9 @@ def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
         state_units={s.name: s.unit for s in model.states},
         parameter_names=settings.estimate if mode == "assimilate" else (),
         quantiles=settings.quantiles, float32=settings.float32,
-        time_chunk=min(settings.time_block_days, 365), state_noise=bool(settings.state_noise),
-        earlier=earlier, attrs=_attrs(cfg, model, settings), commit=files,
+        time_chunk=min(settings.time_block_days, 365),
+        state_noise=bool(settings.state_noise) and not settings.reanalysis,
+        earlier=earlier, attrs={**_attrs(cfg, model, settings), **_smoother_attrs(settings)}, commit=files,
     )
     # the product and its restart are one set: both replaced, or neither (a full disk)
     with files:
@@ -387,7 +417,7 @@ def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
         finally:
             bar.close()
         write_restart(restart_path, _to_restart(summary.state, model, inputs,
-                                                {**identity, **_readings_identity(cfg, summary.state.day)}),
+                                                {**identity, **_readings_identity(cfg, summary.state.day)}, settings),
                       commit=files)
     _show_warnings(engine.summarise_warnings(summary.warnings))
     return open_product(path)
@@ -811,7 +841,7 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
                 commit=files,
             )
             write_restart(restart_file, _to_restart(summary.state, model, inputs,
-                                                    {**identity, **_readings_identity(cfg, issue_day)}),
+                                                    {**identity, **_readings_identity(cfg, issue_day)}, settings),
                           commit=files)
         ds.attrs["bulletin"] = str(_write_bulletin(cfg, ds, iso, issue_day))
     return ds

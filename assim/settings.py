@@ -39,6 +39,7 @@ CONFIG_KEYS: dict[str, tuple[str, ...]] = {
     "collapse_ratio": ("filter", "collapse_ratio"),
     "collapse_days": ("filter", "collapse_days"),
     "gating_warn_fraction": ("filter", "gating_warn_fraction"),
+    "smoother_window": ("filter", "smoother", "window_days"),
     "float32": ("outputs", "float32"),
 }
 
@@ -67,7 +68,9 @@ def _check_names(cfg: Mapping, model: Model) -> None:
 
 
 def settings_from_config(cfg: Mapping, model: Model, mode: str) -> Settings:
-    """Engine settings of a run in ``mode`` ("openloop" or "assimilate") from a validated config.
+    """Engine settings of a run in ``mode`` ("openloop", "assimilate" or "reanalysis") from a
+    validated config. A reanalysis records members (``outputs.ensemble`` quantiles apply to
+    the filter's products).
 
     Raises
     ------
@@ -93,7 +96,7 @@ def settings_from_config(cfg: Mapping, model: Model, mode: str) -> Settings:
         update_states=update,
         obs_error=ObsError(oe["kind"], float(oe["absolute_m3s"]), float(oe["relative"]), float(oe["floor_m3s"])),
         estimate=tuple(p for p in model.parameter_names if p in fil["parameters"]["estimate"]),
-        quantiles=tuple(out["quantiles"]) if out["ensemble"] == "quantiles" else None,
+        quantiles=tuple(out["quantiles"]) if out["ensemble"] == "quantiles" and mode != "reanalysis" else None,
         write_states=write,
         **plain,
     )

@@ -725,3 +725,30 @@ def test_snowpack_state_noise_stays_in_bounds_and_is_reported():
     assert pack.min() >= 0.0 and (pack == 0.0).any()  # clipped at its bound in summer
     assert pack.std(axis=-1).max() > 1.0
     assert np.isfinite(sink.get("state_noise_water")).all() and np.abs(sink.get("state_noise_water")).max() > 0
+
+
+def test_forecast_leads_of_several_issues_equal_each_issue_alone():
+    """Issues that share their parameters (none estimated) are advanced with the parameters
+    prepared once and repeated: every issue's leads equal that issue run alone, bit for bit
+    (np.array_equal), as GR4J's prepared values are element-wise (common practice, no
+    published source: a batch's elements are independent)."""
+    from assim.engine.forecast import forecast_leads
+
+    rng = np.random.default_rng(7)
+    ni, nb, nm, nl = 3, 4, 6, 5
+    params = {"x1": rng.uniform(200, 600, nb), "x2": rng.uniform(-1, 1, nb),
+              "x3": rng.uniform(50, 150, nb), "x4": rng.uniform(1.2, 3.0, nb)}
+    par = {k: np.broadcast_to(v[None, :, None], (ni, nb, nm)).copy() for k, v in params.items()}
+    x0 = GR4J.initial_state({k: np.repeat(v, nm) for k, v in params.items()}).reshape(nb, nm, -1)
+    states = np.stack([x0 * rng.uniform(0.5, 1.5, x0.shape) for _ in range(ni)])
+    forcing = {"precipitation": rng.gamma(0.8, 9.0, (nl, ni, nb, nm)), "pet": rng.uniform(0.5, 4, (nl, ni, nb, nm))}
+    s = engine.Settings(mode="openloop", members=nm, seed=1)
+    keys = pt.basin_keys(tuple(f"b{i}" for i in range(nb)))
+    area = rng.uniform(100, 900, nb)
+    days = np.arange(nl)[:, None] + np.arange(ni)[None] + 17000
+    both = forecast_leads(GR4J, states, par, forcing, area, s, keys, np.arange(nm), days)
+    for i in range(ni):
+        one = forecast_leads(GR4J, states[i:i + 1], {k: v[i:i + 1] for k, v in par.items()},
+                             {k: v[:, i:i + 1] for k, v in forcing.items()}, area, s, keys, np.arange(nm), days[:, i:i + 1])
+        np.testing.assert_array_equal(both[:, i:i + 1], one)
+    assert np.all(both > 0)

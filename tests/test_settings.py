@@ -29,7 +29,7 @@ def test_every_field_comes_from_the_config():
                 "transform": {"kind": "boxcox", "offset_m3s": 0.02, "lambda": 0.4}, "gate_sigma": 4.0,
                 "inflation": {"multiplicative": 1.1, "rtps": 0.3, "rtpp": 0.2},
                 "parameters": {"estimate": ["x3", "x1"], "shrinkage": 0.9}, "collapse_ratio": 0.2,
-                "collapse_days": 12, "gating_warn_fraction": 0.3},
+                "collapse_days": 12, "gating_warn_fraction": 0.3, "smoother": {"window_days": 4}},
         outputs={"ensemble": "quantiles", "quantiles": [0.1, 0.9], "states": True, "all_states": True,
                  "float32": False},
     )

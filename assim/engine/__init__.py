@@ -15,6 +15,8 @@ The package, one module per part:
 - :mod:`~assim.engine.outputs`: member means and quantiles of a block's outputs;
 - :mod:`~assim.engine.forecast`: forecast leads, hindcast issues, one operational issue;
 - :mod:`~assim.engine.cycling`: the plan of a run, its chunks and blocks, :func:`run`;
+- :mod:`~assim.engine.window`: the fixed-lag smoother's window of the last W days (the
+  days a reanalysis records when they leave it);
 - :mod:`~assim.engine.diagnostics`: health warnings of a run.
 """
 

@@ -176,7 +176,13 @@ def forecast_leads(
     nl = forcing["precipitation"].shape[0]
     x = states.reshape(-1, ns)
     flat = {k: np.ascontiguousarray(v).reshape(-1) for k, v in parameters.items()}
-    prepared = model.prepare(flat)
+    if ni > 1 and all((v == v[:1]).all() for v in parameters.values()):
+        # the same parameters at every issue (none estimated): prepared once, repeated (GR4J's
+        # unit hydrographs over every issue were 60 % of a 100-basin hindcast's lead time)
+        prepared = _repeat_batch(model.prepare({k: np.ascontiguousarray(v[0]).reshape(-1)
+                                                for k, v in parameters.items()}), ni)
+    else:
+        prepared = model.prepare(flat)
     noise = pt.StateNoise.from_names(settings.state_noise, list(model.state_names))
     if noise:
         lower, upper = model.bounds(flat)
@@ -193,6 +199,18 @@ def forecast_leads(
         if keep_states:
             kept[:, :, lead] = x[:, list(keep_states)].reshape(ni, nb, nm, -1).transpose(1, 0, 2, 3)
     return out if kept is None else (out, kept)
+
+
+def _repeat_batch(prepared: Mapping[str, np.ndarray], n: int) -> dict[str, np.ndarray]:
+    """Prepared parameters of one batch repeated ``n`` times along the batch (first) axis, each
+    array in its own memory layout (a model's prepared values are element-wise per batch
+    element, so this equals preparing the repeated batch)."""
+    out = {}
+    for k, v in prepared.items():
+        v = np.asarray(v)
+        r = np.concatenate([v] * n, axis=0) if v.ndim else v
+        out[k] = np.asfortranarray(r) if v.ndim > 1 and not v.flags.c_contiguous else r
+    return out
 
 
 def hindcast_forecasts(model, inputs, settings, snaps, members, leads, kind):

@@ -26,6 +26,8 @@ def kernel_choice(model, settings) -> str | None:
         return "perturbation.state_noise is set"
     if settings.estimate:
         return "filter.parameters.estimate is set"
+    if settings.keeps_window:
+        return "the fixed-lag smoother (filter.smoother.window_days > 0, or --mode reanalysis) runs on numpy"
     return None
 
 

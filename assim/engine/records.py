@@ -120,6 +120,8 @@ class EnsembleState:
         of precipitation and PET, the standardised temperature error), one per name of
         :func:`forcing_names`
     collapse_days : (basin,) int64, consecutive days of collapsed spread so far
+    window : (basin, member, slot, column) float64 or None, the smoother's window
+        (:mod:`assim.engine.window`); window_days : (slot,) int64, the day of each slot
     """
 
     day: int
@@ -127,6 +129,8 @@ class EnsembleState:
     parameters: dict[str, np.ndarray]
     ar1: dict[str, np.ndarray]
     collapse_days: np.ndarray
+    window: np.ndarray | None = None
+    window_days: np.ndarray | None = None
 
     def subset(self, b: slice, m: slice = slice(None)) -> EnsembleState:
         return EnsembleState(
@@ -135,6 +139,8 @@ class EnsembleState:
             parameters={k: v[b, m] for k, v in self.parameters.items()},
             ar1={k: v[b, m] for k, v in self.ar1.items()},
             collapse_days=self.collapse_days[b],
+            window=None if self.window is None else self.window[b, m],
+            window_days=self.window_days,
         )
 
     @staticmethod
@@ -147,6 +153,8 @@ class EnsembleState:
             {k: np.concatenate([p.parameters[k] for p in parts], axis=axis) for k in p0.parameters},
             {k: np.concatenate([p.ar1[k] for p in parts], axis=axis) for k in p0.ar1},
             np.concatenate([p.collapse_days for p in parts]) if axis == 0 else p0.collapse_days,
+            None if p0.window is None else np.concatenate([p.window for p in parts], axis=axis),
+            p0.window_days,
         )
 
 
@@ -171,13 +179,15 @@ class Settings:
     """Settings of one engine run (the entry layer builds it from the config,
     :func:`assim.settings.settings_from_config`).
 
-    The fields mirror the config: ``mode`` ("openloop" or "assimilate"), ``members``,
+    The fields mirror the config: ``mode`` ("openloop", "assimilate" or "reanalysis": an
+    assimilation that records the fixed-lag smoothed ensemble), ``members``,
     ``seed``, ``spinup_days`` (``period``); the forcing error models ``precipitation``,
-    ``pet`` and ``temperature`` (named as the forcings they perturb), ``parameter_sd`` (relative sd by parameter name) and ``state_noise`` (sd in mm
+    ``pet`` and ``temperature`` (named as the forcings they perturb), ``parameter_sd``
+    (relative sd by parameter name) and ``state_noise`` (sd in mm
     by state name) (``perturbation``); ``method``, ``update_states``, ``obs_error``,
     ``transform*``, ``gate_sigma``, ``inflation``/``rtps``/``rtpp``, ``estimate`` and
-    ``shrinkage`` (the Liu & West factor a), ``collapse_*`` and ``gating_warn_fraction``
-    (``filter``); ``quantiles`` (None = members), ``write_states``, ``float32``
+    ``shrinkage`` (the Liu & West factor a), ``collapse_*``, ``gating_warn_fraction`` and
+    ``smoother_window`` (days W of the fixed-lag smoother) (``filter``); ``quantiles`` (None = members), ``write_states``, ``float32``
     (``outputs``); ``basin_chunk``, ``member_chunk``, ``time_block_days``, ``scheduler``,
     ``workers`` (``ensemble``; they never change the numbers).
     """
@@ -215,10 +225,20 @@ class Settings:
     scheduler: str = "threads"
     workers: int = 0
     kernel: str = "auto"
+    smoother_window: int = 0
 
     @property
     def assimilate(self) -> bool:
-        return self.mode == "assimilate"
+        return self.mode in ("assimilate", "reanalysis")
+
+    @property
+    def reanalysis(self) -> bool:
+        return self.mode == "reanalysis"
+
+    @property
+    def keeps_window(self) -> bool:
+        """Whether the runs keep the smoother's window (:mod:`assim.engine.window`)."""
+        return self.reanalysis or (self.assimilate and self.smoother_window > 0)
 
 
 @dataclass(frozen=True)

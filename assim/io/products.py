@@ -166,7 +166,8 @@ class _StreamedFile:
 
 
 class RunWriter(_StreamedFile):
-    """Sink of an open-loop or assimilation run: ``openloop.nc`` or ``analysis.nc``.
+    """Sink of an open-loop, assimilation or reanalysis run: ``openloop.nc``,
+    ``analysis.nc`` or ``reanalysis.nc``.
 
     Parameters
     ----------
@@ -174,7 +175,9 @@ class RunWriter(_StreamedFile):
     basins : basin ids
     days : (time,) int, the output days (after spin-up), days since 1970-01-01
     members : number of members
-    mode : "openloop" or "assimilate"
+    mode : "openloop", "assimilate" or "reanalysis" (``reanalysis.nc``: the fixed-lag
+        smoothed ``discharge`` and states, members only; a day is written when it leaves the
+        smoother's window, so ``start`` may come back to earlier days)
     state_names : states written per member
     parameter_names : estimated parameters whose trajectories are written (joint estimation)
     quantiles : write ``discharge_quantile`` at these probabilities instead of members
@@ -239,10 +242,15 @@ class RunWriter(_StreamedFile):
     def assimilate(self) -> bool:
         return self.mode == "assimilate"
 
+    @property
+    def reanalysis(self) -> bool:
+        return self.mode == "reanalysis"
+
     def _define(self):
         nc = self.nc
         nb, nt = len(self.basins), len(self.days)
-        title = "ensemble assimilation run" if self.assimilate else "ensemble open-loop run"
+        title = ("ensemble reanalysis (fixed-lag smoother)" if self.reanalysis else
+                 "ensemble assimilation run" if self.assimilate else "ensemble open-loop run")
         nc.setncatts(global_attributes(title, **self.attrs))
         nc.createDimension("basin", nb)
         nc.createDimension("time", nt)
@@ -272,10 +280,12 @@ class RunWriter(_StreamedFile):
                 ens_dims,
                 chunks,
                 {**DISCHARGE_ATTRS, **DAILY_MEAN,
-                 "long_name": "discharge after the day's update" if self.assimilate else "simulated discharge"},
+                 "long_name": "discharge after the day's update" if self.assimilate else
+                 "smoothed discharge (fixed-lag smoother)" if self.reanalysis else "simulated discharge"},
             )
             for s in self.state_names:
-                when = "after the update" if self.assimilate else "at the end of the day"
+                when = ("after the update" if self.assimilate else "smoothed (fixed-lag smoother)" if self.reanalysis
+                        else "at the end of the day")
                 self._float_var(s, ens_dims, chunks,
                                 {"units": self.state_units.get(s, "mm"), "long_name": f"model state {s} {when}"})
             for p in self.parameter_names:
@@ -342,6 +352,9 @@ class RunWriter(_StreamedFile):
 
     def _write_block(self, start: int, arrays: Mapping[str, np.ndarray]) -> None:
         start += self.offset
+        if start < 0:  # days before the file (a reanalysis continued without its earlier days)
+            arrays = {k: np.asarray(v)[:, -start:] for k, v in arrays.items()}
+            start = 0
         n = None
         names = _ANALYSIS_NAMES if self.assimilate else {}
         for name, values in arrays.items():
