@@ -200,6 +200,39 @@ def test_adaptive_inflation_mode_of_the_linearised_posterior():
     assert mean == pytest.approx(best.x, abs=1e-7)
 
 
+def test_adaptive_inflation_mean_tends_to_the_exact_posterior_mode():
+    """Independent derivation (the paper's text could not be consulted; its equations are
+    recalled from memory): the exact posterior of lambda, N(lam_p, s^2) times the innovation
+    likelihood N(d; 0, lam var_p + var_o), has its mode where x = lam - lam_p solves
+    x = s^2 dlnL/dlam(lam_p + x), i.e. x = s^2 q + s^4 q L'' + O(s^6) with q = dlnL/dlam at
+    lam_p; the linearised scheme gives x = s^2 q - s^4 q^3 + O(s^6). So the scheme's mean
+    tends to the exact mode (found here by brute-force maximisation with
+    scipy.optimize.minimize_scalar) with an error of order s^4: halving s divides it by ~16;
+    and its variance, for a small s, tends to s^2 / (1 - s^2 d2lnL/dlam2), the exact
+    posterior's curvature."""
+    from scipy.optimize import minimize_scalar
+
+    lam_p, var_p, var_o, d = 1.6, 0.9, 0.7, 2.6
+
+    def log_like(lam):
+        th2 = lam * var_p + var_o
+        return -0.5 * np.log(th2) - 0.5 * d * d / th2
+
+    errors = []
+    for s in (0.2, 0.1, 0.05):
+        best = minimize_scalar(lambda lam, s=s: 0.5 * (lam - lam_p) ** 2 / s**2 - log_like(lam),
+                               bounds=(lam_p - 3 * s, lam_p + 3 * s), method="bounded",
+                               options={"xatol": 1e-14})
+        mean, sd = update_inflation(lam_p, s, d, var_p, var_o, AdaptiveInflation(upper=100.0, min_sd=0.0))
+        assert abs(mean - lam_p) > 0.5 * abs(best.x - lam_p) > 0  # it moves, the right way
+        errors.append(abs(mean - best.x))
+        h = 1e-4  # the exact curvature at the mode, by central differences
+        curv = (log_like(best.x + h) - 2 * log_like(best.x) + log_like(best.x - h)) / h**2
+        assert sd**2 == pytest.approx(s**2 / (1 - s**2 * curv), rel=0.1 * s**2)  # (s^2 alone is 0.45 s^2 off)
+    for big, small in zip(errors[:-1], errors[1:], strict=True):
+        assert 10.0 < big / small < 24.0  # order 4 in s
+
+
 def test_adaptive_inflation_bounds_floor_and_unused():
     """The mean is clipped to the bounds, the sd keeps its floor and never grows, and a
     basin without a usable observation keeps its prior (common practice, no published

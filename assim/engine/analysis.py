@@ -49,12 +49,17 @@ def analyse(
     obs_noise: np.ndarray | None,
     settings: Settings,
     inflation_state: tuple[np.ndarray, np.ndarray] | None = None,
+    lagged: np.ndarray | None = None,
 ):
     """One analysis over all basins of a chunk.
 
     The analysis vector of each member is (updated states, predicted discharge, estimated
     parameters): the discharge column gives ``discharge_analysis`` and the parameter
-    columns the joint state-parameter update.
+    columns the joint state-parameter update. With ``lagged`` (the smoother's window), the
+    lagged days' columns are appended to the vector, so the same analysis corrects them by
+    their cross-covariance with today's predicted discharge (the fixed-lag smoother,
+    :func:`assim.filters.fixed_lag_update`); they come back as the last columns of the
+    ``Analysis`` states.
 
     Parameters
     ----------
@@ -63,10 +68,12 @@ def analyse(
     theta : (basin, member, n_param) float64 or None, estimated parameters
     observed : (basin,) float64, m3 s-1, NaN where no usable reading
     obs_var : (basin,) float64, (m3 s-1)^2, observation error variance
-    lower, upper : (basin, member, n_update + 1 + n_param), from :func:`augmented_bounds`
+    lower, upper : (basin, member, n_update + 1 + n_param [+ n_lagged]), from
+        :func:`augmented_bounds` (and the window's bounds)
     obs_noise : (basin, member) standard normals for the perturbed observations (EnKF)
     inflation_state : (mean, sd), each (basin,), the prior adaptive inflation (already
         damped), when ``settings.adaptive_inflation``
+    lagged : (n_lagged, basin, member) float64, optional, the window's planes
 
     Returns
     -------
@@ -78,11 +85,14 @@ def analyse(
     npar = 0 if theta is None else theta.shape[-1]
     # one (basin, member) plane per column, members fastest: the layout the filter's
     # one-observation path works on along contiguous members (and returns)
-    planes = np.empty((nu + 1 + npar, nb, nm))
+    n_lag = 0 if lagged is None else lagged.shape[0]
+    planes = np.empty((nu + 1 + npar + n_lag, nb, nm))
     planes[:nu] = np.moveaxis(states, -1, 0)
     planes[nu] = discharge
     if theta is not None:
-        planes[nu + 1:] = np.moveaxis(theta, -1, 0)
+        planes[nu + 1:nu + 1 + npar] = np.moveaxis(theta, -1, 0)
+    if n_lag:
+        planes[nu + 1 + npar:] = lagged
     x = np.moveaxis(planes, 0, -1)  # (basin, member, column)
     transform = _transform(settings)
     obs_var = assimilation_variance(observed, obs_var, settings)
@@ -101,7 +111,7 @@ def analyse(
         inflation_state=inflation_state,
     )
     xa = a.states
-    new_theta = None if theta is None else xa[..., nu + 1:]
+    new_theta = None if theta is None else xa[..., nu + 1:nu + 1 + npar]
     return xa[..., :nu], xa[..., nu], new_theta, a
 
 

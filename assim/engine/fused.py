@@ -29,6 +29,8 @@ def kernel_choice(model, settings) -> str | None:
         return "filter.parameters.estimate is set"
     if settings.adaptive_inflation:
         return "filter.inflation.adaptive is enabled"
+    if settings.keeps_window:
+        return "the fixed-lag smoother (filter.smoother.window_days > 0, or --mode reanalysis) runs on numpy"
     return None
 
 

@@ -28,6 +28,9 @@ the ratio r of the exact posterior density one prior sd above the mode and at th
 ``s_u^2 = -s^2 / (2 ln r)`` (the density a Gaussian would have). Between analyses the mean is
 damped toward 1, ``lambda <- 1 + rho (lambda - 1)`` (Anderson 2009, inflation damping). The
 perturbations are multiplied by ``sqrt(lambda)`` (on top of the fixed multiplicative factor).
+The paper's text could not be consulted here: these equations are recalled from memory, and
+the tests check them by an independent derivation (the mode found by numeric maximisation
+of the linearised and of the exact posterior, ``tests/test_filters_inflation.py``).
 
 References
 ----------

@@ -166,7 +166,8 @@ class _StreamedFile:
 
 
 class RunWriter(_StreamedFile):
-    """Sink of an open-loop or assimilation run: ``openloop.nc`` or ``analysis.nc``.
+    """Sink of an open-loop, assimilation or reanalysis run: ``openloop.nc``,
+    ``analysis.nc`` or ``reanalysis.nc``.
 
     Parameters
     ----------
@@ -174,7 +175,9 @@ class RunWriter(_StreamedFile):
     basins : basin ids
     days : (time,) int, the output days (after spin-up), days since 1970-01-01
     members : number of members
-    mode : "openloop" or "assimilate"
+    mode : "openloop", "assimilate" or "reanalysis" (``reanalysis.nc``: the fixed-lag
+        smoothed ``discharge`` and states, members only; a day is written when it leaves the
+        smoother's window, so ``start`` may come back to earlier days)
     state_names : states written per member
     parameter_names : estimated parameters whose trajectories are written (joint estimation)
     quantiles : write ``discharge_quantile`` at these probabilities instead of members
@@ -243,10 +246,15 @@ class RunWriter(_StreamedFile):
     def assimilate(self) -> bool:
         return self.mode == "assimilate"
 
+    @property
+    def reanalysis(self) -> bool:
+        return self.mode == "reanalysis"
+
     def _define(self):
         nc = self.nc
         nb, nt = len(self.basins), len(self.days)
-        title = "ensemble assimilation run" if self.assimilate else "ensemble open-loop run"
+        title = ("ensemble reanalysis (fixed-lag smoother)" if self.reanalysis else
+                 "ensemble assimilation run" if self.assimilate else "ensemble open-loop run")
         nc.setncatts(global_attributes(title, **self.attrs))
         nc.createDimension("basin", nb)
         nc.createDimension("time", nt)
@@ -276,10 +284,12 @@ class RunWriter(_StreamedFile):
                 ens_dims,
                 chunks,
                 {**DISCHARGE_ATTRS, **DAILY_MEAN,
-                 "long_name": "discharge after the day's update" if self.assimilate else "simulated discharge"},
+                 "long_name": "discharge after the day's update" if self.assimilate else
+                 "smoothed discharge (fixed-lag smoother)" if self.reanalysis else "simulated discharge"},
             )
             for s in self.state_names:
-                when = "after the update" if self.assimilate else "at the end of the day"
+                when = ("after the update" if self.assimilate else "smoothed (fixed-lag smoother)" if self.reanalysis
+                        else "at the end of the day")
                 self._float_var(s, ens_dims, chunks,
                                 {"units": self.state_units.get(s, "mm"), "long_name": f"model state {s} {when}"})
             for p in self.parameter_names:
@@ -366,6 +376,9 @@ class RunWriter(_StreamedFile):
 
     def _write_block(self, start: int, arrays: Mapping[str, np.ndarray]) -> None:
         start += self.offset
+        if start < 0:  # days before the file (a reanalysis continued without its earlier days)
+            arrays = {k: np.asarray(v)[:, -start:] for k, v in arrays.items()}
+            start = 0
         n = None
         names = _ANALYSIS_NAMES if self.assimilate else {}
         for name, values in arrays.items():
@@ -479,6 +492,8 @@ def write_forecast(
     attrs: Mapping[str, str] | None = None,
     commit=None,
     assimilated: tuple[np.ndarray, np.ndarray] | None = None,
+    states: Mapping[str, np.ndarray] | None = None,
+    state_units: Mapping[str, str] | None = None,
 ) -> xr.Dataset:
     """Write ``forecast-YYYY-MM-DD.nc`` and return it.
 
@@ -493,6 +508,9 @@ def write_forecast(
         and (basin, n, member) m3 s-1, the ensemble after each day's update; written as
         ``discharge_analysis`` on (basin, time, member) (absent when None or n = 0), so that
         the assimilated history of daily forecasts can be pieced together
+    states : name -> (basin, lead, member) model states at the end of every lead (mm, or as
+        ``state_units`` says), the states the run writes (``outputs.states``), e.g. the
+        snowpack of a snow basin
     """
     nb, nl, nm = discharge.shape
     _require_finite(discharge, path, "discharge", basins, issue_day + np.arange(1, nl + 1))
@@ -529,6 +547,10 @@ def write_forecast(
             **dict(attrs or {}),
         ),
     )
+    for name, values in (states or {}).items():
+        ds[name] = (("basin", "lead", "member"), np.asarray(values, dtype=np.float64),
+                    {"units": (state_units or {}).get(name, "mm"),
+                     "long_name": f"model state {name} at the end of the lead day"})
     if assimilated is not None and len(assimilated[0]):
         a_days, a_values = assimilated
         ds["discharge_analysis"] = (("basin", "time", "member"), np.asarray(a_values, dtype=np.float64),
@@ -545,7 +567,7 @@ def write_forecast(
     if "time_bnds" in ds:
         encoding["time_bnds"] = {**enc_t, "_FillValue": None}
     fdtype = "f4" if float32 else "f8"
-    for v in ("discharge", "discharge_quantile", "discharge_analysis"):
+    for v in ("discharge", "discharge_quantile", "discharge_analysis", *(states or {})):
         if v in ds:
             encoding[v] = {"dtype": fdtype, "zlib": float32, "_FillValue": np.nan}
     if "time" in ds.coords:
@@ -612,23 +634,25 @@ def _whole_days(lead) -> np.ndarray:
     return lead.astype(np.float64) if lead.dtype.kind in "iuf" else np.full(lead.shape, np.nan)
 
 
-def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: int) -> dict[str, np.ndarray]:
+def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: int,
+                          names: Sequence[str] = ("precipitation", "pet")) -> dict[str, np.ndarray]:
     """Forcing forecast of one issue from a NetCDF file with a member dimension.
 
-    Layout: ``precipitation`` and ``pet`` (``units`` mm d-1, or a spelling of it) on
+    Layout: ``precipitation`` and ``pet`` (``units`` mm d-1, or a spelling of it), and
+    ``temperature`` (degC) when ``names`` asks for it (a model with a snow routine), on
     ``(basin, issue_time, lead, member)`` in any order (``issue_time`` optional when the file
     holds one issue), ``basin`` string ids, ``lead`` days 1..L (integers, or CF time spans in
     days), ``issue_time`` CF-encoded days.
 
     Returns
     -------
-    dict "precipitation", "pet" -> (basin, lead, file_member) float64, mm d-1
+    dict name -> (basin, lead, file_member) float64, mm d-1 (temperature degC)
 
     Raises
     ------
     InputError
         if the file, a variable, a basin, the issue time or a lead is missing, a variable has
-        other dimensions or units, or values are negative or not finite.
+        other dimensions or units, or values are not finite or (but temperature) negative.
     """
     from assim.io.prepared import check_units
 
@@ -651,14 +675,14 @@ def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: in
             raise InputError(f"leads 1..{leads} (days) needed", file=path, variable="lead",
                              place=f"lead {int(lacking[0])}")
         lead_index = [int(np.flatnonzero(have == k)[0]) for k in range(1, leads + 1)]
-        for name in ("precipitation", "pet"):
+        for name in names:
             if name not in ds:
                 raise InputError("variable missing from the forcing forecast", file=path, variable=name)
             dims = set(ds[name].dims)
             if not {"basin", "lead", "member"} <= dims <= {"basin", "issue_time", "lead", "member"}:
                 raise InputError(f"dimensions {tuple(ds[name].dims)}, expected (basin, [issue_time,] lead, member)",
                                  file=path, variable=name)
-            check_units(ds[name], path, "depth_rate")
+            check_units(ds[name], path, "temperature" if name == "temperature" else "depth_rate")
             da = ds[name].isel(sel)
             if "issue_time" in da.dims:
                 days = day_numbers(da["issue_time"].values)
@@ -669,10 +693,11 @@ def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: in
                 da = da.isel(issue_time=int(hit[0]))
             da = da.isel(lead=lead_index).transpose("basin", "lead", "member")
             values = np.asarray(da.values, dtype=np.float64)
-            bad = ~np.isfinite(values) | (values < 0)
+            bad = ~np.isfinite(values) | ((values < 0) & (name != "temperature"))
             if bad.any():
                 b, lead_i, m = (int(i[0]) for i in np.nonzero(bad))
-                raise InputError("negative or missing value", file=path, variable=name,
+                raise InputError("missing value" if name == "temperature" else "negative or missing value",
+                                 file=path, variable=name,
                                  place=f"basin {basins[b]}, lead {lead_i + 1}, member {m}")
             out[name] = values
     return out
