@@ -491,7 +491,7 @@ CASES = [
     Case("restart AR(1) error changed", RUN, _restart_edit("ar1.nc", "ar1_precipitation", lambda a: -a),
          ("ar1.nc", "ar1_precipitation", "damaged")),
     Case("restart checksum attribute garbled", RUN,
-         _then(_global_attr("results/restart.nc", "sha256_variables", "states:00"),
+         _then(_nc("results/restart.nc", _attr("states", "sha256", ":00")),
                _args("--restart-from", "results/restart.nc")), ("restart.nc", "damaged")),
     Case("restart valid after period.end", RUN, _args("--restart-from", "results/restart.nc", "--set",
                                                       "period.end=2012-06-30"), ("restart.nc", "valid_time")),
@@ -517,7 +517,7 @@ CASES = [
     Case("prepared discharge changed", RUN,
          _nc("prepared/observations.nc", _var_set("discharge", lambda a: np.where(np.isfinite(a), a * 2, a))),
          ("observations.nc", "discharge", "damaged")),
-    Case("prepared checksums garbled", CHECK, _global_attr("prepared/basins.nc", "sha256_variables", "x"),
+    Case("prepared checksums garbled", CHECK, _nc("prepared/basins.nc", _attr("area", "sha256", "x")),
          ("basins.nc", "damaged")),
     # ---- forecasts
     Case("forecast climatology without another year", FORECAST, _config(forecast={"leads": 3, "forcing": "climatology"}),

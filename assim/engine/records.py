@@ -187,8 +187,8 @@ class Settings:
     by state name) (``perturbation``); ``method``, ``update_states``, ``obs_error``,
     ``transform*``, ``gate_sigma``, ``inflation``/``rtps``/``rtpp``, ``estimate`` and
     ``shrinkage`` (the Liu & West factor a), ``collapse_*``, ``gating_warn_fraction`` and
-    ``smoother_window`` (days W of the fixed-lag smoother) (``filter``); ``quantiles`` (None = members), ``write_states``, ``float32``
-    (``outputs``); ``basin_chunk``, ``member_chunk``, ``time_block_days``, ``scheduler``,
+    ``smoother_window`` (days W of the fixed-lag smoother) (``filter``); ``quantiles`` (None = members), ``write_states``, ``float32``,
+    ``compression`` (``outputs``; the writers' filters, never the numbers); ``basin_chunk``, ``member_chunk``, ``time_block_days``, ``scheduler``,
     ``workers`` (``ensemble``; they never change the numbers).
     """
 
@@ -219,6 +219,7 @@ class Settings:
     quantiles: tuple[float, ...] | None = None
     write_states: tuple[str, ...] = ()
     float32: bool = True
+    compression: str = "none"
     basin_chunk: int = 64
     member_chunk: int = 0
     time_block_days: int = 365
