@@ -573,6 +573,8 @@ CASES = [
     Case("hindcast bit flipped, verify", VERIFY,
          _then(_made("hindcast"), _nc("results/hindcast.nc", _var_set("discharge", _flip_one))),
          ("hindcast.nc", "discharge", "damaged")),
+    Case("analysis innovation statistic changed, report", REPORT,
+         _nc("results/analysis.nc", _var_set("innovation_chi2", lambda a: a * 0.5)), ("analysis.nc", "innovation_chi2", "damaged")),
     Case("skill bit flipped, report", REPORT,
          _then(_made("verify"), _nc("results/skill.nc", _var_set("skill", _flip_one))), ("skill.nc", "skill", "damaged")),
     Case("forecast bit flipped, plot", ("plot", "--issue-date", "2012-08-31"),

@@ -401,6 +401,7 @@ class RunWriter(_StreamedFile):
                 else:
                     v = self.nc.createVariable(name, "f8", ("basin",), fill_value=np.nan)
                     v.setncatts({"long_name": ln + " (over the run, in assimilation space)"})
+                self._checksum(name, ())  # written whole at the end: one unit
         if self.state_noise:
             self._float_var("state_noise_water", ("basin", "time"), diag_chunks,
                             {"units": "mm", "long_name": "water added by the additive state noise, ensemble mean"},
@@ -480,6 +481,7 @@ class RunWriter(_StreamedFile):
             series = [np.ma.filled(self.nc.variables[n][:, :self.written].astype(np.float64), np.nan)
                       for n in ("innovation", "innovation_variance", "innovation_analysis", "obs_error_variance")]
             for name, values in innovation_statistics(*series).items():
+                self._digest(name, (), values)
                 self.nc.variables[name][:] = values
 
 
@@ -653,13 +655,13 @@ def write_forecast(
     return ds
 
 
-def open_product(path, variables=(), *, any_of=(), load=False) -> xr.Dataset:
+def open_product(path, variables=(), *, any_of=(), load=False, verify=None) -> xr.Dataset:
     """Open a written product lazily, in its one dimension order (the order on disk, time
     last as CF-1.8 section 2.4 recommends: ``(basin, member, time)``,
     ``(experiment, basin, lead, member, issue_time)``, forecasts ``(basin, lead, member)``),
     string labels as the index of ``basin``, ``experiment``, ``threshold``, with
     ``attrs["product_path"]`` set; see :func:`assim.io.common.open_netcdf`."""
-    return open_netcdf(path, variables, any_of=any_of, load=load)
+    return open_netcdf(path, variables, any_of=any_of, load=load, verify=verify)
 
 
 def background(ds: xr.Dataset, *, quantile: bool = False) -> str:
