@@ -32,6 +32,7 @@ SCHEMA_PATH = Path(__file__).resolve().parent / "schemas" / "config.schema.yaml"
 NOT_RESULTS = {
     "ensemble": ("basin_chunk", "member_chunk", "time_block_days", "scheduler", "workers", "progress"),
     "period": ("end",),
+    "outputs": ("compression",),
     "data": None, "results": None, "hindcast": None, "forecast": None, "issue_date": None,
 }
 

@@ -403,7 +403,7 @@ def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
         state_names=settings.write_states,
         state_units={s.name: s.unit for s in model.states},
         parameter_names=settings.estimate if mode == "assimilate" else (),
-        quantiles=settings.quantiles, float32=settings.float32,
+        quantiles=settings.quantiles, float32=settings.float32, compression=settings.compression,
         time_chunk=min(settings.time_block_days, 365),
         state_noise=bool(settings.state_noise) and not settings.reanalysis,
         adaptive_inflation=settings.adaptive_inflation and mode == "assimilate",
@@ -529,7 +529,8 @@ def _hindcast(cfg: Config) -> xr.Dataset:
     attrs = {**_attrs(cfg, model, base), "forcing": kind, "every_days": every}
     attrs.pop("filter_method")
     with HindcastWriter(path, basins=inputs.basin_ids, issue_days=inputs.days[issues], leads=leads,
-                        members=base.members, float32=base.float32, attrs=attrs) as writer:
+                        members=base.members, float32=base.float32, compression=base.compression,
+                        attrs=attrs) as writer:
         for experiment, mode in (("openloop", "openloop"), ("assimilation", "assimilate")):
             settings = settings_from_config(cfg, model, mode)
             bar = _progress(cfg, f"hindcast {experiment}")
@@ -829,11 +830,11 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
         names = [str(t) for t in basins["threshold"].values] if "threshold" in basins.coords else []
         product, restart_file = paths.forecast(cfg, iso), paths.forecast_restart(cfg, iso)
         # the forecast and its restart are one set: both written, or neither
-        with FileSet([product, restart_file], checksummed=[restart_file], attrs=_provenance(cfg)) as files:
+        with FileSet([product, restart_file], checksummed=[product, restart_file], attrs=_provenance(cfg)) as files:
             ds = write_forecast(
                 product, basins=inputs.basin_ids, issue_day=issue_day, discharge=q,
                 quantiles=fc["quantiles"], thresholds={n: thr[:, j] for j, n in enumerate(names)},
-                analysis=analysis, float32=settings.float32,
+                analysis=analysis, float32=settings.float32, compression=settings.compression,
                 assimilated=assimilated.result(inputs.days, valid),
                 states={n: kept[..., j] for j, n in enumerate(settings.write_states)},
                 state_units={s.name: s.unit for s in model.states},

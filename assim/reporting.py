@@ -286,7 +286,7 @@ def _innovations(cfg: Mapping, names: Mapping[str, str]) -> list[str]:
     from assim.filters.consistency import STATISTICS
     from assim.io.products import open_product
 
-    with open_product(path) as ds:
+    with open_product(path, verify=(*STATISTICS, "inflation_mean")) as ds:
         if any(k not in ds for k in STATISTICS):
             return out + ['<p class="note">analysis.nc has no innovation statistics (written by an earlier '
                           "version): run the assimilation again.</p>"]

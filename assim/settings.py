@@ -48,6 +48,7 @@ CONFIG_KEYS: dict[str, tuple[str, ...]] = {
     "gating_warn_fraction": ("filter", "gating_warn_fraction"),
     "smoother_window": ("filter", "smoother", "window_days"),
     "float32": ("outputs", "float32"),
+    "compression": ("outputs", "compression"),
 }
 
 

@@ -87,7 +87,7 @@ class _Null:
 
 
 def _case(n_basin, members, years, *, scheduler, workers, basin_chunk, block_days, write, states, quantiles=None,
-          repeat=1):
+          repeat=1, compression="none"):
     """A timed engine run, the best of ``repeat``; returns its figures (runs in the current process).
 
     ``wall_s`` and ``cpu_s`` are the smallest of the repeats (each its own smallest: other
@@ -115,7 +115,7 @@ def _case(n_basin, members, years, *, scheduler, workers, basin_chunk, block_day
                 if write:
                     with RunWriter(path, basins=inputs.basin_ids, days=inputs.days, members=members,
                                    mode="assimilate", state_names=settings.write_states, quantiles=quantiles,
-                                   time_chunk=block_days) as sink:
+                                   time_chunk=block_days, compression=compression) as sink:
                         summary = engine.run(model, inputs, settings, sink)
                 else:
                     summary = engine.run(model, inputs, settings, _Null())
@@ -128,7 +128,7 @@ def _case(n_basin, members, years, *, scheduler, workers, basin_chunk, block_day
     steps = n_basin * members * n_days
     return {
         "basins": n_basin, "members": members, "days": n_days, "scheduler": scheduler, "workers": workers,
-        "write": write, "repeat": repeat, "wall_s": wall, "wall_all_s": walls, "cpu_s": cpu,
+        "write": write, "compression": compression, "repeat": repeat, "wall_s": wall, "wall_all_s": walls, "cpu_s": cpu,
         "cpu_workers_s": cpu_workers, "member_steps_per_s": steps / wall, "file_mb": size,
         "readings_used": int(summary.n_used.sum()),
         "peak_rss_mb": (resource.getrusage(resource.RUSAGE_SELF).ru_maxrss

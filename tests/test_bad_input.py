@@ -282,6 +282,43 @@ def _flip_exponent_bit(a):
     return a
 
 
+def _flip_one(a):
+    """The lowest exponent bit of one finite value (the middle one) flipped: float32 or
+    float64, whatever the file holds."""
+    a = np.array(a)
+    flat = a.reshape(-1)
+    i = np.flatnonzero(np.isfinite(flat))
+    bits = flat.view(np.uint32 if a.dtype == np.float32 else np.uint64)
+    bits[i[len(i) // 2]] ^= bits.dtype.type(1) << bits.dtype.type(23 if a.dtype == np.float32 else 52)
+    return a
+
+
+def _raw_flip(name: str, var: str):
+    """One bit flipped in the file's bytes (not through the library), inside an uncompressed
+    chunk of ``var``: the exponent byte of a value whose bytes occur once in the file."""
+    def f(root):
+        p = root / name
+        with netCDF4.Dataset(p) as nc:
+            values = np.ravel(nc[var][:].data)
+        data = bytearray(p.read_bytes())
+        for x in values[np.isfinite(values)][::-1]:
+            at = data.find(x.tobytes())
+            if at >= 0 and data.find(x.tobytes(), at + 1) < 0:
+                data[at + x.itemsize - 1] ^= 0x01
+                p.write_bytes(bytes(data))
+                return
+        raise AssertionError(f"no unique value of {var} found in the bytes of {name}")
+    return f
+
+
+def _made(*args):
+    """The scenario's own CLI command run first (its outputs become part of the scenario)."""
+    def f(root):
+        r = cli(*args, "--config", root / "config.yaml", cwd=root)
+        assert r.returncode == 0, r.stderr
+    return f
+
+
 def _global_attr(name: str, key: str, value: str):
     def f(root):
         with netCDF4.Dataset(root / name, "r+") as ds:
@@ -318,6 +355,7 @@ def _scale_gauge(factor: float, basin: str):
 CHECK, PREP = ("check",), ("prep",)
 FORECAST = ("forecast", "--issue-date", "2012-08-31")
 RUN = ("run", "--mode", "assimilate")
+VERIFY, REPORT, PLOT = ("verify",), ("report",), ("plot",)
 LONG = "x" * 5000
 
 CASES = [
@@ -491,7 +529,7 @@ CASES = [
     Case("restart AR(1) error changed", RUN, _restart_edit("ar1.nc", "ar1_precipitation", lambda a: -a),
          ("ar1.nc", "ar1_precipitation", "damaged")),
     Case("restart checksum attribute garbled", RUN,
-         _then(_global_attr("results/restart.nc", "sha256_variables", "states:00"),
+         _then(_nc("results/restart.nc", _attr("states", "sha256", ":00")),
                _args("--restart-from", "results/restart.nc")), ("restart.nc", "damaged")),
     Case("restart valid after period.end", RUN, _args("--restart-from", "results/restart.nc", "--set",
                                                       "period.end=2012-06-30"), ("restart.nc", "valid_time")),
@@ -517,8 +555,32 @@ CASES = [
     Case("prepared discharge changed", RUN,
          _nc("prepared/observations.nc", _var_set("discharge", lambda a: np.where(np.isfinite(a), a * 2, a))),
          ("observations.nc", "discharge", "damaged")),
-    Case("prepared checksums garbled", CHECK, _global_attr("prepared/basins.nc", "sha256_variables", "x"),
+    Case("prepared checksums garbled", CHECK, _nc("prepared/basins.nc", _attr("area", "sha256", "x")),
          ("basins.nc", "damaged")),
+    # ---- products a later step reads: damaged
+    Case("analysis discharge bit flipped, verify", VERIFY, _nc("results/analysis.nc", _var_set("discharge", _flip_one)),
+         ("analysis.nc", "discharge", "damaged")),
+    Case("analysis byte flipped in the file, verify", VERIFY,
+         _raw_flip("results/analysis.nc", "discharge_background"), ("analysis.nc", "discharge_background", "damaged")),
+    Case("analysis innovation bit flipped, plot", PLOT, _nc("results/analysis.nc", _var_set("innovation", _flip_one)),
+         ("analysis.nc", "innovation", "damaged")),
+    Case("analysis damaged under a continuation", RUN,
+         _then(_nc("results/analysis.nc", _var_set("discharge", _flip_one)), _args("--restart-from", "results/restart.nc")),
+         ("analysis.nc", "discharge", "damaged")),
+    Case("openloop bit flipped, verify", VERIFY,
+         _then(_made("run", "--mode", "openloop"), _nc("results/openloop.nc", _var_set("discharge", _flip_one))),
+         ("openloop.nc", "discharge", "damaged")),
+    Case("hindcast bit flipped, verify", VERIFY,
+         _then(_made("hindcast"), _nc("results/hindcast.nc", _var_set("discharge", _flip_one))),
+         ("hindcast.nc", "discharge", "damaged")),
+    Case("analysis innovation statistic changed, report", REPORT,
+         _nc("results/analysis.nc", _var_set("innovation_chi2", lambda a: a * 0.5)), ("analysis.nc", "innovation_chi2", "damaged")),
+    Case("skill bit flipped, report", REPORT,
+         _then(_made("verify"), _nc("results/skill.nc", _var_set("skill", _flip_one))), ("skill.nc", "skill", "damaged")),
+    Case("forecast bit flipped, plot", ("plot", "--issue-date", "2012-08-31"),
+         _then(_forcing_forecast("none"), _made(*FORECAST),
+               _nc("results/forecasts/forecast-2012-08-31.nc", _var_set("discharge", _flip_one))),
+         ("forecast-2012-08-31.nc", "discharge", "damaged")),
     # ---- forecasts
     Case("forecast climatology without another year", FORECAST, _config(forecast={"leads": 3, "forcing": "climatology"}),
          ("forcing.nc", "forecast.forcing")),

@@ -211,12 +211,14 @@ def test_dates_stay_text_and_set_errors_blame_set(tmp_path):
 
 
 def test_results_digest_ignores_only_what_does_not_change_results():
-    """Scheduler, workers, chunk sizes, progress and period.end leave the results digest as
+    """Scheduler, workers, chunk sizes, progress, period.end and the products' compression
+    (lossless) leave the results digest as
     it is; seed, members, filter and spin-up change it. Common practice, no published source."""
     base = load_config(None).digest_results()
     for section, value in (("ensemble", {"scheduler": "processes", "workers": 3, "basin_chunk": 5,
                                          "member_chunk": 2, "time_block_days": 30, "progress": False}),
-                           ("period", {"end": "2030-01-01"}), ("forecast", {"leads": 3})):
+                           ("period", {"end": "2030-01-01"}), ("forecast", {"leads": 3}),
+                           ("outputs", {"compression": "zlib"})):
         assert load_config(None, **{section: value}).digest_results() == base, section
     for section, value in (("ensemble", {"seed": 1}), ("ensemble", {"members": 8}), ("filter", {"method": "etkf"}),
                            ("period", {"spinup_days": 10}), ("outputs", {"float32": False})):

@@ -68,7 +68,7 @@ def test_run_writer_streams_blocks_into_one_cf_file(tmp_path):
         background = np.concatenate([b["discharge"] for b in blocks], axis=1).astype(np.float32)
         np.testing.assert_array_equal(ds["discharge_background"].values, background.transpose(0, 2, 1))
         assert ds["discharge"].dims == ("basin", "member", "time")
-        assert ds["discharge"].encoding["zlib"] and ds["discharge"].dtype == np.float32
+        assert not ds["discharge"].encoding.get("zlib") and ds["discharge"].dtype == np.float32  # default: none
         assert ds["observed_discharge"].dtype == np.float64
         assert pd.Timestamp(ds["time"].values[0]) == pd.Timestamp("2020-01-01")
         assert ds["obs_status"].attrs["flag_values"].tolist() == [0, 1, 2, 3]

@@ -197,8 +197,8 @@ class Settings:
     ``transform*``, ``gate_sigma``, ``inflation``/``rtps``/``rtpp``, ``adaptive_*`` (adaptive
     inflation, Anderson 2009: on/off, initial mean and sd, damping, bounds, sd floor), ``estimate`` and
     ``shrinkage`` (the Liu & West factor a), ``collapse_*``, ``gating_warn_fraction`` and
-    ``smoother_window`` (days W of the fixed-lag smoother) (``filter``); ``quantiles`` (None = members), ``write_states``, ``float32``
-    (``outputs``); ``basin_chunk``, ``member_chunk``, ``time_block_days``, ``scheduler``,
+    ``smoother_window`` (days W of the fixed-lag smoother) (``filter``); ``quantiles`` (None = members), ``write_states``, ``float32``,
+    ``compression`` (``outputs``; the writers' filters, never the numbers); ``basin_chunk``, ``member_chunk``, ``time_block_days``, ``scheduler``,
     ``workers`` (``ensemble``; they never change the numbers).
     """
 
@@ -236,6 +236,7 @@ class Settings:
     quantiles: tuple[float, ...] | None = None
     write_states: tuple[str, ...] = ()
     float32: bool = True
+    compression: str = "none"
     basin_chunk: int = 64
     member_chunk: int = 0
     time_block_days: int = 365

@@ -4,11 +4,12 @@ from __future__ import annotations
 
 import contextlib
 import datetime as _dt
+import hashlib
 import os
 import shutil
 import tempfile
 import uuid
-from collections.abc import Iterable, Iterator, Mapping
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from pathlib import Path
 
 import numpy as np
@@ -109,8 +110,8 @@ class FileSet:
     commit=the set)``). When the ``with`` block ends without error, every NetCDF member is
     stamped with the set's global attributes (``set_generation``: one random id shared by
     the members; ``set_members``: their names; the ``attrs`` given, e.g. what the set was made
-    from), the members named in ``checksummed`` get the SHA-256 of each variable
-    (:func:`variable_digests`, attribute ``sha256_variables``), each temporary is flushed to
+    from), the members named in ``checksummed`` get the checksum of each variable
+    (:func:`variable_digest`, variable attribute :data:`CHECKSUM_ATTR`), each temporary is flushed to
     disk (fsync), and only then are they renamed onto their names, in the order given. A
     failure before the renames (a full disk, a kill) leaves every old member as it was; the
     renames themselves need no space, and a kill between two of them leaves members of two
@@ -166,10 +167,7 @@ class FileSet:
             tmp = self._parts[path]
             try:
                 if path.suffix == ".nc":
-                    extra = dict(stamp)
-                    if path in self.checksummed:
-                        extra[CHECKSUM_ATTR] = format_digests(file_digests(tmp))
-                    _set_global_attributes(tmp, extra)
+                    _set_global_attributes(tmp, stamp, file_digests(tmp) if path in self.checksummed else {})
                 os.chmod(tmp, 0o666 & ~_umask())
                 _fsync(tmp)
             except (OSError, RuntimeError) as exc:
@@ -187,56 +185,145 @@ class FileSet:
                 _fsync(folder)
 
 
-def _set_global_attributes(path: Path, attrs: Mapping[str, str]) -> None:
+def _set_global_attributes(path: Path, attrs: Mapping[str, str], checksums: Mapping[str, str] | None = None) -> None:
     import netCDF4
     from xarray.backends.netCDF4_ import NETCDF4_PYTHON_LOCK
 
     with NETCDF4_PYTHON_LOCK, netCDF4.Dataset(path, "a") as nc:
         nc.setncatts(dict(attrs))
+        for name, digest in (checksums or {}).items():
+            nc.variables[name].setncattr(CHECKSUM_ATTR, digest)
 
 
 # ------------------------------------------------------------------------ checksums, sets
 
-#: Global attribute holding ``name:sha256`` of every variable of a checksummed file.
-CHECKSUM_ATTR = "sha256_variables"
+#: Variable attribute holding the checksum of the variable's values, ``"<split>:<sha256>"``
+#: (see :func:`variable_digest`). Files written before it (with the global attribute
+#: :data:`LEGACY_CHECKSUM_ATTR`, or with none) are read without a check.
+CHECKSUM_ATTR = "sha256"
+LEGACY_CHECKSUM_ATTR = "sha256_variables"
 
 
-def variable_digests(ds) -> dict[str, str]:
-    """SHA-256 of the values of every variable of ``ds`` (an xarray Dataset as
-    ``xr.open_dataset`` decodes it), over dtype, shape and bytes; NaN counted as one value."""
-    import hashlib
+def _canonical(values, dtype=None) -> np.ndarray:
+    """The values as the file holds them: cast to the stored ``dtype`` (what the NetCDF
+    library does on write), every NaN the one NaN (fill values decode to it)."""
+    a = np.asarray(values)
+    if dtype is not None and a.dtype != dtype and a.dtype.kind in "fiub":
+        a = a.astype(dtype)
+    if a.dtype.kind in "fc":
+        nan = np.isnan(a)
+        if nan.any():
+            a = a.copy()
+            a[nan] = np.nan
+    return a
 
-    import numpy as np
 
-    out = {}
-    for name in sorted(map(str, ds.variables)):
-        a = np.asarray(ds[name].values)
-        h = hashlib.sha256(f"{a.dtype.str}{a.shape}".encode())
-        if a.dtype.kind in "OUS":
-            h.update("\x00".join(map(str, a.ravel().tolist())).encode("utf-8", "surrogatepass"))
-        else:
-            if a.dtype.kind in "fc":
-                a = np.where(np.isnan(a), np.nan, a)
-            h.update(np.ascontiguousarray(a).tobytes())
-        out[name] = h.hexdigest()
-    return out
+def unit_digests(values, n_split: int = 0, dtype=None) -> list[bytes]:
+    """SHA-256 of each unit of ``values``: the units are the index combinations of its first
+    ``n_split`` axes (the split dimensions, moved first), each unit's values in C order over
+    the remaining axes (the file's order); strings joined by NUL."""
+    a = _canonical(values, dtype)
+    if a.dtype.kind in "OUS":
+        rows = a.reshape(int(np.prod(a.shape[:n_split], dtype=np.int64)), -1)
+        return [hashlib.sha256("\x00".join(map(str, r.tolist())).encode("utf-8", "surrogatepass")).digest()
+                for r in rows]
+    rows = np.ascontiguousarray(a).reshape(int(np.prod(a.shape[:n_split], dtype=np.int64)), -1)
+    return [hashlib.sha256(r).digest() for r in rows]
+
+
+def combine_digests(kind: str, shape, split: Sequence[str], units: Iterable[bytes]) -> str:
+    """``"<split>:<hex>"``: SHA-256 over the kind of values (``a.dtype.str``, or ``str`` for
+    text), the shape and split dimensions, and the unit digests in C order of the split
+    dimensions."""
+    h = hashlib.sha256(f"{kind}{tuple(int(n) for n in shape)}{','.join(split)}".encode())
+    for u in units:
+        h.update(u)
+    return f"{','.join(split)}:{h.hexdigest()}"
+
+
+def _kind(a: np.ndarray) -> str:
+    return "str" if a.dtype.kind in "OUS" else a.dtype.str
+
+
+def variable_digest(var, split: Sequence[str] = (), block: int = 366) -> str:
+    """Checksum of an xarray variable, as :data:`CHECKSUM_ATTR` records it.
+
+    The one rule of every checksum assim writes: the values (as ``xr.open_dataset`` decodes
+    them, in the file's dimension order) are cut into units along the ``split`` dimensions;
+    each unit is hashed (:func:`unit_digests`) and the unit digests, in order, are hashed
+    with the variable's kind and shape (:func:`combine_digests`). A file written whole
+    uses no split (one unit); a file streamed in time blocks splits by its time-like
+    dimensions (:class:`StreamDigest`), so the checksum does not depend on how the writes
+    were cut, and a reader needs only one block in memory at a time."""
+    split = tuple(split)
+    shape = tuple(var.shape)
+    if not split:
+        a = np.asarray(var.values)
+        return combine_digests(_kind(a), shape, split, unit_digests(a))
+    first = split[0]
+    units: list[bytes] = []
+    kind = None
+    for i in range(0, var.sizes[first], block):
+        part = np.asarray(var.isel({first: slice(i, i + block)}).transpose(*split, ...).values)
+        kind = kind or _kind(part)
+        units += unit_digests(part, len(split))
+    if kind is None:  # an empty dimension
+        kind = _kind(np.asarray(var.isel({first: slice(0, 0)}).values))
+    return combine_digests(kind, shape, split, units)
+
+
+class StreamDigest:
+    """The checksum of one variable written in pieces (by time blocks, in any order, a
+    piece written again replacing the earlier one): the digest of each unit (one index of
+    each ``split`` dimension) is kept as it is written, and combined at the end
+    (:meth:`result`), the same as :func:`variable_digest` of the finished file.
+
+    Parameters
+    ----------
+    dims, shape, dtype : the variable's dimensions, shape and stored dtype
+    split : the dimensions its writes are cut along (a subset of ``dims``, in their order)
+    """
+
+    def __init__(self, dims: Sequence[str], shape, dtype, split: Sequence[str]):
+        self.split = tuple(split)
+        self.dtype = np.dtype(dtype)
+        self.shape = tuple(int(n) for n in shape)
+        split_shape = tuple(self.shape[list(dims).index(d)] for d in self.split)
+        self.units = np.zeros((*split_shape, 32), dtype=np.uint8)
+        self.done = np.zeros(split_shape, dtype=bool)
+
+    def add(self, index: tuple, values) -> None:
+        """Values of the units ``index`` (an int or a slice per split dimension) with the
+        split dimensions first (a slice keeps its axis, an int has none), the others in
+        the file's order."""
+        target = self.units[index]
+        digests = unit_digests(values, target.ndim - 1, self.dtype)
+        self.units[index] = np.frombuffer(b"".join(digests), dtype=np.uint8).reshape(target.shape)
+        self.done[index] = True
+
+    def missing(self) -> np.ndarray:
+        """(k, n_split) indices of the units never written (the file holds fill values there)."""
+        return np.argwhere(~self.done)
+
+    def result(self) -> str:
+        units = self.units.reshape(-1, 32)
+        return combine_digests(self.dtype.str, self.shape, self.split, (u.tobytes() for u in units))
 
 
 def file_digests(path: str | os.PathLike) -> dict[str, str]:
+    """:data:`CHECKSUM_ATTR` of every variable of a file written whole (no split)."""
     import xarray as xr
 
     with xr.open_dataset(path, engine="netcdf4") as ds:
-        return variable_digests(ds)
+        return {str(name): variable_digest(ds.variables[name]) for name in ds.variables}
 
 
-def format_digests(digests: Mapping[str, str]) -> str:
-    return " ".join(f"{k}:{v}" for k, v in sorted(digests.items()))
-
-
-def verify_digests(ds, path, error: type[AssimError] | None = None) -> None:
-    """Refuse a damaged file: the values of ``ds`` (as decoded by ``xr.open_dataset``, before
-    any change) must have the digests recorded when it was written. A file written without
-    digests (an older version, another tool) is accepted as it is.
+def verify_digests(ds, path, error: type[AssimError] | None = None, names: Iterable[str] | None = None) -> None:
+    """Refuse a damaged file: each variable of ``ds`` (as decoded by ``xr.open_dataset``,
+    before any change) named in ``names`` (default: all) that carries a
+    :data:`CHECKSUM_ATTR` must still have it. A variable written without one (a file of an
+    older version, another tool) is accepted as it is. The checksum attributes are then
+    dropped from ``ds`` (they describe the file, not values derived from it).
 
     Raises
     ------
@@ -245,17 +332,20 @@ def verify_digests(ds, path, error: type[AssimError] | None = None) -> None:
     """
     from assim.errors import InputError
 
-    recorded = ds.attrs.get(CHECKSUM_ATTR)
-    if recorded is None:
-        return
-    error = error or InputError
-    want = dict(item.partition(":")[::2] for item in str(recorded).split())
-    have = variable_digests(ds)
-    for name in sorted(set(want) | set(have)):
-        if want.get(name) != have.get(name):
-            what = ("is missing" if name not in have else "was not in the file when it was written"
-                    if name not in want else "does not match the checksum recorded when the file was written")
-            raise error(f"the file is damaged: the variable {what}; write it again", file=path, variable=name)
+    wanted = set(ds.variables) if names is None else set(names) & set(ds.variables)
+    for name in sorted(map(str, wanted)):
+        var = ds.variables[name]
+        recorded = var.attrs.get(CHECKSUM_ATTR)
+        if recorded is None:
+            continue
+        split = tuple(d for d in str(recorded).partition(":")[0].split(",") if d)
+        if not set(split) <= set(var.dims) or variable_digest(var, split) != str(recorded):
+            raise (error or InputError)(
+                "the file is damaged: the values no longer match the checksum written with them; "
+                "write it again (rerun the step that made it)", file=path, variable=name)
+    for var in ds.variables.values():
+        var.attrs.pop(CHECKSUM_ATTR, None)
+    ds.attrs.pop(LEGACY_CHECKSUM_ATTR, None)
 
 
 def check_set(members: Mapping[str | os.PathLike, Mapping], error: type[AssimError] | None = None) -> None:
@@ -377,11 +467,12 @@ def labels_from_file(ds):
     return ds
 
 
-def open_netcdf(path, variables=(), *, any_of=(), order=None, load=False):
+def open_netcdf(path, variables=(), *, any_of=(), order=None, load=False, verify=None):
     """Open a file written by assim lazily, in the contract's layout.
 
     String labels become the index of their dimension, dimensions are put in ``order`` when
-    given, and ``attrs["product_path"]`` is set.
+    given, and ``attrs["product_path"]`` is set. The variables read are checked against the
+    checksums written with them (:func:`verify_digests`), before any change.
 
     Parameters
     ----------
@@ -392,11 +483,15 @@ def open_netcdf(path, variables=(), *, any_of=(), order=None, load=False):
         order on disk, which is each product's one order
     load : read everything into memory and close the file before returning (readers that
         use the whole file anyway: no handle is left open behind the returned Dataset)
+    verify : names of the variables to check against their checksums; default: every
+        variable when ``load`` (all are read), none otherwise (a file just written, opened
+        lazily to be returned)
 
     Raises
     ------
     InputError
-        naming the file (and the variable) when it is missing, unreadable or incomplete.
+        naming the file (and the variable) when it is missing, unreadable, incomplete or
+        damaged (its values no longer match their checksums).
     """
     import xarray as xr
 
@@ -414,6 +509,15 @@ def open_netcdf(path, variables=(), *, any_of=(), order=None, load=False):
                 ds = ds.load()
     except (OSError, ValueError, RuntimeError, KeyError, TypeError) as exc:
         raise InputError(f"cannot read as NetCDF ({type(exc).__name__})", file=path) from None
+    try:
+        verify_digests(ds, path, names=(None if load else ()) if verify is None else verify)
+    except (OSError, ValueError, RuntimeError) as exc:  # a chunk that no longer decompresses
+        ds.close()
+        raise InputError(f"cannot read as NetCDF ({type(exc).__name__}): the file is damaged; write it again",
+                         file=path) from None
+    except AssimError:
+        ds.close()
+        raise
     ds = labels_from_file(ds)
     for name in variables:
         if name not in ds.variables:

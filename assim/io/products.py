@@ -33,6 +33,8 @@ from xarray.backends.netCDF4_ import NETCDF4_PYTHON_LOCK
 from assim.conventions import CALENDAR, OBS_STATUS, TIME_UNITS
 from assim.errors import InputError
 from assim.io.common import (
+    CHECKSUM_ATTR,
+    StreamDigest,
     atomic_path,
     attribute_values,
     global_attributes,
@@ -58,6 +60,27 @@ DAILY_MEAN = {"cell_methods": "time: mean"}
 # A forecast's value at lead L is the mean over the L-th day after the issue, bounded by the
 # variable ``lead_bnds`` [L - 1, L] days (forecast.nc and hindcast.nc alike).
 LEAD_MEAN = {"cell_methods": "lead: mean"}
+
+
+#: ``outputs.compression`` -> the netCDF4 filter options of float values in run, hindcast and
+#: forecast products (figures: benchmarks/README.md, "Writing every member"). ``none`` is
+#: the default: float32 member values hardly compress (zlib level 1 with shuffle to ~0.7 of
+#: their size, at 14 M values per CPU second against 100 M unfiltered). ``zstd`` is fast
+#: but needs the HDF5 filter plugin (bundled with netCDF4's wheels) to be read; not every
+#: NetCDF reader has it. (blosc is not offered: its HDF5 filter fails the write of a chunk
+#: it cannot compress, "Buffer is uncompressible".)
+COMPRESSION = {
+    "none": {},
+    "zlib": {"compression": "zlib", "complevel": 1, "shuffle": True},
+    "zstd": {"compression": "zstd", "complevel": 1},
+}
+
+
+def compression_options(compression: str) -> dict:
+    """netCDF4 ``createVariable`` (and xarray encoding) options of ``compression``."""
+    if compression not in COMPRESSION:
+        raise ValueError(f"compression {compression!r}: expected one of {', '.join(COMPRESSION)}")
+    return dict(COMPRESSION[compression])
 
 
 def lead_bounds(leads: int) -> np.ndarray:
@@ -86,15 +109,23 @@ def dates(day_numbers_: Sequence[int] | np.ndarray) -> pd.DatetimeIndex:
 
 
 class _StreamedFile:
-    """A NetCDF file written under a temporary name and renamed when closed cleanly."""
+    """A NetCDF file written under a temporary name and renamed when closed cleanly.
 
-    def __init__(self, path: str | os.PathLike, *, float32: bool, complevel: int = 1, commit=None):
+    The variables the writer streams carry a checksum (:class:`assim.io.common.StreamDigest`,
+    attribute :data:`assim.io.common.CHECKSUM_ATTR`), made from the values as they are
+    written, unit by unit along the dimensions the writes are cut along, and written when
+    the file is closed cleanly: the file is never read back for it, and the checksum is the
+    same however the writes were cut (time blocks, basin chunks, scheduler).
+    """
+
+    def __init__(self, path: str | os.PathLike, *, float32: bool, compression: str = "none", commit=None):
         self.path = Path(path)
         self.commit = commit  # an assim.io.common.FileSet the file belongs to, or None
         self.float32 = float32
-        self.complevel = complevel
+        self.filters = compression_options(compression)
         self._stack = contextlib.ExitStack()
         self.nc: netCDF4.Dataset | None = None
+        self.digests: dict[str, StreamDigest] = {}
 
     def __enter__(self):
         tmp = self._stack.enter_context(atomic_path(self.path, self.commit))
@@ -119,8 +150,37 @@ class _StreamedFile:
                 self.nc.close()
 
     def __exit__(self, exc_type, exc, tb):
-        # closing the netCDF file first, then atomic_path renames (or removes on error)
+        # the checksums, then closing the netCDF file, then atomic_path renames (or removes on error)
+        if exc_type is None:
+            try:
+                self._write_checksums()
+            except BaseException as error:
+                if not self._stack.__exit__(type(error), error, error.__traceback__):
+                    raise
+                return False
         return self._stack.__exit__(exc_type, exc, tb)
+
+    def _checksum(self, name: str, split: Sequence[str]) -> None:
+        """Give the streamed variable ``name`` a checksum over units along ``split``."""
+        v = self.nc.variables[name]
+        self.digests[name] = StreamDigest(v.dimensions, v.shape, v.dtype, split)
+
+    def _digest(self, name: str, index: tuple, values: np.ndarray) -> None:
+        """Record the values of units ``index`` of ``name`` (split dimensions first)."""
+        if name in self.digests:
+            self.digests[name].add(index, values)
+
+    def _write_checksums(self) -> None:
+        with _NC_LOCK:
+            for name, digest in self.digests.items():
+                v = self.nc.variables[name]
+                if len(digest.missing()):  # never written: the file holds fill values there
+                    v.set_auto_maskandscale(False)
+                    for unit in digest.missing():
+                        at = dict(zip(digest.split, (int(i) for i in unit), strict=True))
+                        digest.add(tuple(at[d] for d in digest.split),
+                                   np.asarray(v[tuple(at.get(d, slice(None)) for d in v.dimensions)]))
+                v.setncattr(CHECKSUM_ATTR, digest.result())
 
     def _define(self):  # pragma: no cover - overridden
         raise NotImplementedError
@@ -151,16 +211,8 @@ class _StreamedFile:
 
     def _float_var(self, name, dims, chunks, attrs, ensemble=True):
         dtype = "f4" if (self.float32 and ensemble) else "f8"
-        v = self.nc.createVariable(
-            name,
-            dtype,
-            dims,
-            zlib=self.float32,
-            complevel=self.complevel,
-            shuffle=self.float32,
-            chunksizes=chunks,
-            fill_value=np.float32(np.nan) if dtype == "f4" else np.nan,
-        )
+        v = self.nc.createVariable(name, dtype, dims, chunksizes=chunks,
+                                   fill_value=np.float32(np.nan) if dtype == "f4" else np.nan, **self.filters)
         v.setncatts(attrs)
         return v
 
@@ -181,7 +233,8 @@ class RunWriter(_StreamedFile):
     state_names : states written per member
     parameter_names : estimated parameters whose trajectories are written (joint estimation)
     quantiles : write ``discharge_quantile`` at these probabilities instead of members
-    float32 : float32 and zlib compression for ensemble values
+    float32 : float32 for ensemble values (float64 otherwise)
+    compression : filters of the float values, a key of :data:`COMPRESSION`
     time_chunk : days per NetCDF chunk along time
     state_noise : write ``state_noise_water`` (basin, time), mm (runs with additive state noise)
     adaptive_inflation : write ``inflation_mean`` and ``inflation_sd`` (basin, time), the
@@ -212,6 +265,7 @@ class RunWriter(_StreamedFile):
         parameter_names: Sequence[str] = (),
         quantiles: Sequence[float] | None = None,
         float32: bool = True,
+        compression: str = "none",
         time_chunk: int = 365,
         state_noise: bool = False,
         adaptive_inflation: bool = False,
@@ -219,7 +273,7 @@ class RunWriter(_StreamedFile):
         attrs: Mapping[str, str] | None = None,
         commit=None,
     ):
-        super().__init__(path, float32=float32, commit=commit)
+        super().__init__(path, float32=float32, compression=compression, commit=commit)
         self.state_noise = bool(state_noise)
         self.adaptive_inflation = bool(adaptive_inflation)
         self.earlier = None if earlier is None else Path(earlier)
@@ -317,7 +371,7 @@ class RunWriter(_StreamedFile):
             self._float_var("innovation_variance", d2, diag_chunks,
                             {"long_name": "expected innovation variance HPH'+R, in assimilation space"},
                             ensemble=False)
-            v = nc.createVariable("obs_status", "i1", d2, zlib=True, complevel=1, chunksizes=diag_chunks)
+            v = nc.createVariable("obs_status", "i1", d2, chunksizes=diag_chunks, **self.filters)
             v.flag_values = np.array(list(OBS_STATUS.values()), dtype=np.int8)
             v.flag_meanings = " ".join(OBS_STATUS)
             v.long_name = "status of the day's gauge reading"
@@ -347,53 +401,68 @@ class RunWriter(_StreamedFile):
                 else:
                     v = self.nc.createVariable(name, "f8", ("basin",), fill_value=np.nan)
                     v.setncatts({"long_name": ln + " (over the run, in assimilation space)"})
+                self._checksum(name, ())  # written whole at the end: one unit
         if self.state_noise:
             self._float_var("state_noise_water", ("basin", "time"), diag_chunks,
                             {"units": "mm", "long_name": "water added by the additive state noise, ensemble mean"},
                             ensemble=False)
+        for name, v in nc.variables.items():
+            if "time" in v.dimensions and name not in ("time", "time_bnds"):
+                self._checksum(name, ("time",))
 
     def _after_define(self):
         if self.earlier is not None:
             self._copy_earlier()
 
     def _copy_earlier(self):
+        """Copy the earlier product's days in front, checking them against its checksums
+        (a damaged product is refused, not carried into the new file)."""
         with xr.open_dataset(self.earlier, decode_times=False, mask_and_scale=False) as old:
             names = [n for n, v in self.nc.variables.items() if "time" in v.dimensions and n not in ("time", "time_bnds")
                      and n in old.variables]
             step = self.time_chunk
             for name in names:
                 src, dst = old[name].transpose(*self.nc.variables[name].dimensions), self.nc.variables[name]
+                recorded = old[name].attrs.get(CHECKSUM_ATTR)
+                check = None if recorded is None else StreamDigest(src.dims, src.shape, src.dtype, ("time",))
                 for t in range(0, self.offset, step):
                     sl = slice(t, min(t + step, self.offset))
                     values = np.asarray(src.isel(time=sl).values)
+                    if check is not None:
+                        check.add((sl,), np.moveaxis(values, -1, 0))
+                    self._digest(name, (sl,), np.moveaxis(values, -1, 0))
                     with _NC_LOCK:
                         dst[..., sl] = values
+                if check is not None and check.result() != str(recorded):
+                    raise InputError("the product being continued is damaged: its values no longer match the "
+                                     "checksum written with them; move it away to write the continuation alone",
+                                     file=self.earlier, variable=name)
 
     def write_block(self, start: int, arrays: Mapping[str, np.ndarray]) -> None:
         """Write output days ``start .. start + n - 1`` (see the class docstring)."""
-        with _NC_LOCK:
-            self._write_block(start, arrays)
-
-    def _write_block(self, start: int, arrays: Mapping[str, np.ndarray]) -> None:
         start += self.offset
         if start < 0:  # days before the file (a reanalysis continued without its earlier days)
             arrays = {k: np.asarray(v)[:, -start:] for k, v in arrays.items()}
             start = 0
-        n = None
         names = _ANALYSIS_NAMES if self.assimilate else {}
+        placed = {}
         for name, values in arrays.items():
             name = names.get(name, name)
-            if name not in self.nc.variables:
+            if name not in self.digests:  # every time-dependent variable of the file has one
                 continue
             values = np.asarray(values)
-            n = values.shape[1]
             if values.ndim == 3:  # ensemble and quantile values are finite, or the run is wrong
-                _require_finite(values, self.path, name, self.basins, self.days[start:start + n])
-            if values.ndim == 3:  # (basin, n, member) -> (basin, member, n) on disk
-                values = values.transpose(0, 2, 1)
-            self.nc.variables[name][..., start:start + n] = values
-        if n is not None:
-            self.written = max(self.written, start + n)
+                _require_finite(values, self.path, name, self.basins, self.days[start:start + values.shape[1]])
+            placed[name] = values.astype(self.digests[name].dtype, copy=False)  # as stored: cast once
+        for name, values in placed.items():  # outside the lock: (n, basin[, member]), a day a unit
+            self._digest(name, (slice(start, start + values.shape[1]),), np.swapaxes(values, 0, 1))
+        with _NC_LOCK:
+            for name, values in placed.items():
+                n = values.shape[1]
+                if values.ndim == 3:  # (basin, n, member) -> (basin, member, n) on disk
+                    values = values.transpose(0, 2, 1)
+                self.nc.variables[name][..., start:start + n] = values
+                self.written = max(self.written, start + n)
 
     def set_attributes(self, **attrs) -> None:
         """Global attributes known only at the end (diagnostics, warnings)."""
@@ -412,6 +481,7 @@ class RunWriter(_StreamedFile):
             series = [np.ma.filled(self.nc.variables[n][:, :self.written].astype(np.float64), np.nan)
                       for n in ("innovation", "innovation_variance", "innovation_analysis", "obs_error_variance")]
             for name, values in innovation_statistics(*series).items():
+                self._digest(name, (), values)
                 self.nc.variables[name][:] = values
 
 
@@ -437,8 +507,8 @@ class HindcastWriter(_StreamedFile):
     """
 
     def __init__(self, path, *, basins, issue_days, leads: int, members: int, float32=True,
-                 attrs: Mapping[str, str] | None = None):
-        super().__init__(path, float32=float32)
+                 compression: str = "none", attrs: Mapping[str, str] | None = None):
+        super().__init__(path, float32=float32, compression=compression)
         self.basins = list(basins)
         self.issue_days = np.asarray(issue_days, dtype=np.int64)
         self.leads = int(leads)
@@ -467,10 +537,12 @@ class HindcastWriter(_StreamedFile):
         chunks = (1, 1, self.leads, self.members, max(1, min(len(self.issue_days), 64)))
         self._float_var("discharge", ("experiment", "basin", "lead", "member", "issue_time"), chunks,
                         {**DISCHARGE_ATTRS, **LEAD_MEAN, "long_name": "forecast discharge"})
+        self._checksum("discharge", ("experiment", "issue_time"))
 
     def write_block(self, experiment: str, start: int, discharge: np.ndarray) -> None:
         e = EXPERIMENTS.index(experiment)
         n = discharge.shape[1]
+        self._digest("discharge", (e, slice(start, start + n)), np.swapaxes(discharge, 0, 1))
         with _NC_LOCK:
             self.nc.variables["discharge"][e, :, :, :, start:start + n] = discharge.transpose(0, 2, 3, 1)
 
@@ -489,6 +561,7 @@ def write_forecast(
     thresholds: Mapping[str, np.ndarray],
     analysis: str,
     float32: bool = True,
+    compression: str = "none",
     attrs: Mapping[str, str] | None = None,
     commit=None,
     assimilated: tuple[np.ndarray, np.ndarray] | None = None,
@@ -569,7 +642,7 @@ def write_forecast(
     fdtype = "f4" if float32 else "f8"
     for v in ("discharge", "discharge_quantile", "discharge_analysis", *(states or {})):
         if v in ds:
-            encoding[v] = {"dtype": fdtype, "zlib": float32, "_FillValue": np.nan}
+            encoding[v] = {"dtype": fdtype, "_FillValue": np.nan, **compression_options(compression)}
     if "time" in ds.coords:
         encoding["time"] = enc_t
     encoding.update({d: {"dtype": str} for d in ("basin", "threshold")})
@@ -582,13 +655,13 @@ def write_forecast(
     return ds
 
 
-def open_product(path, variables=(), *, any_of=(), load=False) -> xr.Dataset:
+def open_product(path, variables=(), *, any_of=(), load=False, verify=None) -> xr.Dataset:
     """Open a written product lazily, in its one dimension order (the order on disk, time
     last as CF-1.8 section 2.4 recommends: ``(basin, member, time)``,
     ``(experiment, basin, lead, member, issue_time)``, forecasts ``(basin, lead, member)``),
     string labels as the index of ``basin``, ``experiment``, ``threshold``, with
     ``attrs["product_path"]`` set; see :func:`assim.io.common.open_netcdf`."""
-    return open_netcdf(path, variables, any_of=any_of, load=load)
+    return open_netcdf(path, variables, any_of=any_of, load=load, verify=verify)
 
 
 def background(ds: xr.Dataset, *, quantile: bool = False) -> str:

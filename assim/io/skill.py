@@ -15,7 +15,7 @@ import pandas as pd
 import xarray as xr
 
 from assim.errors import InputError
-from assim.io.common import atomic_path, labels_to_file
+from assim.io.common import FileSet, atomic_path, labels_to_file
 from assim.io.common import open_netcdf as open_product
 
 CSV_COLUMNS = ("basin", "experiment", "lead", "metric", "value", "n")
@@ -41,7 +41,7 @@ def write_skill(ds: xr.Dataset, nc_path: str | os.PathLike, csv_path: str | os.P
             encoding[str(name)] = {"_FillValue": None}  # coordinates have no missing values
         elif var.dtype.kind in "OUS":
             encoding[str(name)] = {"dtype": str}
-    with atomic_path(nc_path) as tmp:
+    with FileSet([nc_path], checksummed=[nc_path]) as files, atomic_path(nc_path, files) as tmp:
         on_disk.to_netcdf(tmp, engine="netcdf4", encoding=encoding)
     table = skill_table(ds)
     with atomic_path(csv_path) as tmp:
@@ -69,10 +69,9 @@ def read_skill(path: str | os.PathLike) -> xr.Dataset:
     Raises
     ------
     InputError
-        when the file is missing or lacks ``skill`` or ``n``.
+        when the file is missing, lacks ``skill`` or ``n``, or is damaged (checksums).
     """
-    with open_product(path, SKILL_VARIABLES) as ds:
-        return ds.load()
+    return open_product(path, SKILL_VARIABLES, load=True)
 
 
 def read_skill_csv(path: str | os.PathLike) -> pd.DataFrame:
