@@ -277,10 +277,12 @@ def _spread(a, N):
 @numba.njit(**_JIT)
 def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e, ar1, area,
            y, r, analyse, method, gamma, rtps, rtpp, gate, centre, tr_kind, tr_off, tr_lam,
-           upd, lo, hi, wcols, q_out, qa_out, w_out, innov, ivar, clip, used, gated, sd_b, sd_a):
+           upd, lo, hi, wcols, q_out, qa_out, w_out, innov, ivar, clip, used, gated, sd_b, sd_a,
+           snap_k, snap_x, snap_e):
     """Every basin of the chunk over the block's days; returns False if a discharge or a
     state went non-finite (the caller then runs the block on the numpy path, which names
-    the first bad day)."""
+    the first bad day). The states and AR(1) errors at the end of the days ``snap_k``
+    (increasing) are copied into ``snap_x`` and ``snap_e`` (hindcast issues)."""
     nb, nt, N = q_out.shape
     phi_p, c_p, s_p, h_p, phi_e, c_e, s_e, h_e = ar1[0], ar1[1], ar1[2], ar1[3], ar1[4], ar1[5], ar1[6], ar1[7]
     first_pair = first_day >> 1
@@ -296,6 +298,7 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
     good = True
     for b in range(nb):
         c0 = b * N
+        si = 0
         for k in range(nt):
             day = first_day + k
             jp = (day >> 1) - first_pair
@@ -342,6 +345,14 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
             for j in range(wcols.size):
                 for i in range(N):
                     w_out[j, b, k, i] = X[wcols[j], c0 + i]
+            if si < snap_k.size and snap_k[si] == k:  # a hindcast issue: the day's end state
+                for row in range(X.shape[0]):
+                    for i in range(N):
+                        snap_x[si, row, c0 + i] = X[row, c0 + i]
+                for i in range(N):
+                    snap_e[si, 0, b, i] = e_p[b, i]
+                    snap_e[si, 1, b, i] = e_e[b, i]
+                si += 1
         for row in range(X.shape[0]):
             for i in range(N):
                 if not math.isfinite(X[row, c0 + i]):
@@ -350,7 +361,8 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
 
 
 def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y, r, analyse,
-              method, gamma, rtps, rtpp, gate, centre, transform, upd, lo, hi, wcols, spreads=False):
+              method, gamma, rtps, rtpp, gate, centre, transform, upd, lo, hi, wcols, spreads=False,
+              snapshots=()):
     """Advance a chunk over a block in one compiled call (see the module docstring).
 
     Parameters
@@ -372,6 +384,7 @@ def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y
     transform : (kind, offset, lambda); upd : (n_u,) int rows updated; lo, hi : (n_u,
         basin * member) their bounds; wcols : (n_w,) int, state rows recorded
     spreads : also return the member spreads of the discharge before and after the analysis
+    snapshots : (issue,) increasing day indices of the block whose end states are kept
 
     Returns
     -------
@@ -379,7 +392,9 @@ def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y
     arrays : dict with ``discharge`` and ``discharge_analysis`` (basin, day, member),
         ``states`` (n_w, basin, day, member), ``innovation``, ``innovation_variance``,
         ``clipped_water`` (basin, day, NaN/0 where not analysed), ``used``, ``gated``
-        (basin, day) bool, and with ``spreads`` ``spread_before``, ``spread_after`` (basin, day)
+        (basin, day) bool, and with ``spreads`` ``spread_before``, ``spread_after`` (basin, day);
+        ``snapshot_states`` (issue, n_state, basin * member) and ``snapshot_errors`` (issue, 2,
+        basin, member), the states and AR(1) log errors at the end of the ``snapshots`` days
     """
     nb, nt = prec.shape
     N = X.shape[1] // max(nb, 1)
@@ -393,6 +408,9 @@ def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y
     gated = np.zeros((nb, nt), dtype=np.bool_)
     sd_b = np.empty((nb, nt) if spreads else (0, 0))
     sd_a = np.empty((nb, nt) if spreads else (0, 0))
+    snap_k = np.asarray(snapshots, dtype=np.int64)
+    snap_x = np.empty((snap_k.size,) + X.shape)
+    snap_e = np.empty((snap_k.size, 2, nb, N))
     kind, offset, lam = transform
     if kind == "boxcox" and lam == 0.0:
         kind = "log"
@@ -401,8 +419,9 @@ def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y
         np.asarray(ar1, dtype=np.float64), area, y, r, analyse, METHOD_CODES[method], float(gamma),
         float(rtps), float(rtpp), float(gate), bool(centre), TRANSFORM_CODES[kind], float(offset),
         float(lam), np.asarray(upd, dtype=np.int64), lo, hi, np.asarray(wcols, dtype=np.int64),
-        q_out, qa_out, w_out, innov, ivar, clip, used, gated, sd_b, sd_a,
+        q_out, qa_out, w_out, innov, ivar, clip, used, gated, sd_b, sd_a, snap_k, snap_x, snap_e,
     )
     return bool(ok), {"discharge": q_out, "discharge_analysis": qa_out, "states": w_out,
                       "innovation": innov, "innovation_variance": ivar, "clipped_water": clip,
-                      "used": used, "gated": gated, "spread_before": sd_b, "spread_after": sd_a}
+                      "used": used, "gated": gated, "spread_before": sd_b, "spread_after": sd_a,
+                      "snapshot_states": snap_x, "snapshot_errors": snap_e}
