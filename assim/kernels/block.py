@@ -69,41 +69,53 @@ def pack_parameters(code: int, prepared) -> tuple[np.ndarray, np.ndarray]:
 
 
 @numba.njit(**_JIT)
-def _gr4j_member(X, col, P, k1, k2, p, e):
-    """One GR4J day of batch element ``col``, in place; returns the runoff (mm d-1)."""
-    S_end, pn, ae, perc, pr = _production(X[0, col], p, e, P[0, col], P[2, col], P[3, col])
+def _gr4j_basin(X, c0, N, P, k1, k2, p, e, pr, q9, q1, runoff):
+    """One GR4J day of the members ``c0 .. c0 + N - 1``, in place, their runoff (mm d-1) in
+    ``runoff``; ``pr``, ``q9``, ``q1`` (N,) scratch. Each stage runs over the members, so
+    every state and parameter row is read and written contiguously (member by member, the
+    ~25 rows of a member, a batch apart, conflict in the cache: 55 ns a member-step for the
+    unit hydrographs against about 5 row by row)."""
+    for i in range(N):
+        col = c0 + i
+        S_end, pn, ae, perc, pr[i] = _production(X[0, col], p[i], e[i], P[0, col], P[2, col], P[3, col])
+        X[0, col] = S_end
+    # the unit hydrographs: today's share leaves, the rest moves one day closer
     c2 = 2 + gr4j.N_SLOT1
-    q1 = 0.0
-    for j in range(k2):  # UH2: today's share leaves, the rest moves one day closer
-        z = P[_P0 + k1 + j, col] * pr
-        if j < k2 - 1:
-            z += X[c2 + j, col]
-        if j == 0:
-            q1 = z
-        else:
-            X[c2 + j - 1, col] = z
-    q9 = 0.0
-    for j in range(k1):  # UH1
-        z = P[_P0 + j, col] * pr
-        if j < k1 - 1:
-            z += X[2 + j, col]
-        if j == 0:
-            q9 = z
-        else:
-            X[1 + j, col] = z
-    R_end, qr, qd, ex, q = _routing(X[1, col], q9, q1, P[1, col], P[4, col], P[5, col])
-    X[0, col] = S_end
-    X[1, col] = R_end
-    return q
+    _unit_hydrograph(X, c0, N, P, _P0 + k1, k2, c2, pr, q1)  # UH2
+    _unit_hydrograph(X, c0, N, P, _P0, k1, 2, pr, q9)  # UH1
+    for i in range(N):
+        col = c0 + i
+        R_end, qr, qd, ex, runoff[i] = _routing(X[1, col], q9[i], q1[i], P[1, col], P[4, col], P[5, col])
+        X[1, col] = R_end
 
 
 @numba.njit(**_JIT)
-def _step_member(code, X, col, P, kk, p, e):
+def _unit_hydrograph(X, c0, N, P, p0, k, s0, pr, out):
+    """Route ``pr`` through a unit hydrograph of ``k`` ordinates (parameter rows ``p0 ..``,
+    slots in state rows ``s0 ..``): ``out`` gets today's share."""
+    for j in range(k):
+        last = j == k - 1
+        for i in range(N):
+            z = P[p0 + j, c0 + i] * pr[i]
+            if not last:
+                z += X[s0 + j, c0 + i]
+            if j == 0:
+                out[i] = z
+            else:
+                X[s0 + j - 1, c0 + i] = z
+
+
+@numba.njit(**_JIT)
+def step_basin(code, X, c0, N, P, kk, p, e, scratch, runoff):
+    """One model day of the members ``c0 .. c0 + N - 1`` of ``X`` (n_state, batch), in place,
+    forced by ``p``, ``e`` (N,) mm d-1; their runoff (mm d-1) in ``runoff`` (N,);
+    ``scratch`` (3, N)."""
     if code == GR4J:
-        return _gr4j_member(X, col, P, kk[0], kk[1], p, e)
-    new, ev, runoff = _store(X[0, col], p, e, P[0, col], P[1, col])
-    X[0, col] = new
-    return runoff
+        _gr4j_basin(X, c0, N, P, kk[0], kk[1], p, e, scratch[0], scratch[1], scratch[2], runoff)
+        return
+    for i in range(N):
+        new, ev, runoff[i] = _store(X[0, c0 + i], p[i], e[i], P[0, c0 + i], P[1, c0 + i])
+        X[0, c0 + i] = new
 
 
 @numba.njit(**_JIT)
@@ -292,6 +304,7 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
     fp = np.empty(N)
     fe = np.empty(N)
     q = np.empty(N)
+    scratch = np.empty((3, N))
     yp = np.empty(N)
     u = np.empty(N)
     d = np.empty(N)
@@ -322,9 +335,9 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
                 e_e[b, i] = ee
                 fp[i] = math.exp(s_p * ep - h_p) * pk
                 fe[i] = math.exp(s_e * ee - h_e) * ek
+            step_basin(code, X, c0, N, P, kk, fp, fe, scratch, q)
             for i in range(N):
-                runoff = _step_member(code, X, c0 + i, P, kk, fp[i], fe[i])
-                q[i] = runoff * area[b]
+                q[i] = q[i] * area[b]
                 q_out[b, k, i] = q[i]
                 if not math.isfinite(q[i]):
                     good = False
