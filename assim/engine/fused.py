@@ -135,7 +135,7 @@ def advance(model, inputs, state, settings, t0, t1, *, members, first_output, fi
                 gated_blk, en.OBS_GATED, status_blk))[:, k_out0:].astype(np.int8)
     end = en.EnsembleState(
         day=int(days[-1]) if nt else state.day,
-        states=X.T.reshape(nb, nm, ns).copy(),
+        states=X.T.reshape(nb, nm, ns),  # a view of X: the next block copies it without a transpose
         parameters=params,
         ar1={n: e_prev[j].copy() for j, n in enumerate(en.FORCINGS)} if nt else state.ar1,
         collapse_days=collapse,

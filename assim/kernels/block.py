@@ -30,7 +30,7 @@ import math
 import numba
 import numpy as np
 
-from assim.kernels.normals import normal_pair
+from assim.kernels.normals import normal_row
 from assim.models import gr4j, linear_reservoir
 
 _JIT = dict(cache=True, nogil=True, error_model="numpy", fastmath=False)
@@ -92,17 +92,27 @@ def _gr4j_basin(X, c0, N, P, k1, k2, p, e, pr, q9, q1, runoff):
 @numba.njit(**_JIT)
 def _unit_hydrograph(X, c0, N, P, p0, k, s0, pr, out):
     """Route ``pr`` through a unit hydrograph of ``k`` ordinates (parameter rows ``p0 ..``,
-    slots in state rows ``s0 ..``): ``out`` gets today's share."""
-    for j in range(k):
-        last = j == k - 1
+    slots in state rows ``s0 ..``): ``out`` gets today's share, each slot the next one's
+    share plus its own (row by row over the members: loops the compiler vectorises)."""
+    c1 = c0 + N
+    o = P[p0, c0:c1]
+    if k == 1:
         for i in range(N):
-            z = P[p0 + j, c0 + i] * pr[i]
-            if not last:
-                z += X[s0 + j, c0 + i]
-            if j == 0:
-                out[i] = z
-            else:
-                X[s0 + j - 1, c0 + i] = z
+            out[i] = o[i] * pr[i]
+        return
+    x = X[s0, c0:c1]
+    for i in range(N):
+        out[i] = o[i] * pr[i] + x[i]
+    for j in range(1, k):
+        o = P[p0 + j, c0:c1]
+        dst = X[s0 + j - 1, c0:c1]
+        if j < k - 1:
+            x = X[s0 + j, c0:c1]
+            for i in range(N):
+                dst[i] = o[i] * pr[i] + x[i]
+        else:
+            for i in range(N):
+                dst[i] = o[i] * pr[i]
 
 
 @numba.njit(**_JIT)
@@ -266,14 +276,6 @@ def analyse_basin(X, c0, N, upd, q, y, r, z, method, gamma, rtps, rtpp, gate, ce
 
 
 @numba.njit(**_JIT)
-def _normal_row(ck, dh, zc, zs):
-    """The normal pairs of the counters ``ck (N,)`` on one day pair (a loop of its own, so
-    that the compiler pipelines it)."""
-    for i in range(ck.size):
-        zc[i], zs[i] = normal_pair(ck[i], dh)
-
-
-@numba.njit(**_JIT)
 def _spread(a, N):
     """Ensemble standard deviation (ddof = 1) of a (N,) row, two passes."""
     mean = 0.0
@@ -317,10 +319,10 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
             jp = (day >> 1) - first_pair
             odd = day & 1
             if odd == 0 or k == 0:  # the pair's normals, cosine (even day) and sine (odd day)
-                _normal_row(ck_p[b], dh[jp], zcp, zsp)
-                _normal_row(ck_e[b], dh[jp], zce, zse)
+                normal_row(ck_p[b], dh[jp], zcp, zsp, u)
+                normal_row(ck_e[b], dh[jp], zce, zse, u)
                 if enkf and (analyse[k] or (k + 1 < nt and analyse[k + 1])):
-                    _normal_row(ck_o[b], dh[jp], zco, zso)
+                    normal_row(ck_o[b], dh[jp], zco, zso, u)
             zp = zsp if odd else zcp
             ze = zse if odd else zce
             z = zso if odd else zco
