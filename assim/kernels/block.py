@@ -75,18 +75,17 @@ def _gr4j_basin(X, c0, N, P, k1, k2, p, e, pr, q9, q1, runoff):
     every state and parameter row is read and written contiguously (member by member, the
     ~25 rows of a member, a batch apart, conflict in the cache: 55 ns a member-step for the
     unit hydrographs against about 5 row by row)."""
+    c1 = c0 + N
+    S, x1, ix1, px1 = X[0, c0:c1], P[0, c0:c1], P[2, c0:c1], P[3, c0:c1]  # rows of the basin
     for i in range(N):
-        col = c0 + i
-        S_end, pn, ae, perc, pr[i] = _production(X[0, col], p[i], e[i], P[0, col], P[2, col], P[3, col])
-        X[0, col] = S_end
+        S[i], pn, ae, perc, pr[i] = _production(S[i], p[i], e[i], x1[i], ix1[i], px1[i])
     # the unit hydrographs: today's share leaves, the rest moves one day closer
     c2 = 2 + gr4j.N_SLOT1
     _unit_hydrograph(X, c0, N, P, _P0 + k1, k2, c2, pr, q1)  # UH2
     _unit_hydrograph(X, c0, N, P, _P0, k1, 2, pr, q9)  # UH1
-    for i in range(N):
-        col = c0 + i
-        R_end, qr, qd, ex, runoff[i] = _routing(X[1, col], q9[i], q1[i], P[1, col], P[4, col], P[5, col])
-        X[1, col] = R_end
+    R, x3, ix3, cx = X[1, c0:c1], P[1, c0:c1], P[4, c0:c1], P[5, c0:c1]
+    for i in range(N):  # (a loop the compiler vectorises: no library call)
+        R[i], qr, qd, ex, runoff[i] = _routing(R[i], q9[i], q1[i], x3[i], ix3[i], cx[i])
 
 
 @numba.njit(**_JIT)
@@ -123,9 +122,10 @@ def step_basin(code, X, c0, N, P, kk, p, e, scratch, runoff):
     if code == GR4J:
         _gr4j_basin(X, c0, N, P, kk[0], kk[1], p, e, scratch[0], scratch[1], scratch[2], runoff)
         return
+    c1 = c0 + N
+    S, k, c = X[0, c0:c1], P[0, c0:c1], P[1, c0:c1]
     for i in range(N):
-        new, ev, runoff[i] = _store(X[0, c0 + i], p[i], e[i], P[0, c0 + i], P[1, c0 + i])
-        X[0, c0 + i] = new
+        S[i], ev, runoff[i] = _store(S[i], p[i], e[i], k[i], c[i])
 
 
 @numba.njit(**_JIT)
