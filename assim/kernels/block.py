@@ -227,16 +227,16 @@ def analyse_basin(X, c0, N, upd, q, y, r, z, method, gamma, rtps, rtpp, gate, ce
     umean /= N
 
     clipped = 0.0
+    c1 = c0 + N
     for j in range(nu + 1):
-        row = upd[j] if j < nu else -1
+        xr = X[upd[j], c0:c1] if j < nu else q  # the analysed row of the basin's members
         xbar = 0.0
         for i in range(N):
-            xbar += X[row, c0 + i] if j < nu else q[i]
+            xbar += xr[i]
         xbar /= N
         ct = 0.0
         for i in range(N):
-            xi = X[row, c0 + i] if j < nu else q[i]
-            ct += (xi - xbar) * yp[i]
+            ct += (xr[i] - xbar) * yp[i]
         ct /= N - 1
         K = f * ct
         if rtps > 0.0:
@@ -244,8 +244,7 @@ def analyse_basin(X, c0, N, upd, q, y, r, z, method, gamma, rtps, rtpp, gate, ce
             vb = 0.0
             va = 0.0
             for i in range(N):
-                xi = X[row, c0 + i] if j < nu else q[i]
-                dev = xi - xbar
+                dev = xr[i] - xbar
                 vb += dev * dev
                 d[i] = gamma * dev + (u[i] - umean) * K
                 va += d[i] * d[i]
@@ -257,21 +256,24 @@ def analyse_basin(X, c0, N, upd, q, y, r, z, method, gamma, rtps, rtpp, gate, ce
                 d[i] = mean_a + scale * d[i]
         elif gamma == 1.0:
             for i in range(N):
-                d[i] = u[i] * K + (X[row, c0 + i] if j < nu else q[i])
+                d[i] = u[i] * K + xr[i]
         else:
             # Anderson & Anderson (1999): (X + u K / g) g + (1 - g) xbar
             kg = K / gamma
             cg = (1.0 - gamma) * xbar
             for i in range(N):
-                d[i] = (u[i] * kg + (X[row, c0 + i] if j < nu else q[i])) * gamma + cg
-        for i in range(N):
-            v = d[i]
-            if j < nu:
-                fixed = min(max(v, lo[j, c0 + i]), hi[j, c0 + i])
-                clipped += fixed - v
-                X[row, c0 + i] = fixed
-            else:
-                q[i] = max(v, 0.0)
+                d[i] = (u[i] * kg + xr[i]) * gamma + cg
+        if j < nu:
+            low, high = lo[j, c0:c1], hi[j, c0:c1]
+            for i in range(N):
+                v = d[i]
+                xr[i] = min(max(v, low[i]), high[i])
+                d[i] = xr[i] - v
+            for i in range(N):  # (the member order of the sum kept)
+                clipped += d[i]
+        else:
+            for i in range(N):
+                q[i] = max(d[i], 0.0)
     return True, False, innovation, iv, clipped
 
 
