@@ -177,14 +177,14 @@ def _inputs(n_basin=3, n_days=150, seed=2):
     return engine.Inputs(ids, pt.basin_keys(ids), area, days, p, e, obs, rej, params)
 
 
-def _run(inputs, kernel, model="gr4j", **kw):
+def _run(inputs, kernel, model="gr4j", until_day=None, **kw):
     m = models.get(model)
     base = dict(mode="assimilate", members=12, seed=9, update_states=m.default_updated_states(), float32=False,
                 scheduler="synchronous", time_block_days=40, gate_sigma=5.0, spinup_days=10,
                 write_states=m.state_names[:2], kernel=kernel)
     base.update(kw)
     sink = _Collect()
-    summary = engine.run(m, inputs, engine.Settings(**base), sink)
+    summary = engine.run(m, inputs, engine.Settings(**base), sink, until_day=until_day)
     return sink, summary
 
 
@@ -285,6 +285,33 @@ def test_hindcast_on_the_kernel_equals_the_numpy_engine(kw, monkeypatch):
     if kw.get("mode") != "openloop":
         assert sa.n_used.sum() > 100
     assert np.abs(a).max() > 0
+
+
+@pytest.mark.parametrize("model", ["gr4j", "linear_reservoir"])
+def test_forecast_leads_on_the_kernel_equal_the_numpy_leads(model, monkeypatch):
+    """An operational forecast's leads on the compiled kernel (assim.kernels.run_leads, many
+    columns over every lead in cache) equal the numpy model steps, the specification, to
+    1e-12, from an analysed ensemble; with kept states the leads stay on numpy."""
+    from assim import kernels as kmod
+
+    inputs = _inputs(n_days=80)
+    if model == "linear_reservoir":
+        inputs = engine.Inputs(inputs.basin_ids, inputs.keys, inputs.area_km2, inputs.days, inputs.precipitation,
+                               inputs.pet, inputs.observed, inputs.rejected,
+                               {"k": np.array([0.1, 0.3, 0.05]), "c": np.array([0.02, 0.0, 0.05])})
+    _, summary = _run(inputs, "numpy", model=model, write_states=(), until_day=int(inputs.days[60]))
+    calls = []
+    monkeypatch.setattr(kmod, "run_leads", lambda *a, _f=kmod.run_leads, **k: calls.append(1) or _f(*a, **k))
+    m = models.get(model)
+    got = {}
+    for kernel in ("numpy", "auto"):
+        s = engine.Settings(mode="assimilate", members=12, seed=9, update_states=m.default_updated_states(),
+                            kernel=kernel)
+        got[kernel] = engine.forecast_issue(m, inputs, s, summary.state, 15, "observed")
+    assert len(calls) == 1
+    a, b = got["numpy"], got["auto"]
+    assert a.shape == (3, 15, 12) and np.abs(a).max() > 0
+    np.testing.assert_allclose(b, a, rtol=1e-12, atol=1e-12 * np.abs(a).max())
 
 
 def test_linear_reservoir_on_the_kernel_equals_the_numpy_engine():

@@ -147,7 +147,7 @@ def advance(model, inputs, state, settings, t0, t1, *, members, first_output, fi
     )
     hind = None
     if issue_k.size:  # the snapshots as the numpy path keeps them (engine.block.snapshot)
-        snaps = [(t0 + int(k), out["snapshot_states"][j].T.reshape(nb, nm, ns).copy(), params,
+        snaps = [(t0 + int(k), out["snapshot_states"][j].T.reshape(nb, nm, ns), params,
                   {n: out["snapshot_errors"][j, f].copy() for f, n in enumerate(en.FORCINGS)})
                  for j, k in enumerate(issue_k)]
         hind = en.hindcast_forecasts(model, inputs, s, snaps, members, leads, forecast_forcing)

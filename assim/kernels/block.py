@@ -129,6 +129,29 @@ def step_basin(code, X, c0, N, P, kk, p, e, scratch, runoff):
 
 
 @numba.njit(**_JIT)
+def _leads(code, X, P, kk, prec, pet, runoff, width):
+    """Every lead of every column of ``X``, ``width`` columns at a time (they stay in cache
+    over the leads)."""
+    nl, n = prec.shape
+    scratch = np.empty((3, width))
+    for c0 in range(0, n, width):
+        w = min(width, n - c0)
+        for lead in range(nl):
+            step_basin(code, X, c0, w, P, kk, prec[lead, c0:c0 + w], pet[lead, c0:c0 + w], scratch[:, :w],
+                       runoff[lead, c0:c0 + w])
+
+
+def run_leads(code, X, P, kk, prec, pet, width=256):
+    """Forecast leads without analysis: the model over days ``prec``, ``pet`` (lead, batch)
+    mm d-1 from the states ``X`` (n_state, batch), C-ordered, advanced in place; returns the
+    runoff (lead, batch) mm d-1."""
+    runoff = np.empty(prec.shape)
+    _leads(code, X, P, kk, np.ascontiguousarray(prec, dtype=np.float64),
+           np.ascontiguousarray(pet, dtype=np.float64), runoff, int(width))
+    return runoff
+
+
+@numba.njit(**_JIT)
 def _forward(q, kind, offset, lam):
     """assim.filters.Transform.forward of one value (kind 0 none, 1 log, 2 Box-Cox)."""
     if kind == 0:
