@@ -51,10 +51,10 @@ def test_normals_are_the_numbers_of_assim_perturb():
 
 @pytest.mark.parametrize("name", ["gr4j", "linear_reservoir"])
 def test_compiled_model_step_is_the_numpy_step(name):
-    """The compiled member step (the model's element-wise formulas compiled by numba) gives
+    """The compiled model step (the model's element-wise formulas compiled by numba) gives
     the numpy step's states and runoff to 1e-12 over 60 days, for random parameters across
     the valid ranges (X4 from 0.5 to 10 d: every unit-hydrograph length)."""
-    from assim.kernels.block import _step_member
+    from assim.kernels.block import step_basin
 
     m = models.get(name)
     rng = np.random.default_rng(11)
@@ -69,7 +69,9 @@ def test_compiled_model_step_is_the_numpy_step(name):
         p = np.where(rng.random(n) < 0.5, rng.gamma(0.7, 20.0, n), 0.0)
         e = rng.uniform(0.0, 7.0, n)
         x, fl = m.step(x, {"precipitation": p, "pet": e}, prepared)
-        q = np.array([_step_member(code, X, i, P, kk, p[i], e[i]) for i in range(n)])
+        q = np.empty(n)
+        for c0, c1 in ((0, 150), (150, n)):  # two "basins" of the batch
+            step_basin(code, X, c0, c1 - c0, P, kk, p[c0:c1], e[c0:c1], np.empty((3, c1 - c0)), q[c0:c1])
         np.testing.assert_allclose(X.T, x, rtol=1e-12, atol=1e-12, err_msg=f"day {t}")
         np.testing.assert_allclose(q, fl["runoff"], rtol=1e-12, atol=1e-13)
     assert np.asarray(x).sum() > 0
@@ -175,14 +177,14 @@ def _inputs(n_basin=3, n_days=150, seed=2):
     return engine.Inputs(ids, pt.basin_keys(ids), area, days, p, e, obs, rej, params)
 
 
-def _run(inputs, kernel, model="gr4j", **kw):
+def _run(inputs, kernel, model="gr4j", until_day=None, **kw):
     m = models.get(model)
     base = dict(mode="assimilate", members=12, seed=9, update_states=m.default_updated_states(), float32=False,
                 scheduler="synchronous", time_block_days=40, gate_sigma=5.0, spinup_days=10,
                 write_states=m.state_names[:2], kernel=kernel)
     base.update(kw)
     sink = _Collect()
-    summary = engine.run(m, inputs, engine.Settings(**base), sink)
+    summary = engine.run(m, inputs, engine.Settings(**base), sink, until_day=until_day)
     return sink, summary
 
 
@@ -227,6 +229,89 @@ def test_engine_on_the_kernel_equals_the_numpy_engine(kw):
     np.testing.assert_array_equal(sb.state.collapse_days, sa.state.collapse_days)
     if kw.get("mode") != "openloop":
         assert sa.n_used.sum() > 200
+
+
+class _Issues(_Collect):
+    def __init__(self):
+        super().__init__()
+        self.issues = []
+
+    def write_issues(self, start, discharge):
+        assert start == sum(d.shape[1] for d in self.issues)
+        self.issues.append(np.array(discharge))
+
+
+HINDCASTS = [
+    dict(gate_sigma=2.0),
+    dict(method="eakf", inflation=1.1, rtpp=0.3),
+    dict(method="etkf", transform="log", basin_chunk=2),
+    dict(mode="openloop", member_chunk=5),
+]
+
+
+@pytest.mark.parametrize("kw", HINDCASTS, ids=[str(k) for k in HINDCASTS])
+def test_hindcast_on_the_kernel_equals_the_numpy_engine(kw, monkeypatch):
+    """A hindcast whose blocks run on the fused kernel (the ensemble and its AR(1) errors kept
+    at the end of each issue day, the leads run from them) equals the numpy engine, the
+    specification: every forecast of every issue to 1e-12, the end state and the reading
+    counts. Blocks of 21 days with issues every 10 days from day 21: an issue on a block's
+    first day (21) and last day (41), two issues in a block, a block without issues; gaps
+    in the readings, the gate, bounds, inflation, RTPP and a log transform."""
+    from assim.engine import fused
+
+    inputs = _inputs(n_days=120)
+    on_kernel = []
+    monkeypatch.setattr(fused, "advance", lambda *a, _f=fused.advance, **k: on_kernel.append(k) or _f(*a, **k))
+    runs = []
+    for kernel in ("numpy", "compiled"):
+        m = models.get("gr4j")
+        base = dict(mode="assimilate", members=12, seed=9, update_states=m.default_updated_states(),
+                    float32=False, scheduler="synchronous", time_block_days=21, gate_sigma=5.0, spinup_days=21,
+                    kernel=kernel)
+        base.update(kw)
+        sink = _Issues()
+        summary = engine.run(m, inputs, engine.Settings(**base), sink, hindcast=(10, 6, "observed"))
+        runs.append((np.concatenate(sink.issues, axis=1), summary))
+    (a, sa), (b, sb) = runs
+    assert a.shape == (3, 10, 6, 12)  # issues on days 21, 31, ..., 111
+    n_chunks = 2 if kw.get("basin_chunk") else 3 if kw.get("member_chunk") else 1
+    assert sum(len(k["issue_index"]) for k in on_kernel) == 10 * n_chunks  # every issue on the kernel
+    np.testing.assert_allclose(b, a, rtol=1e-12, atol=1e-12 * np.abs(a).max())
+    np.testing.assert_allclose(sb.state.states, sa.state.states, rtol=1e-12, atol=1e-9)
+    for n in ("precipitation", "pet"):
+        np.testing.assert_allclose(sb.state.ar1[n], sa.state.ar1[n], rtol=1e-13, atol=1e-14)
+    np.testing.assert_array_equal(sb.n_used, sa.n_used)
+    np.testing.assert_array_equal(sb.n_gated, sa.n_gated)
+    if kw.get("mode") != "openloop":
+        assert sa.n_used.sum() > 100
+    assert np.abs(a).max() > 0
+
+
+@pytest.mark.parametrize("model", ["gr4j", "linear_reservoir"])
+def test_forecast_leads_on_the_kernel_equal_the_numpy_leads(model, monkeypatch):
+    """An operational forecast's leads on the compiled kernel (assim.kernels.run_leads, many
+    columns over every lead in cache) equal the numpy model steps, the specification, to
+    1e-12, from an analysed ensemble; with kept states the leads stay on numpy."""
+    from assim import kernels as kmod
+
+    inputs = _inputs(n_days=80)
+    if model == "linear_reservoir":
+        inputs = engine.Inputs(inputs.basin_ids, inputs.keys, inputs.area_km2, inputs.days, inputs.precipitation,
+                               inputs.pet, inputs.observed, inputs.rejected,
+                               {"k": np.array([0.1, 0.3, 0.05]), "c": np.array([0.02, 0.0, 0.05])})
+    _, summary = _run(inputs, "numpy", model=model, write_states=(), until_day=int(inputs.days[60]))
+    calls = []
+    monkeypatch.setattr(kmod, "run_leads", lambda *a, _f=kmod.run_leads, **k: calls.append(1) or _f(*a, **k))
+    m = models.get(model)
+    got = {}
+    for kernel in ("numpy", "auto"):
+        s = engine.Settings(mode="assimilate", members=12, seed=9, update_states=m.default_updated_states(),
+                            kernel=kernel)
+        got[kernel] = engine.forecast_issue(m, inputs, s, summary.state, 15, "observed")
+    assert len(calls) == 1
+    a, b = got["numpy"], got["auto"]
+    assert a.shape == (3, 15, 12) and np.abs(a).max() > 0
+    np.testing.assert_allclose(b, a, rtol=1e-12, atol=1e-12 * np.abs(a).max())
 
 
 def test_linear_reservoir_on_the_kernel_equals_the_numpy_engine():

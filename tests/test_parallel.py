@@ -154,7 +154,7 @@ def test_threads_run_through_the_dask_threaded_scheduler():
     assert len(seen) == 3 * len(range(0, 90, 25)) * 2  # a task and its argument per chunk-block
     assert threading.get_ident() not in seen
     assert len(set(seen)) <= 2
-    for fn in (block._block, block.analyse_basin, block._step_member):
+    for fn in (block._block, block.analyse_basin, block.step_basin):
         assert fn.targetoptions["nogil"] is True
 
 

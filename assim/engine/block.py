@@ -525,13 +525,14 @@ def advance(
     -------
     BlockResult
     """
-    if issue_index is None and not check_daily:
+    if not check_daily:
         from assim.engine import fused
 
         if fused.applicable(model, settings):
             r = fused.advance(model, inputs, state, settings, t0, t1, members=members,
                               first_output=first_output, first_analysis=first_analysis,
-                              collect=collect, fixed=fixed)
+                              collect=collect, fixed=fixed, issue_index=issue_index, leads=leads,
+                              forecast_forcing=forecast_forcing)
             if r is not None:
                 return r
             check_daily = True  # a state went non-finite: the numpy path names it

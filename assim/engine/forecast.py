@@ -190,6 +190,15 @@ def forecast_leads(
     out = np.empty((nb, ni, nl, nm))
     kept = np.empty((nb, ni, nl, nm, len(keep_states))) if keep_states else None
     area = area_km2[None, :, None] / SECONDS_PER_DAY_OVER_1000
+    code = _compiled_leads(model, settings, forcing, bool(noise) or bool(keep_states))
+    if code is not None:  # the same steps on the compiled kernel (assim.kernels.run_leads)
+        from assim import kernels
+
+        P, kk = kernels.block.pack_parameters(code, prepared)
+        runoff = kernels.run_leads(code, np.ascontiguousarray(x.T), P, kk, forcing["precipitation"].reshape(nl, -1),
+                                   forcing["pet"].reshape(nl, -1))
+        out[:] = (runoff.reshape(nl, ni, nb, nm) * area[None]).transpose(2, 1, 0, 3)
+        return out
     for lead in range(nl):
         x, fl = model.step(x, {n: f[lead].reshape(-1) for n, f in forcing.items()}, prepared)
         if noise:
@@ -199,6 +208,18 @@ def forecast_leads(
         if keep_states:
             kept[:, :, lead] = x[:, list(keep_states)].reshape(ni, nb, nm, -1).transpose(1, 0, 2, 3)
     return out if kept is None else (out, kept)
+
+
+def _compiled_leads(model, settings: Settings, forcing, needs_numpy: bool) -> int | None:
+    """The compiled model's code when the leads run on the kernel (the runs whose blocks it
+    serves, :func:`assim.engine.fused.applicable`, forced by precipitation and PET, without
+    state noise or kept states), else None."""
+    if needs_numpy or set(forcing) != {"precipitation", "pet"}:
+        return None
+    from assim import kernels
+    from assim.engine import fused
+
+    return kernels.compiled_model(model) if fused.applicable(model, settings) else None
 
 
 def _repeat_batch(prepared: Mapping[str, np.ndarray], n: int) -> dict[str, np.ndarray]:

@@ -1,8 +1,10 @@
 """The engine's block of days on the fused compiled kernel (:mod:`assim.kernels`).
 
 :func:`advance` is :func:`assim.engine.advance` for the runs the kernel serves: a model with
-a compiled form, no additive state noise, no estimated parameters and no hindcast issue in
-the block. It returns the same :class:`assim.engine.BlockResult` (to 1e-12; see
+a compiled form, no additive state noise, no estimated parameters. The kernel keeps the
+ensemble and its AR(1) errors at the end of each hindcast issue day of the block, and the
+forecast leads run from them on the numpy path (:func:`assim.engine.hindcast_forecasts`),
+as after a numpy block. It returns the same :class:`assim.engine.BlockResult` (to 1e-12; see
 ``tests/test_kernels.py``), or None when a state went non-finite, and the caller then runs
 the block on the numpy path, which names the first bad day and state.
 """
@@ -45,7 +47,7 @@ def applicable(model, settings) -> bool:
 
 
 def advance(model, inputs, state, settings, t0, t1, *, members, first_output, first_analysis,
-            collect=True, fixed=None):
+            collect=True, fixed=None, issue_index=None, leads=0, forecast_forcing="observed"):
     """:func:`assim.engine.advance` on the fused kernel (see the module docstring)."""
     from assim import engine as en
     from assim import kernels
@@ -87,12 +89,15 @@ def advance(model, inputs, state, settings, t0, t1, *, members, first_output, fi
         analysed = np.zeros(nt, dtype=bool)
     transform = (s.transform, s.transform_offset, s.transform_lambda)
     wcols = [model.state_index(n) for n in s.write_states]
+    issue_k = np.array([] if issue_index is None else sorted({int(i) - t0 for i in issue_index if t0 <= i < t1}),
+                       dtype=np.int64)
     ok, out = kernels.run_block(
         code, X, P, kk, np.ascontiguousarray(inputs.precipitation[:, t0:t1], dtype=np.float64),
         np.ascontiguousarray(inputs.pet[:, t0:t1], dtype=np.float64), first_day, dh, ck, e_prev, ar1, area,
         np.ascontiguousarray(y, dtype=np.float64), np.ascontiguousarray(r, dtype=np.float64), analysed,
         s.method, s.inflation, s.rtps, s.rtpp, s.gate_sigma, True, transform, upd,
         np.ascontiguousarray(lower[:, upd].T), np.ascontiguousarray(upper[:, upd].T), wcols, spreads=assim,
+        snapshots=issue_k,
     )
     if not ok:
         return None
@@ -135,9 +140,15 @@ def advance(model, inputs, state, settings, t0, t1, *, members, first_output, fi
                 gated_blk, en.OBS_GATED, status_blk))[:, k_out0:].astype(np.int8)
     end = en.EnsembleState(
         day=int(days[-1]) if nt else state.day,
-        states=X.T.reshape(nb, nm, ns).copy(),
+        states=X.T.reshape(nb, nm, ns),  # a view of X: the next block copies it without a transpose
         parameters=params,
         ar1={n: e_prev[j].copy() for j, n in enumerate(en.FORCINGS)} if nt else state.ar1,
         collapse_days=collapse,
     )
-    return en.BlockResult(arrays, end, None, n_used, n_gated, collapse_first)
+    hind = None
+    if issue_k.size:  # the snapshots as the numpy path keeps them (engine.block.snapshot)
+        snaps = [(t0 + int(k), out["snapshot_states"][j].T.reshape(nb, nm, ns), params,
+                  {n: out["snapshot_errors"][j, f].copy() for f, n in enumerate(en.FORCINGS)})
+                 for j, k in enumerate(issue_k)]
+        hind = en.hindcast_forecasts(model, inputs, s, snaps, members, leads, forecast_forcing)
+    return en.BlockResult(arrays, end, hind, n_used, n_gated, collapse_first)

@@ -49,6 +49,6 @@ def _choose_cache_dir() -> None:
 
 _choose_cache_dir()
 
-from assim.kernels.block import COMPILED_MODELS, compiled_model, run_block  # noqa: E402
+from assim.kernels.block import COMPILED_MODELS, compiled_model, run_block, run_leads  # noqa: E402
 
-__all__ = ["COMPILED_MODELS", "cache_dir", "compiled_model", "run_block"]
+__all__ = ["COMPILED_MODELS", "cache_dir", "compiled_model", "run_block", "run_leads"]

@@ -24,8 +24,8 @@ _M2 = _pt._M2
 _M49 = _pt._M49
 _TWO_M53 = _pt._TWO_M53
 _PHI = _pt._PHI
-_SIN = np.array(_pt._SIN_TAYLOR)
-_COS = np.array(_pt._COS_TAYLOR)
+_SIN = tuple(_pt._SIN_TAYLOR)  # tuples: the compiler unrolls the Horner loop (not over an array)
+_COS = tuple(_pt._COS_TAYLOR)
 _SECTOR_COS = _pt._SECTOR_COS.copy()
 _SECTOR_SIN = _pt._SECTOR_SIN.copy()
 
@@ -43,23 +43,22 @@ def mix(x):
 
 @numba.njit(**_JIT)
 def _horner(x, coef):
-    out = x * coef[coef.size - 1]
-    for j in range(coef.size - 2, 0, -1):
+    out = x * coef[len(coef) - 1]
+    for j in range(len(coef) - 2, 0, -1):
         out = out + coef[j]
         out = out * x
     return out + coef[0]
 
 
 @numba.njit(**_JIT)
-def normal_pair(ck, dh):
-    """The two normals of counter ``ck`` (uint64) and day-pair hash ``dh`` (uint64): the
-    cosine one (even day) and the sine one (odd day), as perturb._box_muller."""
+def _angle(ck, dh):
+    """The uniform of the radius and the cosine and sine parts of the angle of counter
+    ``ck`` (uint64) and day-pair hash ``dh`` (uint64), as perturb._box_muller: integer and
+    polynomial work only (no library call), so that a loop of it vectorises."""
     k1 = mix(ck ^ dh)
     k2 = mix(k1 + _GOLDEN)
-    # Box & Muller (1958), Ann. Math. Stat. 29, 610: r = sqrt(-2 ln u1), angle 2 pi u2
-    r = float(np.int64(k1 >> np.uint64(11)))
-    r = (r + 0.5) * _TWO_M53
-    r = math.sqrt(math.log(r) * -2.0)
+    u = float(np.int64(k1 >> np.uint64(11)))
+    u = (u + 0.5) * _TWO_M53
     sector = np.int64(k2 >> np.uint64(60))
     phi = float(np.int64((k2 >> np.uint64(11)) & _M49)) * _PHI
     xx = phi * phi
@@ -67,7 +66,35 @@ def normal_pair(ck, dh):
     c = _horner(xx, _COS)
     a = _SECTOR_COS[sector]
     b = _SECTOR_SIN[sector]
-    return (a * c - b * s) * r, (b * c + a * s) * r
+    return u, a * c - b * s, b * c + a * s
+
+
+@numba.njit(**_JIT)
+def _radius(u):
+    # Box & Muller (1958), Ann. Math. Stat. 29, 610: r = sqrt(-2 ln u1), angle 2 pi u2
+    return math.sqrt(math.log(u) * -2.0)
+
+
+@numba.njit(**_JIT)
+def normal_pair(ck, dh):
+    """The two normals of counter ``ck`` (uint64) and day-pair hash ``dh`` (uint64): the
+    cosine one (even day) and the sine one (odd day), as perturb._box_muller."""
+    u, c, s = _angle(ck, dh)
+    r = _radius(u)
+    return c * r, s * r
+
+
+@numba.njit(**_JIT)
+def normal_row(ck, dh, zc, zs, u):
+    """The normal pairs of the counters ``ck (N,)`` on one day pair (hash ``dh``) into
+    ``zc``, ``zs`` (N,), as :func:`normal_pair`; ``u`` (N,) scratch. Two loops: the angles
+    (vectorised by the compiler), then the radii (a library logarithm each)."""
+    for i in range(ck.size):
+        u[i], zc[i], zs[i] = _angle(ck[i], dh)
+    for i in range(ck.size):
+        r = _radius(u[i])
+        zc[i] = zc[i] * r
+        zs[i] = zs[i] * r
 
 
 @numba.njit(**_JIT)
