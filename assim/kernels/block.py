@@ -5,10 +5,12 @@ for the whole block):
 
 1. the forcing errors: the AR(1) log errors of precipitation and PET from the day's
    counter-based normals (:mod:`assim.kernels.normals`), turned into lognormal multipliers
-   as :class:`assim.perturb.LognormalAR1` does;
+   as :class:`assim.perturb.LognormalAR1` does; with the snow routine, the temperature's
+   additive AR(1) error (:class:`assim.perturb.GaussianAR1`, stream 5);
 2. the model step, compiled from the model's element-wise formulas
    (:func:`assim.models.gr4j.production`, :func:`assim.models.gr4j.routing`,
-   :func:`assim.models.linear_reservoir.store`), and the discharge in m3 s-1;
+   :func:`assim.models.linear_reservoir.store`; behind :func:`assim.models.snow.day` for
+   ``<model>+snow``), and the discharge in m3 s-1;
 3. on an analysed day with a reading, the one-observation analysis of
    :func:`assim.filters.ensemble_update` (enkf, etkf, eakf; multiplicative inflation, RTPP,
    RTPS; log or Box-Cox transform; gate; bounds with the clipped water), with the analysis
@@ -31,7 +33,7 @@ import numba
 import numpy as np
 
 from assim.kernels.normals import normal_pair
-from assim.models import gr4j, linear_reservoir
+from assim.models import gr4j, linear_reservoir, snow
 
 _JIT = dict(cache=True, nogil=True, error_model="numpy", fastmath=False)
 
@@ -39,9 +41,11 @@ _JIT = dict(cache=True, nogil=True, error_model="numpy", fastmath=False)
 _production = numba.njit(**_JIT)(gr4j.production)
 _routing = numba.njit(**_JIT)(gr4j.routing)
 _store = numba.njit(**_JIT)(linear_reservoir.store)
+_snow_day = numba.njit(**_JIT)(snow.day)
 
 GR4J, LINEAR_RESERVOIR = 0, 1
 COMPILED_MODELS = {"gr4j": GR4J, "linear_reservoir": LINEAR_RESERVOIR}
+SNOW = 2  # added to a model's code: the model behind the degree-day snow routine
 METHOD_CODES = {"enkf": 0, "etkf": 1, "eakf": 2}
 TRANSFORM_CODES = {"none": 0, "log": 1, "boxcox": 2}
 _P0 = 6  # GR4J: first row of the UH ordinates in the packed parameters
@@ -50,7 +54,12 @@ _P0 = 6  # GR4J: first row of the UH ordinates in the packed parameters
 def compiled_model(model) -> int | None:
     """The code of ``model``'s compiled form, None when it has none (a user model).
 
-    A model has a compiled form when it is the registered built-in (same step function)."""
+    A model has a compiled form when it is the registered built-in (same step function), or
+    such a model behind the snow routine (:func:`assim.models.snow.wrap`; code + ``SNOW``)."""
+    base = snow.unwrap(model)
+    if base is not None:
+        code = compiled_model(base)
+        return None if code is None else code + SNOW
     code = COMPILED_MODELS.get(model.name)
     if code is None:
         return None
@@ -59,13 +68,24 @@ def compiled_model(model) -> int | None:
 
 
 def pack_parameters(code: int, prepared) -> tuple[np.ndarray, np.ndarray]:
-    """Prepared parameters (dict of (batch, ...)) -> (rows, batch) float64 and (2,) int64."""
-    if code == GR4J:
+    """Prepared parameters (dict of (batch, ...)) -> (rows, batch) float64 and (4,) int64.
+
+    The integers: the GR4J unit-hydrograph lengths k1, k2; with the snow routine, the first
+    row of its parameters (:data:`assim.models.snow.KERNEL_ROWS`, after the model's) and the
+    state row of the snowpack (after the model's states; the liquid water follows)."""
+    kk = np.zeros(4, dtype=np.int64)
+    if code % SNOW == GR4J:
         o1, o2 = prepared["_uh1"], prepared["_uh2"]
-        k = np.array([o1.shape[1], o2.shape[1]], dtype=np.int64)
-        rows = [prepared[n] for n in ("x1", "x3", "_inv_x1", "_perc_x1", "_inv_x3", "_exchange")]
-        return np.ascontiguousarray(np.vstack(rows + [o1.T, o2.T])), k
-    return np.ascontiguousarray(np.vstack([prepared["k"], prepared["c"]])), np.zeros(2, dtype=np.int64)
+        kk[:2] = o1.shape[1], o2.shape[1]
+        rows = [prepared[n] for n in ("x1", "x3", "_inv_x1", "_perc_x1", "_inv_x3", "_exchange")] + [o1.T, o2.T]
+        kk[3] = gr4j.N_STATE
+    else:
+        rows = [prepared["k"], prepared["c"]]
+        kk[3] = len(linear_reservoir.MODEL.states)
+    if code >= SNOW:
+        kk[2] = sum(np.atleast_2d(r).shape[0] for r in rows)
+        rows += [prepared[n] for n in snow.KERNEL_ROWS]
+    return np.ascontiguousarray(np.vstack(rows)), kk
 
 
 @numba.njit(**_JIT)
@@ -104,6 +124,21 @@ def _step_member(code, X, col, P, kk, p, e):
     new, ev, runoff = _store(X[0, col], p, e, P[0, col], P[1, col])
     X[0, col] = new
     return runoff
+
+
+@numba.njit(**_JIT)
+def _member(code, X, col, P, kk, p, e, t):
+    """One day of batch element ``col``, in place, behind the snow routine when ``code`` says
+    so (temperature ``t``, degC); returns the runoff (mm d-1)."""
+    if code >= SNOW:
+        r, s = kk[2], kk[3]
+        pack, liquid, rain, snowfall, melt, refreeze, outflow = _snow_day(
+            X[s, col], X[s + 1, col], p, t, P[r, col], P[r + 1, col], P[r + 2, col], P[r + 3, col],
+            P[r + 4, col], P[r + 5, col])
+        X[s, col] = pack
+        X[s + 1, col] = liquid
+        return _step_member(code - SNOW, X, col, P, kk, outflow, e)
+    return _step_member(code, X, col, P, kk, p, e)
 
 
 @numba.njit(**_JIT)
@@ -277,18 +312,24 @@ def _spread(a, N):
 @numba.njit(**_JIT)
 def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e, ar1, area,
            y, r, analyse, method, gamma, rtps, rtpp, gate, centre, tr_kind, tr_off, tr_lam,
-           upd, lo, hi, wcols, q_out, qa_out, w_out, innov, ivar, clip, used, gated, sd_b, sd_a):
+           upd, lo, hi, wcols, q_out, qa_out, w_out, innov, ivar, clip, used, gated, sd_b, sd_a,
+           temp, ck_t, e_t):
     """Every basin of the chunk over the block's days; returns False if a discharge or a
     state went non-finite (the caller then runs the block on the numpy path, which names
-    the first bad day)."""
+    the first bad day). With the snow routine (``code >= SNOW``), ``temp`` (basin, day) is
+    the temperature, ``ck_t`` its counter keys, ``e_t`` its AR(1) errors and ``ar1[8:11]``
+    phi, sqrt(1 - phi^2) and sd of its error; else they are not read."""
     nb, nt, N = q_out.shape
     phi_p, c_p, s_p, h_p, phi_e, c_e, s_e, h_e = ar1[0], ar1[1], ar1[2], ar1[3], ar1[4], ar1[5], ar1[6], ar1[7]
     first_pair = first_day >> 1
     enkf = method == 0
-    zn = np.empty((6, N))
-    zcp, zsp, zce, zse, zco, zso = zn[0], zn[1], zn[2], zn[3], zn[4], zn[5]
+    has_snow = code >= SNOW
+    phi_t, c_t, sd_t = (ar1[8], ar1[9], ar1[10]) if has_snow else (0.0, 0.0, 0.0)
+    zn = np.empty((8, N))
+    zcp, zsp, zce, zse, zco, zso, zct, zst = zn[0], zn[1], zn[2], zn[3], zn[4], zn[5], zn[6], zn[7]
     fp = np.empty(N)
     fe = np.empty(N)
+    ft = np.zeros(N)
     q = np.empty(N)
     yp = np.empty(N)
     u = np.empty(N)
@@ -305,9 +346,12 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
                 _normal_row(ck_e[b], dh[jp], zce, zse)
                 if enkf and (analyse[k] or (k + 1 < nt and analyse[k + 1])):
                     _normal_row(ck_o[b], dh[jp], zco, zso)
+                if has_snow:
+                    _normal_row(ck_t[b], dh[jp], zct, zst)
             zp = zsp if odd else zcp
             ze = zse if odd else zce
             z = zso if odd else zco
+            zt = zst if odd else zct
             pk = prec[b, k]
             ek = pet[b, k]
             ana = analyse[k] and math.isfinite(y[b, k])
@@ -319,8 +363,15 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
                 e_e[b, i] = ee
                 fp[i] = math.exp(s_p * ep - h_p) * pk
                 fe[i] = math.exp(s_e * ee - h_e) * ek
+            if has_snow:
+                tk = temp[b, k]
+                for i in range(N):
+                    # assim.perturb.GaussianAR1: additive error sd e, e a stationary AR(1)
+                    et = phi_t * e_t[b, i] + c_t * zt[i]
+                    e_t[b, i] = et
+                    ft[i] = sd_t * et + tk
             for i in range(N):
-                runoff = _step_member(code, X, c0 + i, P, kk, fp[i], fe[i])
+                runoff = _member(code, X, c0 + i, P, kk, fp[i], fe[i], ft[i])
                 q[i] = runoff * area[b]
                 q_out[b, k, i] = q[i]
                 if not math.isfinite(q[i]):
@@ -350,7 +401,8 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
 
 
 def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y, r, analyse,
-              method, gamma, rtps, rtpp, gate, centre, transform, upd, lo, hi, wcols, spreads=False):
+              method, gamma, rtps, rtpp, gate, centre, transform, upd, lo, hi, wcols, spreads=False,
+              temperature=None):
     """Advance a chunk over a block in one compiled call (see the module docstring).
 
     Parameters
@@ -372,6 +424,10 @@ def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y
     transform : (kind, offset, lambda); upd : (n_u,) int rows updated; lo, hi : (n_u,
         basin * member) their bounds; wcols : (n_w,) int, state rows recorded
     spreads : also return the member spreads of the discharge before and after the analysis
+    temperature : with the snow routine, ``(t, ck_t, e_t, (phi, sqrt(1 - phi^2), sd))``: the
+        unperturbed temperature (basin, day) degC, the counter keys (basin, member) uint64 of
+        its stream, its AR(1) errors of the day before (basin, member) float64, advanced in
+        place, and its error model (:class:`assim.perturb.GaussianAR1`)
 
     Returns
     -------
@@ -396,12 +452,18 @@ def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y
     kind, offset, lam = transform
     if kind == "boxcox" and lam == 0.0:
         kind = "log"
+    ar1 = np.asarray(ar1, dtype=np.float64)
+    if temperature is None:
+        temp, ck_t, e_t = np.empty((nb, 0)), np.empty((nb, 0), dtype=np.uint64), np.empty((nb, 0))
+    else:
+        temp, ck_t, e_t, err_t = temperature
+        ar1 = np.concatenate([ar1, np.asarray(err_t, dtype=np.float64)])
     ok = _block(
         code, X, P, kk, prec, pet, np.int64(first_day), dh, ck[0], ck[1], ck[2], e_prev[0], e_prev[1],
-        np.asarray(ar1, dtype=np.float64), area, y, r, analyse, METHOD_CODES[method], float(gamma),
+        ar1, area, y, r, analyse, METHOD_CODES[method], float(gamma),
         float(rtps), float(rtpp), float(gate), bool(centre), TRANSFORM_CODES[kind], float(offset),
         float(lam), np.asarray(upd, dtype=np.int64), lo, hi, np.asarray(wcols, dtype=np.int64),
-        q_out, qa_out, w_out, innov, ivar, clip, used, gated, sd_b, sd_a,
+        q_out, qa_out, w_out, innov, ivar, clip, used, gated, sd_b, sd_a, temp, ck_t, e_t,
     )
     return bool(ok), {"discharge": q_out, "discharge_analysis": qa_out, "states": w_out,
                       "innovation": innov, "innovation_variance": ivar, "clipped_water": clip,
