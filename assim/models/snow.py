@@ -22,6 +22,9 @@ every element of the flat batch (T the day's mean air temperature, degC):
 With no pack and no snowfall (T above the transition interval, or a basin whose
 ``snow_routine`` is 0) every step above adds or subtracts exact zeros, so the wrapped model
 receives P bit for bit: a rain-only basin computes exactly what the model alone computes.
+The day's formulas are one element-wise function, :func:`day`, that the numpy step applies
+to the batch and :mod:`assim.kernels` compiles as it is, behind the compiled form of any
+model that has one (:func:`unwrap` finds the wrapped model).
 
 The wrapped model's states come first, then ``snowpack`` (solid, mm; the filter may update
 it) and ``snow_liquid`` (liquid water held in the pack, mm). Its parameters are the model's
