@@ -654,26 +654,35 @@ def test_temperature_error_is_an_additive_gaussian_ar1():
         np.testing.assert_array_equal(fr[name], forcing[name])
 
 
-def test_snow_runs_need_their_temperature_and_skip_the_compiled_kernel():
-    """A snow model without temperature in the inputs is refused; the compiled kernel has no
-    form for <model>+snow, so kernel auto runs numpy and kernel compiled is a ConfigError."""
+def test_snow_runs_need_their_temperature_and_run_on_the_compiled_kernel():
+    """A snow model without temperature in the inputs is refused; <model>+snow has a compiled
+    form when <model> has one (kernel auto and compiled both run it on the kernel), and a
+    user model behind the snow routine has none (auto runs numpy, compiled is a ConfigError)."""
     from assim.engine import fused
     from assim.errors import ConfigError
+    from assim.models import base, snow
 
     rng = np.random.default_rng(2)
     p, e = synthetic_weather(rng, 1, 30)
     inputs = make_inputs(SNOW, snow_params(1), p, e)
     with pytest.raises(ValueError, match="temperature"):
         engine.run(SNOW, inputs, engine.Settings(members=2, scheduler="synchronous"), None)
-    assert fused.kernel_choice(SNOW, engine.Settings()) == "model 'gr4j+snow' has no compiled form"
-    assert not fused.applicable(SNOW, engine.Settings(kernel="auto"))
+    assert fused.kernel_choice(SNOW, engine.Settings()) is None
+    assert fused.applicable(SNOW, engine.Settings(kernel="auto"))
+    assert settings_from_config(load_config(ensemble={"kernel": "compiled"}), SNOW, "assimilate").kernel == "compiled"
+    user = snow.wrap(models.Model(**{**{f: getattr(GR4J, f) for f in GR4J.__dataclass_fields__},
+                                     "name": "user_gr4j", "step": lambda s, f, q: GR4J.step(s, f, q)}))
+    base._REGISTRY.pop(user.name)  # (wrap registers it; other tests list the registered models)
+    assert fused.kernel_choice(user, engine.Settings()) == "model 'user_gr4j+snow' has no compiled form"
+    assert not fused.applicable(user, engine.Settings(kernel="auto"))
     with pytest.raises(ConfigError, match="no compiled form"):
-        settings_from_config(load_config(ensemble={"kernel": "compiled"}), SNOW, "assimilate")
+        settings_from_config(load_config(ensemble={"kernel": "compiled"}), user, "assimilate")
 
 
 def test_snow_continued_run_and_forecast_leads():
     """With the temperature perturbed: a run continued from its end state (snowpack and the
-    temperature error included) equals the one-shot run bit for bit; an observed-forcing
+    temperature error included) equals the one-shot run bit for bit, on the numpy path and on
+    the compiled kernel; an observed-forcing
     forecast continues the run exactly (discharge and the snowpack of every lead); climatology and file forecasts take their
     temperature from the same source as their precipitation (colder leads, more snow, less
     discharge)."""
@@ -687,8 +696,9 @@ def test_snow_continued_run_and_forecast_leads():
                          obs_error=engine.ObsError("relative", 1.0, 0.1, 0.05))
     obs = np.where(rng.random((nb, nt)) < 0.8, 0.5 + rng.gamma(2.0, 1.0, (nb, nt)), np.nan)
     inputs = dataclasses.replace(inputs, observed=obs)
-    for mode in ("openloop", "assimilate"):
-        sm = dataclasses.replace(st, mode=mode)
+    for mode, kernel in (("openloop", "numpy"), ("assimilate", "numpy"), ("openloop", "compiled"),
+                         ("assimilate", "compiled")):
+        sm = dataclasses.replace(st, mode=mode, kernel=kernel)
         whole = Collect()
         one = engine.run(SNOW, inputs, sm, whole)
         cut = int(inputs.days[500])

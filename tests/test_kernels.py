@@ -49,32 +49,51 @@ def test_normals_are_the_numbers_of_assim_perturb():
         assert np.abs(want).max() > 2.0
 
 
-@pytest.mark.parametrize("name", ["gr4j", "linear_reservoir"])
+@pytest.mark.parametrize("name", ["gr4j", "linear_reservoir", "gr4j+snow", "linear_reservoir+snow"])
 def test_compiled_model_step_is_the_numpy_step(name):
     """The compiled model step (the model's element-wise formulas compiled by numba) gives
     the numpy step's states and runoff to 1e-12 over 60 days, for random parameters across
-    the valid ranges (X4 from 0.5 to 10 d: every unit-hydrograph length)."""
+    the valid ranges (X4 from 0.5 to 10 d: every unit-hydrograph length). Behind the snow
+    routine (assim.models.snow.day, compiled as it is): temperatures around the thresholds
+    (snowfall, melt, mixed days, refreezing), a zero-width transition, basins with the
+    routine off, and a snowpack and liquid water in the state from the first day."""
     from assim.kernels.block import step_basin
 
     m = models.get(name)
     rng = np.random.default_rng(11)
     n = 400
     params = {p.name: rng.uniform(p.low, p.high, n) for p in m.parameters}
+    if "snow_routine" in params:
+        params["snow_routine"] = (rng.random(n) < 0.8).astype(float)
+        params["snow_interval"][rng.random(n) < 0.2] = 0.0
     prepared = m.prepare(params)
     code = kernels.compiled_model(m)
+    assert (code >= kernels.block.SNOW) == name.endswith("+snow")
     P, kk = pack_parameters(code, prepared)
     x = m.initial_state(params)
+    if name.endswith("+snow"):
+        x[:, -2] = rng.gamma(0.5, 40.0, n)
+        x[:, -1] = 0.1 * x[:, -2] * rng.random(n)
     X = np.ascontiguousarray(np.asarray(x).T)
+    melt = snowfall = 0.0
     for t in range(60):
         p = np.where(rng.random(n) < 0.5, rng.gamma(0.7, 20.0, n), 0.0)
         e = rng.uniform(0.0, 7.0, n)
-        x, fl = m.step(x, {"precipitation": p, "pet": e}, prepared)
+        temp = rng.normal(0.0, 4.0, n)
+        on = rng.random(n) < 0.1  # on the transition's centre (the zero-width threshold's edge)
+        if "snow_threshold" in params:
+            temp[on] = params["snow_threshold"][on]
+        x, fl = m.step(x, {"precipitation": p, "pet": e, "temperature": temp}, prepared)
         q = np.empty(n)
         for c0, c1 in ((0, 150), (150, n)):  # two "basins" of the batch
-            step_basin(code, X, c0, c1 - c0, P, kk, p[c0:c1], e[c0:c1], np.empty((3, c1 - c0)), q[c0:c1])
+            step_basin(code, X, c0, c1 - c0, P, kk, p[c0:c1], e[c0:c1], temp[c0:c1], np.empty((4, c1 - c0)),
+                       q[c0:c1])
         np.testing.assert_allclose(X.T, x, rtol=1e-12, atol=1e-12, err_msg=f"day {t}")
         np.testing.assert_allclose(q, fl["runoff"], rtol=1e-12, atol=1e-13)
+        melt += fl.get("melt", np.zeros(1)).sum()
+        snowfall += fl.get("snowfall", np.zeros(1)).sum()
     assert np.asarray(x).sum() > 0
+    assert (melt > 1000 and snowfall > 1000) == name.endswith("+snow")
 
 
 def _kernel_analysis(X, q, y, r, z, method, infl, gate, lower, upper, transform):
@@ -429,3 +448,199 @@ def test_compiled_code_is_cached_in_the_user_folder_and_reused(tmp_path):
     assert first[1].strip() == "0" and second[1].strip() == "1"  # compiled, then loaded from the cache
     assert list(cache.rglob("*.nbi"))
     assert not list(pkg.rglob("*.nbi"))
+
+
+# ---------------------------------------------------------------- the snow routine on the kernel
+
+
+SNOW_PARAMS = {"snow_threshold": 0.5, "snow_interval": 2.0, "melt_threshold": 0.0, "degree_day_factor": 3.5,
+               "water_holding": 0.1, "refreezing": 0.05}
+
+
+def _snow_inputs(n_basin=3, n_days=150, seed=2, routine=(1.0, 0.0, 1.0), intervals=(2.0, 2.0, 0.0)):
+    """The synthetic basins with a winter's temperature (accumulation from the first days,
+    mixed days around the threshold, melt in spring) and the snow routine's parameters:
+    basin-1 rain only (snow_routine 0) between two snow basins, one with a zero-width
+    transition."""
+    inputs = _inputs(n_basin, n_days, seed)
+    rng = np.random.default_rng(seed + 100)
+    day = np.arange(n_days)
+    temp = -4.0 + 9.0 * (day / n_days) ** 2 + rng.normal(0.0, 3.0, (n_basin, n_days))
+    params = {**inputs.parameters, **{k: np.full(n_basin, v) for k, v in SNOW_PARAMS.items()}}
+    params["snow_routine"] = np.array(routine[:n_basin])
+    params["snow_interval"] = np.array(intervals[:n_basin])
+    return engine.Inputs(inputs.basin_ids, inputs.keys, inputs.area_km2, inputs.days, inputs.precipitation,
+                         inputs.pet, inputs.observed, inputs.rejected, params, temperature=temp)
+
+
+SNOW_RUNS = [
+    dict(),
+    dict(method="etkf", temperature=pt.GaussianAR1(2.0, 0.8)),
+    dict(method="eakf", inflation=1.03, temperature=pt.GaussianAR1(1.0, 0.0)),
+    dict(method="enkf", rtpp=0.3, inflation=1.02, transform="log", temperature=pt.GaussianAR1(1.5, 0.6)),
+    dict(method="etkf", transform="boxcox", gate_sigma=2.0, temperature=pt.GaussianAR1(1.5, 0.6)),
+    dict(method="enkf", rtps=0.5, temperature=pt.GaussianAR1(1.5, 0.6)),
+    dict(mode="openloop", member_chunk=5, time_block_days=33, temperature=pt.GaussianAR1(1.5, 0.6)),
+    dict(basin_chunk=2, time_block_days=7, temperature=pt.GaussianAR1(1.5, 0.6)),
+]
+
+
+def _assert_runs_close(a, sa, b, sb, tol):
+    assert list(a.blocks[0]) == list(b.blocks[0])
+    for name in a.blocks[0]:
+        x, y = a[name], b[name]
+        assert x.dtype == y.dtype, name
+        if x.dtype.kind == "f":
+            np.testing.assert_array_equal(np.isnan(x), np.isnan(y), err_msg=name)
+            scale = 12 * np.abs(sa.state.states).max() if name == "clipped_water" else np.nanmax(np.abs(x))
+            np.testing.assert_allclose(y, x, rtol=tol, atol=tol * scale, err_msg=name)
+        else:
+            np.testing.assert_array_equal(y, x, err_msg=name)
+    np.testing.assert_allclose(sb.state.states, sa.state.states, rtol=tol, atol=tol * 1e3)
+    assert sorted(sb.state.ar1) == sorted(sa.state.ar1)
+    for n in sa.state.ar1:
+        np.testing.assert_allclose(sb.state.ar1[n], sa.state.ar1[n], rtol=1e-13, atol=1e-14, err_msg=n)
+    np.testing.assert_array_equal(sb.n_used, sa.n_used)
+    np.testing.assert_array_equal(sb.n_gated, sa.n_gated)
+    np.testing.assert_array_equal(sb.state.collapse_days, sa.state.collapse_days)
+
+
+@pytest.mark.parametrize("kw", SNOW_RUNS, ids=[str(k) for k in SNOW_RUNS])
+def test_snow_on_the_kernel_equals_the_numpy_engine(kw):
+    """gr4j+snow on the fused kernel (the snow routine's element-wise formulas compiled as
+    they are, the temperature error from the same counter-based normals of stream 5) equals
+    the numpy engine, its specification, over a 150-day winter: accumulation, mixed days,
+    melt, a zero-width transition, a rain-only basin, gaps and rejected readings, the gate,
+    the snowpack updated by the filter and clipped at zero, enkf/etkf/eakf with inflation,
+    RTPP, RTPS; every recorded output, the counters and the end state (snowpack and the
+    temperature's AR(1) error included) to 1e-12 (RTPS 1e-9, as above). The inflation is
+    mild: with 1.1 on every analysis the snowpack's spread only grows, and the run itself
+    (numpy against numpy) turns a 1e-15 change of the precipitation into 1e-8 by spring."""
+    inputs = _snow_inputs()
+    run_kw = dict(model="gr4j+snow", write_states=("snowpack", "snow_liquid", "production_store"), **kw)
+    (a, sa), (b, sb) = _run(inputs, "numpy", **run_kw), _run(inputs, "compiled", **run_kw)
+    _assert_runs_close(a, sa, b, sb, 1e-9 if kw.get("rtps") else 1e-12)
+    pack = a["snowpack"]
+    assert pack[0].max() > 20.0 and pack[2].max() > 20.0 and (pack[1] == 0).all()  # snow, and none in basin-1
+    assert (np.diff(pack[0].mean(axis=-1)) < -1.0).any()  # it melted
+    if kw.get("mode") != "openloop":
+        assert sa.n_used.sum() > 150
+        assert np.abs(b["discharge_analysis"] - b["discharge"]).max() > 0.1
+
+
+def test_snow_hindcast_and_forecast_on_the_kernel_equal_the_numpy_engine(monkeypatch):
+    """gr4j+snow in a hindcast whose blocks run on the kernel (the ensemble, the forcing
+    errors and the temperature's AR(1) error kept at each issue day) and whose leads run on
+    the kernel too (kernels.run_leads behind the snow routine) equals the numpy engine to
+    1e-12: every forecast of every issue through a winter, the end state and its errors."""
+    from assim import kernels as kmod
+    from assim.engine import fused
+
+    inputs = _snow_inputs()
+    on_kernel, leads = [], []
+    monkeypatch.setattr(fused, "advance", lambda *a, _f=fused.advance, **k: on_kernel.append(k) or _f(*a, **k))
+    monkeypatch.setattr(kmod, "run_leads", lambda *a, _f=kmod.run_leads, **k: leads.append(k) or _f(*a, **k))
+    runs = []
+    for kernel in ("numpy", "compiled"):
+        m = models.get("gr4j+snow")
+        s = engine.Settings(mode="assimilate", members=12, seed=9, update_states=m.default_updated_states(),
+                            float32=False, scheduler="synchronous", time_block_days=21, gate_sigma=5.0,
+                            spinup_days=21, kernel=kernel, temperature=pt.GaussianAR1(1.5, 0.6))
+        sink = _Issues()
+        summary = engine.run(m, inputs, s, sink, hindcast=(10, 6, "observed"))
+        runs.append((np.concatenate(sink.issues, axis=1), summary))
+    (a, sa), (b, sb) = runs
+    assert a.shape[:2] == (3, 13) and np.abs(a).max() > 0
+    assert sum(len(k["issue_index"]) for k in on_kernel) == 13
+    assert leads and all(k["temperature"] is not None for k in leads)
+    np.testing.assert_allclose(b, a, rtol=1e-12, atol=1e-12 * np.abs(a).max())
+    np.testing.assert_allclose(sb.state.states, sa.state.states, rtol=1e-12, atol=1e-9)
+    assert sorted(sb.state.ar1) == sorted(sa.state.ar1) == ["pet", "precipitation", "temperature"]
+    for n in sa.state.ar1:
+        np.testing.assert_allclose(sb.state.ar1[n], sa.state.ar1[n], rtol=1e-13, atol=1e-14, err_msg=n)
+
+
+def test_linear_reservoir_behind_the_snow_routine_on_the_kernel():
+    """linear_reservoir+snow on the kernel equals the numpy engine to 1e-12 (any model with a
+    compiled form has one behind the snow routine)."""
+    inputs = _snow_inputs()
+    params = {**{k: v for k, v in inputs.parameters.items() if not k.startswith("x")},
+              "k": np.array([0.1, 0.3, 0.05]), "c": np.array([0.02, 0.0, 0.05])}
+    inputs = engine.Inputs(inputs.basin_ids, inputs.keys, inputs.area_km2, inputs.days, inputs.precipitation,
+                           inputs.pet, inputs.observed, inputs.rejected, params, temperature=inputs.temperature)
+    kw = dict(model="linear_reservoir+snow", write_states=("store", "snowpack"), method="etkf",
+              temperature=pt.GaussianAR1(1.0, 0.5))
+    (a, sa), (b, sb) = _run(inputs, "numpy", **kw), _run(inputs, "compiled", **kw)
+    _assert_runs_close(a, sa, b, sb, 1e-12)
+    assert a["snowpack"][0].max() > 20.0 and sa.n_used.sum() > 150
+
+
+def test_a_rain_only_basin_beside_snow_basins_is_bit_identical_on_the_kernel():
+    """A run with snow basins is one gr4j+snow run in which a rain-only basin has
+    snow_routine 0: on the kernel that basin's numbers (every output, its end state and
+    AR(1) errors) are bit for bit those of the same basin in a gr4j run without any snow
+    basin, whatever the chunking (the snow routine passes its precipitation through with
+    exact zeros; its snowpack has no spread, so the analysis leaves it at zero). Reference:
+    issue #15 ("a rain-only basin pays nothing"); the model alone (assim.models.gr4j)."""
+    snowy = _snow_inputs(routine=(1.0, 0.0, 1.0), intervals=(2.0, 2.0, 2.0))
+    plain = engine.Inputs(snowy.basin_ids, snowy.keys, snowy.area_km2, snowy.days, snowy.precipitation, snowy.pet,
+                          snowy.observed, snowy.rejected, {k: snowy.parameters[k] for k in ("x1", "x2", "x3", "x4")})
+    for kw in (dict(method="eakf", inflation=1.1), dict(method="enkf", basin_chunk=1, rtps=0.4),
+               dict(method="etkf", basin_chunk=2, transform="log")):
+        a, sa = _run(plain, "compiled", write_states=("production_store", "routing_store"), **kw)
+        b, sb = _run(snowy, "compiled", model="gr4j+snow", temperature=pt.GaussianAR1(1.5, 0.6),
+                     write_states=("production_store", "routing_store", "snowpack"), **kw)
+        for name in a.blocks[0]:
+            np.testing.assert_array_equal(b[name][1], a[name][1], err_msg=name)
+        assert (b["snowpack"][1] == 0).all() and b["snowpack"][0].max() > 20.0
+        np.testing.assert_array_equal(sb.state.states[1, :, :-2], sa.state.states[1])
+        for n in ("precipitation", "pet"):
+            np.testing.assert_array_equal(sb.state.ar1[n][1], sa.state.ar1[n][1])
+        assert not np.array_equal(b["discharge"][0], a["discharge"][0])  # the snow basin did differ
+        assert sa.n_used[1] > 50 and sb.n_used[1] == sa.n_used[1]
+
+
+def test_the_snow_routine_keeps_its_compiled_form_in_another_process():
+    """A model travels to a process worker by value (cloudpickle): gr4j+snow still has its
+    compiled form there, so every scheduler runs it on the kernel."""
+    import cloudpickle
+
+    m = models.get("gr4j+snow")
+    copy = cloudpickle.loads(cloudpickle.dumps(m))
+    assert kernels.compiled_model(copy) == kernels.compiled_model(m) == kernels.block.GR4J + kernels.block.SNOW
+    assert kernels.compiled_model(models.get("linear_reservoir+snow")) == kernels.block.LINEAR_RESERVOIR + 2
+    user = models.Model(**{**{f: getattr(m, f) for f in m.__dataclass_fields__},
+                           "step": lambda s, f, p: m.step(s, f, p)})
+    assert kernels.compiled_model(user) is None
+
+
+@pytest.mark.parametrize("base", ["gr4j", "linear_reservoir"])
+def test_water_balance_closes_with_the_snowpack_on_the_kernel(base):
+    """The compiled step behind the snow routine conserves water: every day of three years
+    of cold winters, the change of all its states (snowpack and liquid water included) equals
+    precipitation + exchange - evaporation - the kernel's runoff to 1e-9 (the evaporation
+    and exchange from the numpy step of the same start-of-day state, which the kernel
+    matches to 1e-12). Reference: conservation of mass (the balance the model declares)."""
+    from test_snow import _forcing, _params
+
+    from assim.kernels.block import step_basin
+
+    m = models.get(base + "+snow")
+    n, n_days = 64, 3 * 365
+    params = _params(m, n, 1)
+    p, e, t = _forcing(n, n_days, 2)
+    prepared = m.prepare(params)
+    code = kernels.compiled_model(m)
+    P, kk = pack_parameters(code, prepared)
+    X = np.ascontiguousarray(m.initial_state(prepared).T)
+    assert "runoff" in m.balance.outputs
+    peak = 0.0
+    for d in range(n_days):
+        before = X.copy()
+        _, fl = m.step(before.T, {"precipitation": p[d], "pet": e[d], "temperature": t[d]}, prepared)
+        q = np.empty(n)
+        step_basin(code, X, 0, n, P, kk, p[d], e[d], t[d], np.empty((4, n)), q)
+        gain = sum(fl[k] for k in m.balance.inputs) - sum(fl[k] for k in m.balance.outputs if k != "runoff") - q
+        np.testing.assert_allclose(X.sum(axis=0) - before.sum(axis=0), gain, rtol=0, atol=1e-9)
+        peak = max(peak, float(X[m.state_index("snowpack")].max()))
+    assert peak > 50.0  # the winters did build a pack

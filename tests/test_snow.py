@@ -16,13 +16,28 @@ def _p(**kw):
     return {k: np.array([v], dtype=float) for k, v in {**PARAMS, **kw}.items()}
 
 
-def _day(pack, liquid, p, t, **kw):
-    a = [np.array([x], dtype=float) for x in (pack, liquid, p, t)]
-    pk, lq, fl = snow.snow_step(*a, _p(**kw))
-    return float(pk[0]), float(lq[0]), {k: float(v[0]) for k, v in fl.items()}
+@pytest.fixture(params=["numpy", "compiled"])
+def _day(request):
+    """One day of the routine on one element: the numpy step, or the same formulas
+    (assim.models.snow.day) as the compiled kernel runs them."""
+
+    def numpy_day(pack, liquid, p, t, **kw):
+        a = [np.array([x], dtype=float) for x in (pack, liquid, p, t)]
+        pk, lq, fl = snow.snow_step(*a, _p(**kw))
+        return float(pk[0]), float(lq[0]), {k: float(v[0]) for k, v in fl.items()}
+
+    def compiled_day(pack, liquid, p, t, **kw):
+        from assim.kernels.block import _snow_day
+
+        q = _p(**kw)
+        q["_rain_from"] = snow.rain_from(q)
+        pk, lq, *fl = _snow_day(pack, liquid, p, t, *(float(q[n][0]) for n in snow.KERNEL_ROWS))
+        return pk, lq, dict(zip(snow.FLUXES, fl, strict=True))
+
+    return numpy_day if request.param == "numpy" else compiled_day
 
 
-def test_accumulation_day():
+def test_accumulation_day(_day):
     """T = -5 degC, P = 10 mm, empty pack: all snow (rain fraction clip(-5/2 + 1/2) = 0), no
     melt (T below the melt threshold), no outflow. Hand-worked from the Hock (2003) form."""
     pack, liquid, f = _day(0.0, 0.0, 10.0, -5.0)
@@ -30,7 +45,7 @@ def test_accumulation_day():
     assert pack == 10.0 and liquid == 0.0 and f["snow_outflow"] == 0.0
 
 
-def test_melt_day():
+def test_melt_day(_day):
     """Pack 20 mm, T = 4 degC, no precipitation: melt = DDF (T - Tm) = 3 x 3.5 = 10.5 mm
     (Hock 2003, eq. 1); the pack keeps 9.5 mm and holds 0.1 x 9.5 = 0.95 mm of the melt as
     liquid; 9.55 mm leaves."""
@@ -41,7 +56,7 @@ def test_melt_day():
     assert f["snow_outflow"] == pytest.approx(9.55, abs=1e-12)
 
 
-def test_melt_is_limited_by_the_pack():
+def test_melt_is_limited_by_the_pack(_day):
     """Pack 2 mm, T = 10 degC: potential melt 28.5 mm, actual 2 mm; with the rain, everything
     leaves (no pack left to hold water)."""
     pack, liquid, f = _day(2.0, 0.5, 4.0, 10.0)
@@ -50,7 +65,7 @@ def test_melt_is_limited_by_the_pack():
     assert f["snow_outflow"] == pytest.approx(6.5, abs=1e-12)
 
 
-def test_mixed_day_with_refreezing():
+def test_mixed_day_with_refreezing(_day):
     """T = 0.25 degC inside the transition: rain fraction 0.25/2 + 1/2 = 0.625, so P = 8 mm
     gives 5 mm rain and 3 mm snow; no melt (T < Tm = 0.5); the 1 mm of liquid held from the
     day before refreezes at 0.05 x 3 x (0.5 - 0.25) = 0.0375 mm; the pack (10 + 3 + 0.0375)
@@ -65,7 +80,7 @@ def test_mixed_day_with_refreezing():
     assert f["snow_outflow"] == pytest.approx(1.0 - 0.0375 + 5.0 - 1.30375, abs=1e-12)
 
 
-def test_sharp_transition_and_switched_off_basin():
+def test_sharp_transition_and_switched_off_basin(_day):
     """A zero-width transition is a plain threshold; snow_routine 0 turns all snow to rain."""
     assert _day(0.0, 0.0, 5.0, -0.1, snow_interval=0.0)[2]["snowfall"] == 5.0
     assert _day(0.0, 0.0, 5.0, 0.1, snow_interval=0.0)[2]["rainfall"] == 5.0

@@ -195,8 +195,9 @@ def forecast_leads(
         from assim import kernels
 
         P, kk = kernels.block.pack_parameters(code, prepared)
+        t = forcing.get("temperature")  # (the snow routine's)
         runoff = kernels.run_leads(code, np.ascontiguousarray(x.T), P, kk, forcing["precipitation"].reshape(nl, -1),
-                                   forcing["pet"].reshape(nl, -1))
+                                   forcing["pet"].reshape(nl, -1), temperature=None if t is None else t.reshape(nl, -1))
         out[:] = (runoff.reshape(nl, ni, nb, nm) * area[None]).transpose(2, 1, 0, 3)
         return out
     for lead in range(nl):
@@ -212,9 +213,9 @@ def forecast_leads(
 
 def _compiled_leads(model, settings: Settings, forcing, needs_numpy: bool) -> int | None:
     """The compiled model's code when the leads run on the kernel (the runs whose blocks it
-    serves, :func:`assim.engine.fused.applicable`, forced by precipitation and PET, without
-    state noise or kept states), else None."""
-    if needs_numpy or set(forcing) != {"precipitation", "pet"}:
+    serves, :func:`assim.engine.fused.applicable`, forced by precipitation and PET, and the
+    temperature behind the snow routine, without state noise or kept states), else None."""
+    if needs_numpy or set(forcing) - {"temperature"} != {"precipitation", "pet"}:
         return None
     from assim import kernels
     from assim.engine import fused

@@ -1,10 +1,11 @@
 """The engine's block of days on the fused compiled kernel (:mod:`assim.kernels`).
 
 :func:`advance` is :func:`assim.engine.advance` for the runs the kernel serves: a model with
-a compiled form, no additive state noise, no estimated parameters. The kernel keeps the
-ensemble and its AR(1) errors at the end of each hindcast issue day of the block, and the
-forecast leads run from them on the numpy path (:func:`assim.engine.hindcast_forecasts`),
-as after a numpy block. It returns the same :class:`assim.engine.BlockResult` (to 1e-12; see
+a compiled form (also behind the snow routine, with its temperature error), no additive
+state noise, no estimated parameters. The kernel keeps the ensemble and its AR(1) errors at
+the end of each hindcast issue day of the block, and the forecast leads run from them
+(:func:`assim.engine.hindcast_forecasts`), as after a numpy block. It returns the same
+:class:`assim.engine.BlockResult` (to 1e-12; see
 ``tests/test_kernels.py``), or None when a state went non-finite, and the caller then runs
 the block on the numpy path, which names the first bad day and state.
 """
@@ -68,6 +69,13 @@ def advance(model, inputs, state, settings, t0, t1, *, members, first_output, fi
     for err in (s.precipitation, s.pet):
         sigma = err.sigma
         ar1 += [err.phi, float(np.sqrt(1.0 - err.phi**2)), sigma, 0.5 * sigma * sigma]
+    temperature = None
+    if "temperature" in en.forcing_names(model):  # the snow routine's forcing (code >= SNOW)
+        err = s.temperature
+        temperature = (np.ascontiguousarray(inputs.temperature[:, t0:t1], dtype=np.float64),
+                       pt.counter_keys(s.seed, inputs.keys, members, pt.TEMPERATURE),
+                       np.array(np.asarray(state.ar1["temperature"], dtype=np.float64).reshape(nb, nm)),
+                       (err.phi, float(np.sqrt(1.0 - err.phi**2)), err.sd))
     first_day = int(days[0]) if nt else 0
     n_pairs = ((int(days[-1]) >> 1) - (first_day >> 1) + 1) if nt else 0
     dh = pt._day_hash(np.arange(first_day >> 1, (first_day >> 1) + n_pairs, dtype=np.int64))
@@ -97,7 +105,7 @@ def advance(model, inputs, state, settings, t0, t1, *, members, first_output, fi
         np.ascontiguousarray(y, dtype=np.float64), np.ascontiguousarray(r, dtype=np.float64), analysed,
         s.method, s.inflation, s.rtps, s.rtpp, s.gate_sigma, True, transform, upd,
         np.ascontiguousarray(lower[:, upd].T), np.ascontiguousarray(upper[:, upd].T), wcols, spreads=assim,
-        snapshots=issue_k,
+        snapshots=issue_k, temperature=temperature,
     )
     if not ok:
         return None
@@ -142,13 +150,15 @@ def advance(model, inputs, state, settings, t0, t1, *, members, first_output, fi
         day=int(days[-1]) if nt else state.day,
         states=X.T.reshape(nb, nm, ns),  # a view of X: the next block copies it without a transpose
         parameters=params,
-        ar1={n: e_prev[j].copy() for j, n in enumerate(en.FORCINGS)} if nt else state.ar1,
+        ar1=({n: e_prev[j].copy() for j, n in enumerate(en.FORCINGS)}
+             | ({} if temperature is None else {"temperature": temperature[2].copy()})) if nt else state.ar1,
         collapse_days=collapse,
     )
     hind = None
     if issue_k.size:  # the snapshots as the numpy path keeps them (engine.block.snapshot)
         snaps = [(t0 + int(k), out["snapshot_states"][j].T.reshape(nb, nm, ns), params,
-                  {n: out["snapshot_errors"][j, f].copy() for f, n in enumerate(en.FORCINGS)})
+                  {n: out["snapshot_errors"][j, f].copy()
+                   for f, n in enumerate(en.FORCINGS + (() if temperature is None else ("temperature",)))})
                  for j, k in enumerate(issue_k)]
         hind = en.hindcast_forecasts(model, inputs, s, snaps, members, leads, forecast_forcing)
     return en.BlockResult(arrays, end, hind, n_used, n_gated, collapse_first)

@@ -5,10 +5,12 @@ for the whole block):
 
 1. the forcing errors: the AR(1) log errors of precipitation and PET from the day's
    counter-based normals (:mod:`assim.kernels.normals`), turned into lognormal multipliers
-   as :class:`assim.perturb.LognormalAR1` does;
+   as :class:`assim.perturb.LognormalAR1` does; with the snow routine, the temperature's
+   additive AR(1) error (:class:`assim.perturb.GaussianAR1`, stream 5);
 2. the model step, compiled from the model's element-wise formulas
    (:func:`assim.models.gr4j.production`, :func:`assim.models.gr4j.routing`,
-   :func:`assim.models.linear_reservoir.store`), and the discharge in m3 s-1;
+   :func:`assim.models.linear_reservoir.store`; behind :func:`assim.models.snow.day` for
+   ``<model>+snow``), and the discharge in m3 s-1;
 3. on an analysed day with a reading, the one-observation analysis of
    :func:`assim.filters.ensemble_update` (enkf, etkf, eakf; multiplicative inflation, RTPP,
    RTPS; log or Box-Cox transform; gate; bounds with the clipped water), with the analysis
@@ -31,7 +33,7 @@ import numba
 import numpy as np
 
 from assim.kernels.normals import normal_row
-from assim.models import gr4j, linear_reservoir
+from assim.models import gr4j, linear_reservoir, snow
 
 _JIT = dict(cache=True, nogil=True, error_model="numpy", fastmath=False)
 
@@ -39,9 +41,11 @@ _JIT = dict(cache=True, nogil=True, error_model="numpy", fastmath=False)
 _production = numba.njit(**_JIT)(gr4j.production)
 _routing = numba.njit(**_JIT)(gr4j.routing)
 _store = numba.njit(**_JIT)(linear_reservoir.store)
+_snow_day = numba.njit(**_JIT)(snow.day)
 
 GR4J, LINEAR_RESERVOIR = 0, 1
 COMPILED_MODELS = {"gr4j": GR4J, "linear_reservoir": LINEAR_RESERVOIR}
+SNOW = 2  # added to a model's code: the model behind the degree-day snow routine
 METHOD_CODES = {"enkf": 0, "etkf": 1, "eakf": 2}
 TRANSFORM_CODES = {"none": 0, "log": 1, "boxcox": 2}
 _P0 = 6  # GR4J: first row of the UH ordinates in the packed parameters
@@ -50,7 +54,12 @@ _P0 = 6  # GR4J: first row of the UH ordinates in the packed parameters
 def compiled_model(model) -> int | None:
     """The code of ``model``'s compiled form, None when it has none (a user model).
 
-    A model has a compiled form when it is the registered built-in (same step function)."""
+    A model has a compiled form when it is the registered built-in (same step function), or
+    such a model behind the snow routine (:func:`assim.models.snow.wrap`; code + ``SNOW``)."""
+    base = snow.unwrap(model)
+    if base is not None:
+        code = compiled_model(base)
+        return None if code is None else code + SNOW
     code = COMPILED_MODELS.get(model.name)
     if code is None:
         return None
@@ -59,13 +68,24 @@ def compiled_model(model) -> int | None:
 
 
 def pack_parameters(code: int, prepared) -> tuple[np.ndarray, np.ndarray]:
-    """Prepared parameters (dict of (batch, ...)) -> (rows, batch) float64 and (2,) int64."""
-    if code == GR4J:
+    """Prepared parameters (dict of (batch, ...)) -> (rows, batch) float64 and (4,) int64.
+
+    The integers: the GR4J unit-hydrograph lengths k1, k2; with the snow routine, the first
+    row of its parameters (:data:`assim.models.snow.KERNEL_ROWS`, after the model's) and the
+    state row of the snowpack (after the model's states; the liquid water follows)."""
+    kk = np.zeros(4, dtype=np.int64)
+    if code % SNOW == GR4J:
         o1, o2 = prepared["_uh1"], prepared["_uh2"]
-        k = np.array([o1.shape[1], o2.shape[1]], dtype=np.int64)
-        rows = [prepared[n] for n in ("x1", "x3", "_inv_x1", "_perc_x1", "_inv_x3", "_exchange")]
-        return np.ascontiguousarray(np.vstack(rows + [o1.T, o2.T])), k
-    return np.ascontiguousarray(np.vstack([prepared["k"], prepared["c"]])), np.zeros(2, dtype=np.int64)
+        kk[:2] = o1.shape[1], o2.shape[1]
+        rows = [prepared[n] for n in ("x1", "x3", "_inv_x1", "_perc_x1", "_inv_x3", "_exchange")] + [o1.T, o2.T]
+        kk[3] = gr4j.N_STATE
+    else:
+        rows = [prepared["k"], prepared["c"]]
+        kk[3] = len(linear_reservoir.MODEL.states)
+    if code >= SNOW:
+        kk[2] = sum(np.atleast_2d(r).shape[0] for r in rows)
+        rows += [prepared[n] for n in snow.KERNEL_ROWS]
+    return np.ascontiguousarray(np.vstack(rows)), kk
 
 
 @numba.njit(**_JIT)
@@ -115,10 +135,8 @@ def _unit_hydrograph(X, c0, N, P, p0, k, s0, pr, out):
 
 
 @numba.njit(**_JIT)
-def step_basin(code, X, c0, N, P, kk, p, e, scratch, runoff):
-    """One model day of the members ``c0 .. c0 + N - 1`` of ``X`` (n_state, batch), in place,
-    forced by ``p``, ``e`` (N,) mm d-1; their runoff (mm d-1) in ``runoff`` (N,);
-    ``scratch`` (3, N)."""
+def _model_basin(code, X, c0, N, P, kk, p, e, scratch, runoff):
+    """One day of the model without snow (``code`` < ``SNOW``); see :func:`step_basin`."""
     if code == GR4J:
         _gr4j_basin(X, c0, N, P, kk[0], kk[1], p, e, scratch[0], scratch[1], scratch[2], runoff)
         return
@@ -129,25 +147,53 @@ def step_basin(code, X, c0, N, P, kk, p, e, scratch, runoff):
 
 
 @numba.njit(**_JIT)
-def _leads(code, X, P, kk, prec, pet, runoff, width):
+def _snow_basin(X, c0, N, P, kk, p, t, outflow):
+    """The snow routine's day (:func:`assim.models.snow.day`) of the members ``c0 .. c0 + N
+    - 1``, in place; the water leaving the pack and the rain on bare ground in ``outflow``."""
+    r, s = kk[2], kk[3]
+    c1 = c0 + N
+    pack, liquid = X[s, c0:c1], X[s + 1, c0:c1]
+    a0, a1, a2, a3, a4, a5 = P[r, c0:c1], P[r + 1, c0:c1], P[r + 2, c0:c1], P[r + 3, c0:c1], P[r + 4, c0:c1], P[r + 5, c0:c1]
+    for i in range(N):
+        pack[i], liquid[i], rain, snowfall, melt, refreeze, outflow[i] = _snow_day(
+            pack[i], liquid[i], p[i], t[i], a0[i], a1[i], a2[i], a3[i], a4[i], a5[i])
+
+
+@numba.njit(**_JIT)
+def step_basin(code, X, c0, N, P, kk, p, e, t, scratch, runoff):
+    """One model day of the members ``c0 .. c0 + N - 1`` of ``X`` (n_state, batch), in place,
+    forced by ``p``, ``e`` (N,) mm d-1 and, behind the snow routine (``code >= SNOW``), the
+    temperature ``t`` (N,) degC (else not read); their runoff (mm d-1) in ``runoff`` (N,);
+    ``scratch`` (4, N)."""
+    if code >= SNOW:
+        _snow_basin(X, c0, N, P, kk, p, t, scratch[3])
+        _model_basin(code - SNOW, X, c0, N, P, kk, scratch[3], e, scratch, runoff)
+    else:
+        _model_basin(code, X, c0, N, P, kk, p, e, scratch, runoff)
+
+
+@numba.njit(**_JIT)
+def _leads(code, X, P, kk, prec, pet, temp, runoff, width):
     """Every lead of every column of ``X``, ``width`` columns at a time (they stay in cache
     over the leads)."""
     nl, n = prec.shape
-    scratch = np.empty((3, width))
+    scratch = np.empty((4, width))
     for c0 in range(0, n, width):
         w = min(width, n - c0)
         for lead in range(nl):
-            step_basin(code, X, c0, w, P, kk, prec[lead, c0:c0 + w], pet[lead, c0:c0 + w], scratch[:, :w],
-                       runoff[lead, c0:c0 + w])
+            step_basin(code, X, c0, w, P, kk, prec[lead, c0:c0 + w], pet[lead, c0:c0 + w], temp[lead, c0:c0 + w],
+                       scratch[:, :w], runoff[lead, c0:c0 + w])
 
 
-def run_leads(code, X, P, kk, prec, pet, width=256):
+def run_leads(code, X, P, kk, prec, pet, width=256, temperature=None):
     """Forecast leads without analysis: the model over days ``prec``, ``pet`` (lead, batch)
-    mm d-1 from the states ``X`` (n_state, batch), C-ordered, advanced in place; returns the
-    runoff (lead, batch) mm d-1."""
+    mm d-1 (and behind the snow routine ``temperature`` (lead, batch) degC) from the states
+    ``X`` (n_state, batch), C-ordered, advanced in place; returns the runoff (lead, batch)
+    mm d-1."""
     runoff = np.empty(prec.shape)
-    _leads(code, X, P, kk, np.ascontiguousarray(prec, dtype=np.float64),
-           np.ascontiguousarray(pet, dtype=np.float64), runoff, int(width))
+    prec = np.ascontiguousarray(prec, dtype=np.float64)
+    temp = prec if temperature is None else np.ascontiguousarray(temperature, dtype=np.float64)  # (not read)
+    _leads(code, X, P, kk, prec, np.ascontiguousarray(pet, dtype=np.float64), temp, runoff, int(width))
     return runoff
 
 
@@ -317,21 +363,27 @@ def _spread(a, N):
 def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e, ar1, area,
            y, r, analyse, method, gamma, rtps, rtpp, gate, centre, tr_kind, tr_off, tr_lam,
            upd, lo, hi, wcols, q_out, qa_out, w_out, innov, ivar, clip, used, gated, sd_b, sd_a,
-           snap_k, snap_x, snap_e):
+           snap_k, snap_x, snap_e, temp, ck_t, e_t):
     """Every basin of the chunk over the block's days; returns False if a discharge or a
     state went non-finite (the caller then runs the block on the numpy path, which names
     the first bad day). The states and AR(1) errors at the end of the days ``snap_k``
-    (increasing) are copied into ``snap_x`` and ``snap_e`` (hindcast issues)."""
+    (increasing) are copied into ``snap_x`` and ``snap_e`` (hindcast issues). With the snow
+    routine (``code >= SNOW``), ``temp`` (basin, day) is the temperature, ``ck_t`` its counter
+    keys, ``e_t`` its AR(1) errors and ``ar1[8:11]`` phi, sqrt(1 - phi^2) and sd of its
+    error; else they are not read."""
     nb, nt, N = q_out.shape
     phi_p, c_p, s_p, h_p, phi_e, c_e, s_e, h_e = ar1[0], ar1[1], ar1[2], ar1[3], ar1[4], ar1[5], ar1[6], ar1[7]
     first_pair = first_day >> 1
     enkf = method == 0
-    zn = np.empty((6, N))
-    zcp, zsp, zce, zse, zco, zso = zn[0], zn[1], zn[2], zn[3], zn[4], zn[5]
+    has_snow = code >= SNOW
+    phi_t, c_t, sd_t = (ar1[8], ar1[9], ar1[10]) if has_snow else (0.0, 0.0, 0.0)
+    zn = np.empty((8, N))
+    zcp, zsp, zce, zse, zco, zso, zct, zst = zn[0], zn[1], zn[2], zn[3], zn[4], zn[5], zn[6], zn[7]
     fp = np.empty(N)
     fe = np.empty(N)
+    ft = np.zeros(N)
     q = np.empty(N)
-    scratch = np.empty((3, N))
+    scratch = np.empty((4, N))
     yp = np.empty(N)
     u = np.empty(N)
     d = np.empty(N)
@@ -348,9 +400,12 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
                 normal_row(ck_e[b], dh[jp], zce, zse, u)
                 if enkf and (analyse[k] or (k + 1 < nt and analyse[k + 1])):
                     normal_row(ck_o[b], dh[jp], zco, zso, u)
+                if has_snow:
+                    normal_row(ck_t[b], dh[jp], zct, zst, u)
             zp = zsp if odd else zcp
             ze = zse if odd else zce
             z = zso if odd else zco
+            zt = zst if odd else zct
             pk = prec[b, k]
             ek = pet[b, k]
             ana = analyse[k] and math.isfinite(y[b, k])
@@ -362,7 +417,14 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
                 e_e[b, i] = ee
                 fp[i] = math.exp(s_p * ep - h_p) * pk
                 fe[i] = math.exp(s_e * ee - h_e) * ek
-            step_basin(code, X, c0, N, P, kk, fp, fe, scratch, q)
+            if has_snow:
+                tk = temp[b, k]
+                for i in range(N):
+                    # assim.perturb.GaussianAR1: additive error sd e, e a stationary AR(1)
+                    et = phi_t * e_t[b, i] + c_t * zt[i]
+                    e_t[b, i] = et
+                    ft[i] = sd_t * et + tk
+            step_basin(code, X, c0, N, P, kk, fp, fe, ft, scratch, q)
             for i in range(N):
                 q[i] = q[i] * area[b]
                 q_out[b, k, i] = q[i]
@@ -392,6 +454,8 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
                 for i in range(N):
                     snap_e[si, 0, b, i] = e_p[b, i]
                     snap_e[si, 1, b, i] = e_e[b, i]
+                    if has_snow:
+                        snap_e[si, 2, b, i] = e_t[b, i]
                 si += 1
         for row in range(X.shape[0]):
             for i in range(N):
@@ -402,7 +466,7 @@ def _block(code, X, P, kk, prec, pet, first_day, dh, ck_p, ck_e, ck_o, e_p, e_e,
 
 def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y, r, analyse,
               method, gamma, rtps, rtpp, gate, centre, transform, upd, lo, hi, wcols, spreads=False,
-              snapshots=()):
+              snapshots=(), temperature=None):
     """Advance a chunk over a block in one compiled call (see the module docstring).
 
     Parameters
@@ -425,6 +489,10 @@ def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y
         basin * member) their bounds; wcols : (n_w,) int, state rows recorded
     spreads : also return the member spreads of the discharge before and after the analysis
     snapshots : (issue,) increasing day indices of the block whose end states are kept
+    temperature : with the snow routine, ``(t, ck_t, e_t, (phi, sqrt(1 - phi^2), sd))``: the
+        unperturbed temperature (basin, day) degC, the counter keys (basin, member) uint64 of
+        its stream, its AR(1) errors of the day before (basin, member) float64, advanced in
+        place, and its error model (:class:`assim.perturb.GaussianAR1`)
 
     Returns
     -------
@@ -434,7 +502,8 @@ def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y
         ``clipped_water`` (basin, day, NaN/0 where not analysed), ``used``, ``gated``
         (basin, day) bool, and with ``spreads`` ``spread_before``, ``spread_after`` (basin, day);
         ``snapshot_states`` (issue, n_state, basin * member) and ``snapshot_errors`` (issue, 2,
-        basin, member), the states and AR(1) log errors at the end of the ``snapshots`` days
+        basin, member; 3 with the temperature), the states and AR(1) errors at the end of the
+        ``snapshots`` days
     """
     nb, nt = prec.shape
     N = X.shape[1] // max(nb, 1)
@@ -450,16 +519,23 @@ def run_block(code, X, P, kk, prec, pet, first_day, dh, ck, e_prev, ar1, area, y
     sd_a = np.empty((nb, nt) if spreads else (0, 0))
     snap_k = np.asarray(snapshots, dtype=np.int64)
     snap_x = np.empty((snap_k.size,) + X.shape)
-    snap_e = np.empty((snap_k.size, 2, nb, N))
+    snap_e = np.empty((snap_k.size, 2 if temperature is None else 3, nb, N))
     kind, offset, lam = transform
     if kind == "boxcox" and lam == 0.0:
         kind = "log"
+    ar1 = np.asarray(ar1, dtype=np.float64)
+    if temperature is None:
+        temp, ck_t, e_t = np.empty((nb, 0)), np.empty((nb, 0), dtype=np.uint64), np.empty((nb, 0))
+    else:
+        temp, ck_t, e_t, err_t = temperature
+        ar1 = np.concatenate([ar1, np.asarray(err_t, dtype=np.float64)])
     ok = _block(
         code, X, P, kk, prec, pet, np.int64(first_day), dh, ck[0], ck[1], ck[2], e_prev[0], e_prev[1],
-        np.asarray(ar1, dtype=np.float64), area, y, r, analyse, METHOD_CODES[method], float(gamma),
+        ar1, area, y, r, analyse, METHOD_CODES[method], float(gamma),
         float(rtps), float(rtpp), float(gate), bool(centre), TRANSFORM_CODES[kind], float(offset),
         float(lam), np.asarray(upd, dtype=np.int64), lo, hi, np.asarray(wcols, dtype=np.int64),
         q_out, qa_out, w_out, innov, ivar, clip, used, gated, sd_b, sd_a, snap_k, snap_x, snap_e,
+        temp, ck_t, e_t,
     )
     return bool(ok), {"discharge": q_out, "discharge_analysis": qa_out, "states": w_out,
                       "innovation": innov, "innovation_variance": ivar, "clipped_water": clip,

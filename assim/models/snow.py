@@ -22,6 +22,9 @@ every element of the flat batch (T the day's mean air temperature, degC):
 With no pack and no snowfall (T above the transition interval, or a basin whose
 ``snow_routine`` is 0) every step above adds or subtracts exact zeros, so the wrapped model
 receives P bit for bit: a rain-only basin computes exactly what the model alone computes.
+The day's formulas are one element-wise function, :func:`day`, that the numpy step applies
+to the batch and :mod:`assim.kernels` compiles as it is, behind the compiled form of any
+model that has one (:func:`unwrap` finds the wrapped model).
 
 The wrapped model's states come first, then ``snowpack`` (solid, mm; the filter may update
 it) and ``snow_liquid`` (liquid water held in the pack, mm). Its parameters are the model's
@@ -66,15 +69,67 @@ STATES = (
 FLUXES = ("rainfall", "snowfall", "melt", "refreezing", "snow_outflow")
 
 
-def snow_step(pack, liquid, precipitation, temperature, params):
+def rain_from(params) -> np.ndarray:
+    """The temperature at the centre of the rain/snow transition, as the routine uses it:
+    ``snow_threshold``, or -inf where ``snow_routine`` is 0 (all precipitation is then rain,
+    whatever the temperature). :func:`wrap`'s ``prepare`` keeps it as ``_rain_from``."""
+    if "_rain_from" in params:
+        return params["_rain_from"]
+    return np.where(np.asarray(params["snow_routine"]) > 0, np.asarray(params["snow_threshold"], dtype=np.float64),
+                    -np.inf)
+
+
+# ---------------------------------------------------------------- the formulas, written once
+#
+# day() is element-wise: every argument is a float or an array (all broadcast together), and
+# it uses only +, -, *, /, minimum, maximum and fmin. The numpy step applies it to the batch;
+# assim.kernels compiles the same function object with numba for one member at a time. Both
+# give the same bits.
+
+
+def day(pack, liquid, p, t, rain_from, interval, melt_t, ddf, holding, refreezing):
     """One day of the degree-day routine (module docstring, steps 1-4).
+
+    Parameters
+    ----------
+    pack, liquid : start-of-day solid and liquid water of the pack, mm
+    p, t : precipitation (mm d-1) and the day's mean air temperature (degC)
+    rain_from : centre of the rain/snow transition (degC; -inf: all rain, :func:`rain_from`)
+    interval, melt_t, ddf, holding, refreezing : ``snow_interval``, ``melt_threshold``,
+        ``degree_day_factor``, ``water_holding`` and ``refreezing``
+
+    Returns
+    -------
+    pack, liquid, rain, snowfall, melt, refreeze, outflow : the end-of-day pack and liquid
+    water (mm) and the day's fluxes (mm d-1); ``outflow`` is what the wrapped model receives.
+
+    A zero ``interval`` divides by zero (numpy: call it under ``np.errstate``): x = +-inf on
+    either side of the threshold and NaN on it, and ``fmin(NaN, 1)`` is 1, so the transition
+    is then the plain threshold ``T >= snow_threshold`` (rain).
+    """
+    frac = np.maximum(np.fmin((t - rain_from) / interval + 0.5, 1.0), 0.0)  # rain fraction, in [0, 1]
+    rain = frac * p
+    snowfall = p - rain
+    pack = pack + snowfall
+    melt = np.minimum(ddf * np.maximum(t - melt_t, 0.0), pack)  # Hock (2003), eq. 1, limited by the pack
+    pack = pack - melt
+    refreeze = np.minimum(refreezing * ddf * np.maximum(melt_t - t, 0.0), liquid)
+    pack = pack + refreeze
+    liquid = (liquid - refreeze + rain) + melt
+    outflow = np.maximum(liquid - holding * pack, 0.0)  # beyond what the pack holds
+    liquid = liquid - outflow
+    return pack, liquid, rain, snowfall, melt, refreeze, outflow
+
+
+def snow_step(pack, liquid, precipitation, temperature, params):
+    """One day of the degree-day routine for the batch (:func:`day`).
 
     Parameters
     ----------
     pack, liquid : (batch,) float64, mm, at the start of the day
     precipitation : (batch,) float64, mm d-1
     temperature : (batch,) float64, degC, the day's mean air temperature
-    params : dict of (batch,) float64 with the names of :data:`PARAMETERS`
+    params : dict of (batch,) float64 with the names of :data:`PARAMETERS` (raw or prepared)
 
     Returns
     -------
@@ -82,26 +137,16 @@ def snow_step(pack, liquid, precipitation, temperature, params):
     fluxes : dict of (batch,) float64, mm d-1: ``rainfall``, ``snowfall``, ``melt``,
         ``refreezing``, ``snow_outflow`` (the liquid water leaving the pack)
     """
-    p, t = precipitation, temperature
-    width = params["snow_interval"]
     with np.errstate(divide="ignore", invalid="ignore"):
-        frac = np.clip((t - params["snow_threshold"]) / width + 0.5, 0.0, 1.0)
-    sharp = np.where(t >= params["snow_threshold"], 1.0, 0.0)  # a zero-width transition
-    frac = np.where(width > 0, frac, sharp)
-    frac = np.where(params["snow_routine"] > 0, frac, 1.0)
-    rain = frac * p
-    snowfall = p - rain
-    pack = pack + snowfall
-    ddf = params["degree_day_factor"]
-    melt = np.minimum(ddf * np.maximum(t - params["melt_threshold"], 0.0), pack)  # Hock (2003), eq. 1
-    pack = pack - melt
-    refreeze = np.minimum(params["refreezing"] * ddf * np.maximum(params["melt_threshold"] - t, 0.0), liquid)
-    pack = pack + refreeze
-    liquid = (liquid - refreeze + rain) + melt
-    outflow = np.maximum(liquid - params["water_holding"] * pack, 0.0)
-    liquid = liquid - outflow
-    return pack, liquid, {"rainfall": rain, "snowfall": snowfall, "melt": melt,
-                          "refreezing": refreeze, "snow_outflow": outflow}
+        pack, liquid, *fluxes = day(
+            np.asarray(pack, dtype=np.float64), np.asarray(liquid, dtype=np.float64),
+            np.asarray(precipitation, dtype=np.float64), np.asarray(temperature, dtype=np.float64),
+            rain_from(params), *(np.asarray(params[n], dtype=np.float64) for n in KERNEL_ROWS[1:]))
+    return pack, liquid, dict(zip(FLUXES, fluxes, strict=True))
+
+
+KERNEL_ROWS = ("_rain_from", "snow_interval", "melt_threshold", "degree_day_factor", "water_holding", "refreezing")
+"""The prepared parameters of :func:`day`, in its order (the compiled kernel packs these rows)."""
 
 
 def wrap(base: Model) -> Model:
@@ -117,6 +162,7 @@ def wrap(base: Model) -> Model:
         shape = np.shape(params[base_names[0]]) if base_names else np.shape(params[NAMES[0]])
         for name in NAMES:
             out[name] = np.broadcast_to(np.asarray(params[name], dtype=np.float64), shape).reshape(-1)
+        out["_rain_from"] = rain_from(out)
         return out
 
     def step(state, forcing, params):
@@ -141,7 +187,7 @@ def wrap(base: Model) -> Model:
         out[:, :n_base] = inner
         return out
 
-    return register(Model(
+    model = register(Model(
         name=base.name + SUFFIX,
         description=f"{base.description}, behind a degree-day snow routine",
         reference=f"{base.reference} Snow: degree-day method as reviewed by Hock, R. (2003). "
@@ -155,3 +201,10 @@ def wrap(base: Model) -> Model:
         fluxes=tuple(base.fluxes) + FLUXES,
         prepare=prepare,
     ))
+    step.snow_wraps = base  # (a function's attributes travel with it to another process)
+    return model
+
+
+def unwrap(model: Model) -> Model | None:
+    """The model ``model`` wraps when :func:`wrap` built it (its step is the wrapper's), else None."""
+    return getattr(model.step, "snow_wraps", None)
