@@ -901,6 +901,7 @@ def _write_bulletin(cfg: Config, forecast: xr.Dataset, iso: str, issue_day: int)
     from assim import bulletin, paths
     from assim.io import prepared as prep_io
     from assim.io.products import dates, day_numbers
+    from assim.parallel import n_workers
 
     history = int(cfg["forecast"]["history_days"])
     obs = prep_io.read_observations(paths.prepared(cfg, prep_io.OBSERVATIONS_FILE))
@@ -922,7 +923,8 @@ def _write_bulletin(cfg: Config, forecast: xr.Dataset, iso: str, issue_day: int)
         alerts_json=paths.alerts(cfg, iso, "json"), alerts_csv=paths.alerts(cfg, iso, "csv"),
         levels=bulletin.alert_levels(cfg, forecast), observed=observed, recent=recent, latest_reading=latest,
         weather_through=forcing_days[-1] if len(forcing_days) else None, names=names, history_days=history,
-        max_figures=int(section["max_figures"]), figures=bool(section["figures"]))
+        max_figures=int(section["max_figures"]), figures=bool(section["figures"]),
+        workers=n_workers(int(cfg["plots"]["workers"])))
     return paths.bulletin(cfg, iso)
 
 
