@@ -201,7 +201,7 @@ def _to_state(r):
     from assim import engine
 
     return engine.EnsembleState(r.valid_day, r.states, dict(r.parameters), dict(r.ar1), r.collapse_days,
-                                r.window, r.window_days)
+                                r.inflation_mean, r.inflation_sd, r.window, r.window_days)
 
 
 def _to_restart(state, model, inputs, identity, settings):
@@ -213,7 +213,8 @@ def _to_restart(state, model, inputs, identity, settings):
         w = dict(window=state.window, window_days=state.window_days,
                  window_columns=window_columns(settings.write_states))
     return Restart(tuple(inputs.basin_ids), int(state.day), model.state_names, state.states,
-                   dict(state.parameters), dict(state.ar1), state.collapse_days, identity, **w)
+                   dict(state.parameters), dict(state.ar1), state.collapse_days, identity,
+                   inflation_mean=state.inflation_mean, inflation_sd=state.inflation_sd, **w)
 
 
 def _read_checked_restart(path, model, inputs, identity):
@@ -406,6 +407,7 @@ def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
         quantiles=settings.quantiles, float32=settings.float32,
         time_chunk=min(settings.time_block_days, 365),
         state_noise=bool(settings.state_noise) and not settings.reanalysis,
+        adaptive_inflation=settings.adaptive_inflation and mode == "assimilate",
         earlier=earlier, attrs={**_attrs(cfg, model, settings), **_smoother_attrs(settings)}, commit=files,
     )
     # the product and its restart are one set: both replaced, or neither (a full disk)
@@ -415,6 +417,7 @@ def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
                 summary = engine.run(model, inputs, settings, writer, state=state, until_day=until_day,
                                      progress=bar)
                 writer.set_attributes(**_health_attrs(summary, inputs))
+                writer.write_innovation_statistics()
         finally:
             bar.close()
         write_restart(restart_path, _to_restart(summary.state, model, inputs,

@@ -94,3 +94,59 @@ def make_cold_raw(folder: Path, start: str, end: str, with_rain_basin: bool = Fa
     readings = placeholder.assign(value=[f"{v:.4g}" for v in values])
     (pd.concat([g, readings]) if with_rain_basin else readings).to_csv(folder / "gauge.csv", index=False)
     return folder, q
+
+
+TWIN_IDS = ["alder-creek", "birch-river"]
+
+
+def twin_arrays(start: str, end: str, *, seed: int, x4, rain_cv: float = 0.0, missing: float = 0.1) -> dict:
+    """Two invented basins whose truth is GR4J driven by the true rain (the prepared-layer tests).
+
+    The prepared rain carries lognormal errors of coefficient of variation ``rain_cv`` (none when
+    0), the readings 10 % errors, and a fraction ``missing`` of days has no reading. Random draws
+    come in a fixed order from ``numpy.random.default_rng(seed)``, so a seed gives the same layer.
+    """
+    from assim import models
+    from assim.io import prepared as prep_io
+
+    dates = pd.date_range(start, end, freq="D")
+    nt = len(dates)
+    rng = np.random.default_rng(seed)
+    p = np.where(rng.random((2, nt)) < 0.35, rng.gamma(0.8, 9.0, (2, nt)), 0.0)
+    e = np.clip(2.5 + 2.0 * np.sin(2 * np.pi * (np.arange(nt) - 100) / 365.25), 0.3, None)[None].repeat(2, 0)
+    params = {"x1": np.array([300.0, 450.0]), "x2": np.array([0.0, -0.5]), "x3": np.array([80.0, 110.0]),
+              "x4": np.asarray(x4, dtype=float)}
+    area = np.array([180.0, 420.0])
+    m = models.get("gr4j")
+    x = m.initial_state(params)
+    truth = np.empty((2, nt))
+    for i in range(nt):
+        x, f = m.step(x, {"precipitation": p[:, i], "pet": e[:, i]}, params)
+        truth[:, i] = f["runoff"] * area / 86.4
+    if rain_cv > 0:
+        s = np.sqrt(np.log1p(rain_cv**2))
+        p = p * np.exp(s * rng.standard_normal((2, nt)) - s * s / 2)
+    obs = truth * (1 + 0.1 * rng.standard_normal((2, nt)))
+    obs[:, rng.random(nt) < missing] = np.nan
+    flags = np.where(np.isnan(obs), prep_io.QC_FLAGS["insufficient_coverage"], 0)
+    return {"dates": dates, "precipitation": p, "pet": e, "truth": truth, "obs": obs, "flags": flags,
+            "params": params, "area": area}
+
+
+def write_twin_layer(folder: Path, twin: dict) -> Path:
+    """Write :func:`twin_arrays`' basins as a prepared layer (forcing, observations, basins) in ``folder``."""
+    from assim.io import prepared as prep_io
+
+    obs, nt = twin["obs"], len(twin["dates"])
+    lat, lon = np.array([45.0, 46.0]), np.array([5.0, 6.0])
+    prep_io.write_forcing(prep_io.forcing_dataset(TWIN_IDS, twin["dates"].values, twin["precipitation"], twin["pet"],
+                                                  lat, lon), folder / "forcing.nc")
+    prep_io.write_observations(
+        prep_io.observations_dataset(TWIN_IDS, twin["dates"].values, obs, twin["flags"],
+                                     np.where(np.isnan(obs), 0.0, 1.0), np.full((2, nt), 24), np.zeros((2, nt)),
+                                     lat, lon), folder / "observations.nc")
+    prep_io.write_basins(
+        prep_io.basins_dataset(TWIN_IDS, ["Alder Creek", "Birch River"], twin["area"], lat, lon, "gr4j",
+                               twin["params"], np.array([[20.0, 40.0], [30.0, np.nan]]), ["minor", "major"],
+                               ["discharge", "discharge"]), folder / "basins.nc")
+    return folder

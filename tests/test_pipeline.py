@@ -13,6 +13,8 @@ import pandas as pd
 import pytest
 import xarray as xr
 import yaml
+from _scenario import TWIN_IDS as IDS
+from _scenario import twin_arrays, write_twin_layer
 
 from assim import pipeline
 from assim.cli import main
@@ -21,46 +23,16 @@ from assim.errors import LockError, RestartError
 from assim.io import prepared as prep_io
 from assim.io.common import _start_time
 
-IDS = ["alder-creek", "birch-river"]
 START, END = "2001-01-01", "2003-12-31"
 
 
 @pytest.fixture(scope="module")
 def prepared(tmp_path_factory):
     """A prepared layer of two invented basins, three years, built from GR4J in the test."""
-    from assim import models
-
-    folder = tmp_path_factory.mktemp("prepared")
-    dates = pd.date_range(START, END, freq="D")
-    nt = len(dates)
-    rng = np.random.default_rng(8)
-    p = np.where(rng.random((2, nt)) < 0.35, rng.gamma(0.8, 9.0, (2, nt)), 0.0)
-    t = np.arange(nt)
-    e = np.clip(2.5 + 2.0 * np.sin(2 * np.pi * (t - 100) / 365.25), 0.3, None)[None].repeat(2, 0)
-    params = {"x1": np.array([300.0, 450.0]), "x2": np.array([0.0, -0.5]), "x3": np.array([80.0, 110.0]),
-              "x4": np.array([1.5, 2.2])}
-    area = np.array([180.0, 420.0])
-    m = models.get("gr4j")
-    x = m.initial_state(params)
-    q = np.empty((2, nt))
-    for i in range(nt):
-        x, f = m.step(x, {"precipitation": p[:, i], "pet": e[:, i]}, params)
-        q[:, i] = f["runoff"] * area / 86.4
-    obs = q * (1 + 0.1 * rng.standard_normal((2, nt)))
-    obs[:, rng.random(nt) < 0.1] = np.nan
-    flags = np.where(np.isnan(obs), prep_io.QC_FLAGS["insufficient_coverage"], 0)
-    obs[1, 500] = np.nan
-    flags[1, 500] = prep_io.QC_FLAGS["spike"] | prep_io.QC_FLAGS["insufficient_coverage"]
-    lat, lon = np.array([45.0, 46.0]), np.array([5.0, 6.0])
-    prep_io.write_forcing(prep_io.forcing_dataset(IDS, dates.values, p, e, lat, lon), folder / "forcing.nc")
-    prep_io.write_observations(
-        prep_io.observations_dataset(IDS, dates.values, obs, flags, np.where(np.isnan(obs), 0.0, 1.0),
-                                     np.full((2, nt), 24), np.zeros((2, nt)), lat, lon), folder / "observations.nc")
-    prep_io.write_basins(
-        prep_io.basins_dataset(IDS, ["Alder Creek", "Birch River"], area, lat, lon, "gr4j", params,
-                               np.array([[20.0, 40.0], [30.0, np.nan]]), ["minor", "major"],
-                               ["discharge", "discharge"]), folder / "basins.nc")
-    return folder
+    arrays = twin_arrays(START, END, seed=8, x4=[1.5, 2.2])
+    arrays["obs"][1, 500] = np.nan
+    arrays["flags"][1, 500] = prep_io.QC_FLAGS["spike"] | prep_io.QC_FLAGS["insufficient_coverage"]
+    return write_twin_layer(tmp_path_factory.mktemp("prepared"), arrays)
 
 
 def _cfg(prepared, results, **over):

@@ -7,19 +7,17 @@ import shutil
 import warnings
 
 import numpy as np
-import pandas as pd
 import pytest
 import scoringrules as sr
 from _cf import cf_failures
+from _scenario import twin_arrays, write_twin_layer
 
-from assim import models, pipeline
+from assim import pipeline
 from assim.caution import CAUTION
 from assim.cli import main
 from assim.config import load_config
 from assim.errors import RestartError
-from assim.io import prepared as prep_io
 
-IDS = ["alder-creek", "birch-river"]
 START, END = "2002-01-01", "2002-12-31"
 W = 5
 
@@ -28,36 +26,9 @@ W = 5
 def twin(tmp_path_factory):
     """Two invented basins: the truth is GR4J driven by the true rain; the prepared rain has
     lognormal errors (cv 0.3), the readings 10 % errors, one day in five missing."""
-    folder = tmp_path_factory.mktemp("prepared")
-    dates = pd.date_range(START, END, freq="D")
-    nt = len(dates)
-    rng = np.random.default_rng(21)
-    p = np.where(rng.random((2, nt)) < 0.35, rng.gamma(0.8, 9.0, (2, nt)), 0.0)
-    e = np.clip(2.5 + 2.0 * np.sin(2 * np.pi * (np.arange(nt) - 100) / 365.25), 0.3, None)[None].repeat(2, 0)
-    params = {"x1": np.array([300.0, 450.0]), "x2": np.array([0.0, -0.5]), "x3": np.array([80.0, 110.0]),
-              "x4": np.array([2.5, 3.5])}
-    area = np.array([180.0, 420.0])
-    m = models.get("gr4j")
-    x = m.initial_state(params)
-    truth = np.empty((2, nt))
-    for i in range(nt):
-        x, f = m.step(x, {"precipitation": p[:, i], "pet": e[:, i]}, params)
-        truth[:, i] = f["runoff"] * area / 86.4
-    s = np.sqrt(np.log1p(0.3**2))
-    p_obs = p * np.exp(s * rng.standard_normal((2, nt)) - s * s / 2)
-    obs = truth * (1 + 0.1 * rng.standard_normal((2, nt)))
-    obs[:, rng.random(nt) < 0.2] = np.nan
-    flags = np.where(np.isnan(obs), prep_io.QC_FLAGS["insufficient_coverage"], 0)
-    lat, lon = np.array([45.0, 46.0]), np.array([5.0, 6.0])
-    prep_io.write_forcing(prep_io.forcing_dataset(IDS, dates.values, p_obs, e, lat, lon), folder / "forcing.nc")
-    prep_io.write_observations(
-        prep_io.observations_dataset(IDS, dates.values, obs, flags, np.where(np.isnan(obs), 0.0, 1.0),
-                                     np.full((2, nt), 24), np.zeros((2, nt)), lat, lon), folder / "observations.nc")
-    prep_io.write_basins(
-        prep_io.basins_dataset(IDS, ["Alder Creek", "Birch River"], area, lat, lon, "gr4j", params,
-                               np.array([[20.0, 40.0], [30.0, np.nan]]), ["minor", "major"],
-                               ["discharge", "discharge"]), folder / "basins.nc")
-    return folder, truth, dates
+    arrays = twin_arrays(START, END, seed=21, x4=[2.5, 3.5], rain_cv=0.3, missing=0.2)
+    folder = write_twin_layer(tmp_path_factory.mktemp("prepared"), arrays)
+    return folder, arrays["truth"], arrays["dates"]
 
 
 def _cfg(prepared, results):

@@ -30,10 +30,12 @@ import numpy as np
 
 from assim import perturb as pt
 from assim.engine.analysis import (
+    adaptive_options,
     analyse,
     augmented_bounds,
     clipped_water,
     collapse_counts,
+    desroziers_series,
     liu_west_shrink,
     member_sd,
 )
@@ -51,6 +53,7 @@ from assim.engine.records import (
     Settings,
 )
 from assim.engine.window import Window, emitted_days, window_columns
+from assim.filters.inflation import damp_inflation
 from assim.models.base import Model
 
 
@@ -157,8 +160,12 @@ def allocate_outputs(model: Model, settings: Settings, readings: Readings | None
     if assim:
         for p in settings.estimate:
             arrays[p] = np.empty(ens, dtype=odt)
-        for n in ("innovation", "innovation_variance", "spread_before", "spread_after"):
+        for n in ("innovation", "innovation_variance", "innovation_analysis", "obs_error_variance",
+                  "spread_before", "spread_after"):
             arrays[n] = np.full((nb, n_out), np.nan)
+        if settings.adaptive_inflation:
+            for n in ("inflation_mean", "inflation_sd"):
+                arrays[n] = np.full((nb, n_out), np.nan)
         arrays["observed_discharge"] = readings.observed[:, k_out0:].copy()
         arrays["clipped_water"] = np.zeros((nb, n_out))
         arrays["obs_status"] = readings.status[:, k_out0:].copy()
@@ -177,6 +184,7 @@ class _Block:
     x : (basin * member, n_state) float64, mm, the members' states (changed in place)
     params : name -> (basin, member) float64; prepared, lower, upper : of the members
     bounds : bounds of the analysis columns (:func:`augmented_bounds`)
+    inflation : (mean, sd) of the adaptive inflation, each (basin,), or None when off
     """
 
     model: Model
@@ -198,6 +206,7 @@ class _Block:
     first_analysis: int
     collect: bool
     issues: set[int]
+    inflation: tuple[np.ndarray, np.ndarray] | None = None
     upd: np.ndarray = field(init=False)
     estimate: tuple[str, ...] = field(init=False)
     theta_low: np.ndarray = field(init=False)
@@ -309,9 +318,11 @@ def analyse_day(blk: _Block, k: int, day: int, q: np.ndarray, record: bool) -> n
     lo3, hi3 = blk.bounds
     w = blk.window if blk.window is not None and blk.window.size else None
     xs, qa, theta_new, a = analyse(blk.x[:, blk.upd].reshape(nb, nm, nu), q, theta, r.observed[:, k],
-                                   r.variance[:, k], lo3, hi3, on, blk.settings,
+                                   r.variance[:, k], lo3, hi3, on, blk.settings, blk.inflation,
                                    lagged=None if w is None else w.values)
     blk.x[:, blk.upd] = xs.reshape(nb * nm, nu)
+    if blk.inflation is not None:
+        blk.inflation = (a.inflation_mean, a.inflation_sd)
     if w is not None:  # the lagged days, corrected by the same analysis: the last columns
         w.values = np.ascontiguousarray(np.moveaxis(a.states[..., a.states.shape[-1] - w.values.shape[0]:], -1, 0))
     if blk.estimate:
@@ -361,6 +372,8 @@ def record_day(blk: _Block, k: int, q: np.ndarray, qa: np.ndarray, added: np.nda
     k_o = k - blk.k_out0
     nb, nm, _ = blk.shape
     arrays = blk.arrays
+    if blk.inflation is not None:
+        arrays["inflation_mean"][:, k_o], arrays["inflation_sd"][:, k_o] = blk.inflation
     if not blk.settings.assimilate:
         arrays["discharge"][:, k_o] = q
     for p in blk.estimate:
@@ -404,7 +417,11 @@ def run_day(blk: _Block, k: int, check_daily: bool) -> tuple | None:
     day = int(blk.days[k])
     q, added = step_day(blk, k, day)
     qa = q
-    if blk.settings.assimilate and blk.t0 + k >= blk.first_analysis and blk.readings.any_day[k]:
+    analysis_day = blk.settings.assimilate and blk.t0 + k >= blk.first_analysis
+    if analysis_day and blk.inflation is not None:
+        # Anderson (2009): the inflation is damped toward 1 before each day's analysis
+        blk.inflation = (damp_inflation(blk.inflation[0], blk.settings.adaptive_damping), blk.inflation[1])
+    if analysis_day and blk.readings.any_day[k]:
         qa = analyse_day(blk, k, day, q, record=blk.collect and k >= blk.k_out0 and not blk.settings.reanalysis)
     bad = check_finite(blk, k, day, q, check_daily)
     if bad is not None:
@@ -447,10 +464,25 @@ def finish_block(blk: _Block, collapse: np.ndarray) -> tuple[np.ndarray, np.ndar
         arrays["discharge_analysis"][:] = blk.qa_blk[:, k0:]
         arrays["spread_before"][:] = spread_b[:, k0:]
         arrays["spread_after"][:] = member_sd(blk.qa_blk[:, k0:])
+        arrays["innovation_analysis"][:], arrays["obs_error_variance"][:] = desroziers_series(
+            r.observed[:, k0:], r.variance[:, k0:], blk.qa_blk[:, k0:], blk.used[:, k0:], s)
     return n_used, n_gated, collapse, collapse_first
 
 
 # ---------------------------------------------------------------- one task
+
+
+def initial_inflation(state: EnsembleState, settings: Settings) -> tuple[np.ndarray, np.ndarray] | None:
+    """The adaptive inflation (mean, sd) a block starts from: the state's, else the settings'
+    initial values; None when adaptive inflation is off."""
+    if not settings.adaptive_inflation:
+        return None
+    nb = state.states.shape[0]
+    if state.inflation_mean is not None:
+        return (np.array(state.inflation_mean, dtype=np.float64), np.array(state.inflation_sd, dtype=np.float64))
+    opts = adaptive_options(settings)
+    return np.full(nb, opts.initial_mean), np.full(nb, opts.initial_sd)
+
 
 
 def advance(
@@ -550,6 +582,7 @@ def _advance(model, inputs, state, settings, t0, t1, members, first_output, firs
         readings=readings, arrays=arrays,
         k_out0=k_out0, first_analysis=first_analysis, collect=collect,
         issues=set() if issue_index is None else {int(i) for i in issue_index},
+        inflation=initial_inflation(state, s) if s.assimilate else None,
         window=window, emit0=emit0,
     )
     n_used = np.zeros(nb, dtype=np.int64)
@@ -581,6 +614,8 @@ def _advance(model, inputs, state, settings, t0, t1, members, first_output, firs
         parameters=blk.params,
         ar1=end_ar1,
         collapse_days=collapse,
+        inflation_mean=None if blk.inflation is None else blk.inflation[0].copy(),
+        inflation_sd=None if blk.inflation is None else blk.inflation[1].copy(),
         window=win,
         window_days=win_days,
     )

@@ -120,6 +120,8 @@ class EnsembleState:
         of precipitation and PET, the standardised temperature error), one per name of
         :func:`forcing_names`
     collapse_days : (basin,) int64, consecutive days of collapsed spread so far
+    inflation_mean, inflation_sd : (basin,) float64 or None, the adaptive inflation after the
+        last analysis (None: not started; the run starts it from its settings)
     window : (basin, member, slot, column) float64 or None, the smoother's window
         (:mod:`assim.engine.window`); window_days : (slot,) int64, the day of each slot
     """
@@ -129,6 +131,8 @@ class EnsembleState:
     parameters: dict[str, np.ndarray]
     ar1: dict[str, np.ndarray]
     collapse_days: np.ndarray
+    inflation_mean: np.ndarray | None = None
+    inflation_sd: np.ndarray | None = None
     window: np.ndarray | None = None
     window_days: np.ndarray | None = None
 
@@ -139,6 +143,8 @@ class EnsembleState:
             parameters={k: v[b, m] for k, v in self.parameters.items()},
             ar1={k: v[b, m] for k, v in self.ar1.items()},
             collapse_days=self.collapse_days[b],
+            inflation_mean=None if self.inflation_mean is None else self.inflation_mean[b],
+            inflation_sd=None if self.inflation_sd is None else self.inflation_sd[b],
             window=None if self.window is None else self.window[b, m],
             window_days=self.window_days,
         )
@@ -153,6 +159,9 @@ class EnsembleState:
             {k: np.concatenate([p.parameters[k] for p in parts], axis=axis) for k in p0.parameters},
             {k: np.concatenate([p.ar1[k] for p in parts], axis=axis) for k in p0.ar1},
             np.concatenate([p.collapse_days for p in parts]) if axis == 0 else p0.collapse_days,
+            *((None if getattr(p0, k) is None else
+               np.concatenate([getattr(p, k) for p in parts]) if axis == 0 else getattr(p0, k))
+              for k in ("inflation_mean", "inflation_sd")),
             None if p0.window is None else np.concatenate([p.window for p in parts], axis=axis),
             p0.window_days,
         )
@@ -185,7 +194,8 @@ class Settings:
     ``pet`` and ``temperature`` (named as the forcings they perturb), ``parameter_sd``
     (relative sd by parameter name) and ``state_noise`` (sd in mm
     by state name) (``perturbation``); ``method``, ``update_states``, ``obs_error``,
-    ``transform*``, ``gate_sigma``, ``inflation``/``rtps``/``rtpp``, ``estimate`` and
+    ``transform*``, ``gate_sigma``, ``inflation``/``rtps``/``rtpp``, ``adaptive_*`` (adaptive
+    inflation, Anderson 2009: on/off, initial mean and sd, damping, bounds, sd floor), ``estimate`` and
     ``shrinkage`` (the Liu & West factor a), ``collapse_*``, ``gating_warn_fraction`` and
     ``smoother_window`` (days W of the fixed-lag smoother) (``filter``); ``quantiles`` (None = members), ``write_states``, ``float32``
     (``outputs``); ``basin_chunk``, ``member_chunk``, ``time_block_days``, ``scheduler``,
@@ -211,6 +221,13 @@ class Settings:
     inflation: float = 1.0
     rtps: float = 0.0
     rtpp: float = 0.0
+    adaptive_inflation: bool = False
+    adaptive_initial_mean: float = 1.0
+    adaptive_initial_sd: float = 0.6
+    adaptive_damping: float = 0.9
+    adaptive_lower: float = 1.0
+    adaptive_upper: float = 10.0
+    adaptive_min_sd: float = 0.1
     estimate: tuple[str, ...] = ()
     shrinkage: float = 0.98
     collapse_ratio: float = 0.1

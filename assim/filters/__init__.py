@@ -16,17 +16,21 @@ Importable into any model (numpy and scipy only, no files)::
 - :func:`fixed_lag_update`: the fixed-lag ensemble Kalman smoother (current and lagged
   states from the window's readings, late readings against their stored predictions,
   :func:`lagged_predictions`), built on :func:`ensemble_update`.
-- :class:`Inflation`: multiplicative, RTPS, RTPP.
+- :class:`Inflation`: multiplicative, RTPS, RTPP; :class:`AdaptiveInflation` (Anderson 2009)
+  with :func:`update_inflation` and :func:`damp_inflation`.
 - :func:`obs_variance`, :class:`Transform`: observation errors and the assimilation space.
 """
 
 from assim.filters.ensemble import METHODS, Analysis, ensemble_update
 from assim.filters.inflation import (
+    AdaptiveInflation,
     Inflation,
+    damp_inflation,
     inflate,
     relax_to_prior_perturbations,
     relax_to_prior_spread,
     rtps_factor,
+    update_inflation,
 )
 from assim.filters.kalman import kalman_predict, kalman_update, rts_smooth
 from assim.filters.obs import Transform, obs_variance
@@ -34,10 +38,12 @@ from assim.filters.smoother import SmootherAnalysis, fixed_lag_update, lagged_pr
 
 __all__ = [
     "METHODS",
+    "AdaptiveInflation",
     "Analysis",
     "Inflation",
     "SmootherAnalysis",
     "Transform",
+    "damp_inflation",
     "ensemble_update",
     "fixed_lag_update",
     "inflate",
@@ -49,4 +55,5 @@ __all__ = [
     "relax_to_prior_spread",
     "rtps_factor",
     "rts_smooth",
+    "update_inflation",
 ]

@@ -184,6 +184,8 @@ class RunWriter(_StreamedFile):
     float32 : float32 and zlib compression for ensemble values
     time_chunk : days per NetCDF chunk along time
     state_noise : write ``state_noise_water`` (basin, time), mm (runs with additive state noise)
+    adaptive_inflation : write ``inflation_mean`` and ``inflation_sd`` (basin, time), the
+        adaptive inflation after each day's analysis
     earlier : a product of the same run ending the day before ``days[0]`` (a run being
         continued from its restart); its days are copied in front, block by block, and
         ``write_block`` indices count from the first of ``days``
@@ -212,12 +214,14 @@ class RunWriter(_StreamedFile):
         float32: bool = True,
         time_chunk: int = 365,
         state_noise: bool = False,
+        adaptive_inflation: bool = False,
         earlier: str | os.PathLike | None = None,
         attrs: Mapping[str, str] | None = None,
         commit=None,
     ):
         super().__init__(path, float32=float32, commit=commit)
         self.state_noise = bool(state_noise)
+        self.adaptive_inflation = bool(adaptive_inflation)
         self.earlier = None if earlier is None else Path(earlier)
         self.offset = 0
         if self.earlier is not None:
@@ -323,6 +327,26 @@ class RunWriter(_StreamedFile):
             self._float_var("clipped_water", d2, diag_chunks,
                             {"units": "mm", "long_name": "water added (positive) or removed by clipping states "
                              "to their bounds after the update, ensemble mean"}, ensemble=False)
+            self._float_var("innovation_analysis", d2, diag_chunks,
+                            {"long_name": "observed minus mean analysed discharge, in assimilation space "
+                             "(NaN when no reading was used)"}, ensemble=False)
+            self._float_var("obs_error_variance", d2, diag_chunks,
+                            {"long_name": "observation error variance R used by the analysis, in assimilation "
+                             "space (NaN when no reading was used)"}, ensemble=False)
+            if self.adaptive_inflation:
+                for name, what in (("inflation_mean", "mean"), ("inflation_sd", "standard deviation")):
+                    self._float_var(name, d2, diag_chunks,
+                                    {"units": "1", "long_name": f"{what} of the adaptive prior inflation (factor on "
+                                     "the prior variance, Anderson 2009) after the day's analysis"}, ensemble=False)
+            from assim.filters.consistency import STATISTICS
+
+            for name, ln in STATISTICS.items():
+                if name == "innovation_count":
+                    v = self.nc.createVariable(name, "i4", ("basin",))
+                    v.setncatts({"long_name": ln, "units": "1"})
+                else:
+                    v = self.nc.createVariable(name, "f8", ("basin",), fill_value=np.nan)
+                    v.setncatts({"long_name": ln + " (over the run, in assimilation space)"})
         if self.state_noise:
             self._float_var("state_noise_water", ("basin", "time"), diag_chunks,
                             {"units": "mm", "long_name": "water added by the additive state noise, ensemble mean"},
@@ -375,6 +399,20 @@ class RunWriter(_StreamedFile):
         """Global attributes known only at the end (diagnostics, warnings)."""
         with _NC_LOCK:
             self.nc.setncatts(attribute_values(attrs))
+
+    def write_innovation_statistics(self) -> None:
+        """Per-basin innovation statistics over every day of the file
+        (:func:`assim.filters.consistency.innovation_statistics`), from the daily diagnostics
+        written (a continued run's earlier days included). Assimilation runs only."""
+        if not self.assimilate:
+            return
+        from assim.filters.consistency import innovation_statistics
+
+        with _NC_LOCK:
+            series = [np.ma.filled(self.nc.variables[n][:, :self.written].astype(np.float64), np.nan)
+                      for n in ("innovation", "innovation_variance", "innovation_analysis", "obs_error_variance")]
+            for name, values in innovation_statistics(*series).items():
+                self.nc.variables[name][:] = values
 
 
 def _require_finite(values: np.ndarray, path, name: str, basins, days) -> None:

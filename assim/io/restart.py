@@ -7,6 +7,8 @@ Contents (all float64):
 - ``ar1_<forcing>`` (basin, member), the AR(1) log errors of the forcing perturbations on
   ``valid_time``, so the next day's multipliers continue the same series;
 - ``collapse_days`` (basin,), consecutive days of collapsed spread so far;
+- ``inflation_mean``, ``inflation_sd`` (basin,), the adaptive inflation after the last
+  analysis (only when adaptive inflation is on);
 - with the fixed-lag smoother (``filter.smoother.window_days`` W > 0), its window:
   ``window`` (basin, member, window_slot, window_column), the discharge (m3 s-1) and
   recorded states (mm) of the last W days, and ``window_day`` (window_slot,), the day each
@@ -50,6 +52,8 @@ class Restart:
     collapse_days: np.ndarray
     identity: dict[str, str | int] = field(default_factory=dict)
     path: str | None = None
+    inflation_mean: np.ndarray | None = None
+    inflation_sd: np.ndarray | None = None
     window: np.ndarray | None = None  # (basin, member, slot, column), the smoother's window
     window_days: np.ndarray | None = None  # (slot,) int64
     window_columns: tuple[str, ...] = ()
@@ -72,6 +76,11 @@ def write_restart(path, restart: Restart, commit=None) -> Path:
         "collapse_days": (("basin",), np.asarray(restart.collapse_days, dtype=np.int32),
                           {"long_name": "consecutive days with collapsed spread"}),
     }
+    if restart.inflation_mean is not None:
+        for name, what in (("inflation_mean", "mean"), ("inflation_sd", "standard deviation")):
+            data[name] = (("basin",), np.asarray(getattr(restart, name), dtype=np.float64),
+                          {"units": "1", "long_name": f"{what} of the adaptive prior inflation "
+                           "(factor on the prior variance) after the last analysis"})
     for name, v in restart.parameters.items():
         data[f"parameter_{name}"] = (("basin", "member"), np.asarray(v, dtype=np.float64),
                                      {"long_name": f"member value of parameter {name}"})
@@ -139,6 +148,10 @@ def read_restart(path) -> Restart:
             collapse_days=np.asarray(ds["collapse_days"].values, dtype=np.int64),
             identity={k: str(v) for k, v in ds.attrs.items()},
             path=str(path),
+            inflation_mean=(np.asarray(ds["inflation_mean"].values, dtype=np.float64)
+                            if "inflation_mean" in ds.variables else None),
+            inflation_sd=(np.asarray(ds["inflation_sd"].values, dtype=np.float64)
+                          if "inflation_sd" in ds.variables else None),
             **_window(ds),
         )
 
