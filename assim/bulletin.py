@@ -142,7 +142,7 @@ def write_bulletin(forecast: xr.Dataset, *, html_path, figure_folder, alerts_jso
                    levels: Mapping[str, float], observed: xr.DataArray | None = None,
                    recent: xr.DataArray | None = None, latest_reading: Mapping[str, object] | None = None,
                    weather_through=None, names: Mapping[str, str] | None = None, history_days: int = 30,
-                   max_figures: int = 0, figures: bool = True) -> list[Path]:
+                   max_figures: int = 0, figures: bool = True, workers: int = 1) -> list[Path]:
     """Write the bulletin of one forecast issue (see the module docstring).
 
     Parameters
@@ -159,23 +159,21 @@ def write_bulletin(forecast: xr.Dataset, *, html_path, figure_folder, alerts_jso
     max_figures : draw figures of at most this many basins (0 = every basin): the raised
         ones first, then by highest exceedance probability; every basin keeps its table
     figures : False draws no figure at all (the page keeps its tables)
+    workers : processes drawing the figures (:func:`assim.plots.plot_plumes`)
 
     Returns
     -------
     list of Path: the PNGs, the alert files and the page (written last).
     """
-    from assim.plots import figure_name, plot_plume
+    from assim.plots import figure_name, plot_plumes
 
     issue = str(forecast.attrs.get("issue_date", ""))[:10]
     alerts = raised_alerts(forecast, levels, names)
     basins = [str(b) for b in forecast["basin"].values]
     drawn = _figure_basins(forecast, basins, alerts, max_figures) if figures else []
-    note = _traces_note(forecast)
-    pngs: dict[str, Path] = {}
-    for b in drawn:
-        pngs[b] = plot_plume(forecast, observed, b, Path(figure_folder) / figure_name("bulletin", b, issue),
-                             history_days=history_days, names=names, recent=recent, note=note)
-    written = list(pngs.values())
+    pngs = {b: Path(figure_folder) / figure_name("bulletin", b, issue) for b in drawn}
+    written = plot_plumes(forecast, observed, pngs, history_days=history_days, names=names, recent=recent,
+                          note=_traces_note(forecast), workers=workers) if pngs else []
     written += write_alerts(alerts, alerts_json, alerts_csv, issue_date=issue)
     text = render_bulletin(forecast, alerts=alerts, levels=levels, figures=pngs, latest_reading=latest_reading,
                            weather_through=weather_through, names=names, alert_files=(alerts_json, alerts_csv))

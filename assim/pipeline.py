@@ -119,8 +119,9 @@ def _model(cfg: Config, basins: xr.Dataset):
                          variable="model") from None
 
 
-def _inputs(cfg: Config, start=None, end=None, *, climatology: bool = False):
-    """Prepared layer -> (model, engine.Inputs, basins Dataset) for the days start..end."""
+def _inputs(cfg: Config, start=None, end=None, *, climatology: bool = False, layer=None):
+    """Prepared layer -> (model, engine.Inputs, basins Dataset) for the days start..end
+    (``layer``: the files already read, :func:`assim.io.prepared.read_layer`)."""
     import numpy as np
 
     from assim import engine, perturb
@@ -128,7 +129,7 @@ def _inputs(cfg: Config, start=None, end=None, *, climatology: bool = False):
     from assim.io.products import day_numbers
 
     folder = cfg["data"]["prepared"]
-    forcing, obs, basins = prep_io.read_prepared(folder, start, end)
+    forcing, obs, basins = prep_io.read_prepared(folder, start, end, layer=layer)
     model = _model(cfg, basins)
     names = engine.forcing_names(model)
     lacking = [f for f in model.forcings if f not in names]
@@ -150,7 +151,7 @@ def _inputs(cfg: Config, start=None, end=None, *, climatology: bool = False):
     ids = tuple(str(b) for b in forcing["basin"].values)
     clim = None
     if climatology:
-        full = prep_io.read_forcing(Path(folder) / prep_io.FORCING_FILE)
+        full = layer.forcing_period() if layer else prep_io.read_forcing(Path(folder) / prep_io.FORCING_FILE)
         clim = engine.Climatology(day_numbers(full["time"].values), full["precipitation"].values,
                                   full["pet"].values, full["temperature"].values if "temperature" in names else None)
     inputs = engine.Inputs(
@@ -545,13 +546,14 @@ def _hindcast(cfg: Config) -> xr.Dataset:
     return open_product(path)
 
 
-def _readings_digests(cfg: Config, through_days) -> dict[int, str]:
+def _readings_digests(cfg: Config, through_days, obs=None) -> dict[int, str]:
     """Digest of the gauge readings the filter sees (usable discharge and QC flags) from
     ``period.start`` through each of ``through_days``: {day: sha256 hex}.
 
     A restart records the digest through its valid day; a later digest that differs means a
     reading arrived or changed after the restart was written (a late reading, a re-prepared
-    raw folder), so that restart no longer holds every reading up to its day."""
+    raw folder), so that restart no longer holds every reading up to its day. ``obs``: the
+    observations already read (else observations.nc is read)."""
     import hashlib
 
     import numpy as np
@@ -559,7 +561,8 @@ def _readings_digests(cfg: Config, through_days) -> dict[int, str]:
     from assim.io import prepared as prep_io
     from assim.io.products import day_numbers
 
-    obs = prep_io.read_observations(Path(cfg["data"]["prepared"]) / prep_io.OBSERVATIONS_FILE)
+    if obs is None:
+        obs = prep_io.read_observations(Path(cfg["data"]["prepared"]) / prep_io.OBSERVATIONS_FILE)
     days = day_numbers(obs["time"].values)
     usable = prep_io.usable_discharge(obs).values.T  # (time, basin)
     usable = np.where(np.isnan(usable), np.nan, usable)  # one NaN bit pattern
@@ -577,11 +580,11 @@ def _readings_digests(cfg: Config, through_days) -> dict[int, str]:
     return out
 
 
-def _readings_identity(cfg: Config, day: int) -> dict[str, str]:
+def _readings_identity(cfg: Config, day: int, obs=None) -> dict[str, str]:
     """Restart attributes recording which readings the states have taken in."""
     from assim.conventions import iso
 
-    return {"readings_through": iso(day), "readings_digest": _readings_digests(cfg, [day])[day]}
+    return {"readings_through": iso(day), "readings_digest": _readings_digests(cfg, [day], obs)[day]}
 
 
 def _span(files) -> str:
@@ -600,7 +603,7 @@ def _misfit(attrs: dict, basins, identity: dict, basin_ids) -> str | None:
     return None
 
 
-def _choose_restart(cfg: Config, issue_day: int, identity: dict, basin_ids, state_names):
+def _choose_restart(cfg: Config, issue_day: int, identity: dict, basin_ids, state_names, obs=None):
     """The restart a forecast for ``issue_day`` continues from: (Restart, notes).
 
     Candidates are forecasts/restart-YYYY-MM-DD.nc before the issue day and restart.nc valid
@@ -656,7 +659,7 @@ def _choose_restart(cfg: Config, issue_day: int, identity: dict, basin_ids, stat
         raise RestartError("no restart to start the forecast from: run `assim run --mode assimilate` "
                            f"first{why}", file=run_restart)
     candidates.sort(key=lambda c: (c[0], c[1] == run_restart), reverse=True)
-    digests = _readings_digests(cfg, [c[0] for c in candidates])
+    digests = _readings_digests(cfg, [c[0] for c in candidates], obs)
     misfits, changed, loose = [], [], None
 
     def notes(taken):
@@ -685,7 +688,7 @@ def _choose_restart(cfg: Config, issue_day: int, identity: dict, basin_ids, stat
             continue
         recorded = attrs.get("readings_digest")
         if valid not in digests:
-            digests.update(_readings_digests(cfg, [valid]))
+            digests.update(_readings_digests(cfg, [valid], obs))
         if recorded is not None and recorded != digests[valid]:  # None: written before digests existed
             changed.append((f, valid))
             continue
@@ -782,15 +785,19 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
     lock = paths.forecasts(cfg) / f".forecast-{iso}.lock"
     with forecast_lock(lock, [paths.forecast(cfg, iso), paths.forecast_restart(cfg, iso), paths.bulletin(cfg, iso),
                               paths.alerts(cfg, iso, "json"), paths.alerts(cfg, iso, "csv")]), _reading_layer(cfg):
+        from assim.io.prepared import read_layer
+
+        layer = read_layer(cfg["data"]["prepared"])  # read (and checksummed) once for the whole issue
         # the identity needs only the basins' areas and parameters: one day of inputs
-        model, probe, _ = _inputs(cfg, iso, iso)
+        model, probe, _ = _inputs(cfg, iso, iso, layer=layer)
         identity = _identity(cfg, model, probe, "assimilate")
-        restart, notes = _choose_restart(cfg, issue_day, identity, probe.basin_ids, model.state_names)
+        restart, notes = _choose_restart(cfg, issue_day, identity, probe.basin_ids, model.state_names,
+                                         layer.observations)
         restart_path, valid = restart.path, restart.valid_day
         _show_warnings(notes)
         last = issue_day + (leads if kind == "observed" else 0)
         model, inputs, basins = _inputs(cfg, conventions.iso(valid), conventions.iso(last),
-                                        climatology=kind == "climatology")
+                                        climatology=kind == "climatology", layer=layer)
         settings = dataclasses.replace(settings_from_config(cfg, model, "assimilate"), spinup_days=0)
         _show_warnings(check_restart(restart, identity=identity, basins=inputs.basin_ids,
                                      state_names=model.state_names))
@@ -845,9 +852,9 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
                 commit=files,
             )
             write_restart(restart_file, _to_restart(summary.state, model, inputs,
-                                                    {**identity, **_readings_identity(cfg, issue_day)}, settings),
+                                                    {**identity, **_readings_identity(cfg, issue_day, layer.observations)}, settings),
                           commit=files)
-        ds.attrs["bulletin"] = str(_write_bulletin(cfg, ds, iso, issue_day))
+        ds.attrs["bulletin"] = str(_write_bulletin(cfg, ds, iso, issue_day, layer))
     return ds
 
 
@@ -895,9 +902,10 @@ def _forcing_traces(inputs, issue_day: int, leads: int, members: int, kind: str,
     return {"forcing_traces": str(traces), "forcing_note": note}
 
 
-def _write_bulletin(cfg: Config, forecast: xr.Dataset, iso: str, issue_day: int) -> Path:
+def _write_bulletin(cfg: Config, forecast: xr.Dataset, iso: str, issue_day: int, layer) -> Path:
     """The bulletin of one issue (:mod:`assim.bulletin`), from the forecast just written and
-    the prepared layer: the assimilated ensemble of the last ``forecast.history_days`` days
+    the prepared layer (``layer``, as the forecast read it): the assimilated ensemble of the
+    last ``forecast.history_days`` days
     (analysis.nc and the forecasts of those days), the observations, the latest reading
     of each gauge and the last day of the weather."""
     import numpy as np
@@ -905,9 +913,10 @@ def _write_bulletin(cfg: Config, forecast: xr.Dataset, iso: str, issue_day: int)
     from assim import bulletin, paths
     from assim.io import prepared as prep_io
     from assim.io.products import dates, day_numbers
+    from assim.parallel import n_workers
 
     history = int(cfg["forecast"]["history_days"])
-    obs = prep_io.read_observations(paths.prepared(cfg, prep_io.OBSERVATIONS_FILE))
+    obs = layer.observations
     ids = [str(b) for b in obs["basin"].values]
     observed = prep_io.usable_discharge(obs).assign_coords(basin=ids)
     had = obs["n_readings"].values > 0  # readings this forecast could take in: up to the issue day
@@ -915,8 +924,8 @@ def _write_bulletin(cfg: Config, forecast: xr.Dataset, iso: str, issue_day: int)
     last = np.where(had.any(axis=1), had.shape[1] - 1 - np.argmax(had[:, ::-1], axis=1), -1)
     times = obs["time"].values
     latest = {b: (times[j] if j >= 0 and had[i, j] else None) for i, (b, j) in enumerate(zip(ids, last, strict=True))}
-    forcing_days = prep_io.read_forcing(paths.prepared(cfg, prep_io.FORCING_FILE))["time"].values
-    b_ds = prep_io.read_basins(paths.prepared(cfg, "basins.nc"))
+    forcing_days = layer.forcing["time"].values
+    b_ds = layer.basins
     names = {str(k): str(n) for k, n in zip(b_ds["basin"].values, b_ds["name"].values, strict=True)}
     first = str(dates([issue_day - max(history, 1) + 1])[0].date())
     recent = _recent_ensemble(cfg, forecast, first, iso, day_numbers)
@@ -926,7 +935,8 @@ def _write_bulletin(cfg: Config, forecast: xr.Dataset, iso: str, issue_day: int)
         alerts_json=paths.alerts(cfg, iso, "json"), alerts_csv=paths.alerts(cfg, iso, "csv"),
         levels=bulletin.alert_levels(cfg, forecast), observed=observed, recent=recent, latest_reading=latest,
         weather_through=forcing_days[-1] if len(forcing_days) else None, names=names, history_days=history,
-        max_figures=int(section["max_figures"]), figures=bool(section["figures"]))
+        max_figures=int(section["max_figures"]), figures=bool(section["figures"]),
+        workers=n_workers(int(cfg["plots"]["workers"])))
     return paths.bulletin(cfg, iso)
 
 

@@ -29,6 +29,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import xarray as xr
+from matplotlib import rcParams
 from matplotlib.dates import AutoDateLocator, ConciseDateFormatter
 from matplotlib.figure import Figure
 
@@ -123,11 +124,19 @@ def _figure(nrows: int, ncols: int, size: tuple[float, float], **kw):
     return fig, axes
 
 
-def _save(fig: Figure, path: Path) -> Path:
-    """Add the caution line at the foot of the figure and write it atomically."""
-    fig.get_layout_engine().set(rect=(0, 0.045, 1, 0.955))
+def _caution(fig: Figure) -> None:
+    """The caution line at the foot of the figure."""
     fig.text(0.5, 0.008, CAUTION_SHORT, ha="center", va="bottom", fontsize=8, color="#8b0000",
              style="italic", bbox={"boxstyle": "round,pad=0.3", "fc": "#fff4f4", "ec": "#8b0000", "lw": 0.6})
+
+
+def _save(fig: Figure, path: Path) -> Path:
+    """Add the caution line at the foot of the figure (once) and write it atomically."""
+    engine = fig.get_layout_engine()
+    if engine is not None:
+        engine.set(rect=(0, 0.045, 1, 0.955))
+    if CAUTION_SHORT not in (t.get_text() for t in fig.texts):
+        _caution(fig)
     with atomic_path(path) as tmp:
         fig.savefig(tmp, format="png", dpi=_DPI)
     return Path(path)
@@ -250,74 +259,231 @@ def plot_plume(forecast: xr.Dataset, observed: xr.DataArray | None, basin: str, 
     -------
     Path of the written figure.
     """
-    fc = forecast.sel(basin=basin)
-    issue = pd.Timestamp(str(forecast.attrs.get("issue_date", pd.Timestamp(fc["valid_time"].values[0]) - pd.Timedelta(days=1)))[:10])
-    valid = pd.DatetimeIndex(fc["valid_time"].values)
-    fig, axes = _figure(2, 1, (10, 7.2), sharex=True, height_ratios=[2.3, 1])
-    ax, axp = axes[:, 0]
-    if "discharge" in fc:
-        members = fc["discharge"].transpose("lead", "member").values.astype(float)
-        ax.plot(valid, members, color="#7a7a7a", lw=0.5, alpha=0.45)
-        ax.plot([], [], color="#7a7a7a", lw=0.5, label=f"members ({members.shape[1]})")
+    return plot_plumes(forecast, observed, {basin: path}, history_days=history_days, names=names,
+                       recent=recent, note=note)[0]
+
+
+PLUMES_PER_WORKER = 8  # figures a drawing process must have to be worth its start-up (~1.5 s)
+
+
+def plot_plumes(forecast: xr.Dataset, observed: xr.DataArray | None, figures: Mapping[str, str | Path], *,
+                history_days: int = 30, names: Mapping[str, str] | None = None,
+                recent: xr.DataArray | None = None, note: str | None = None, workers: int = 1) -> list[Path]:
+    """The plume of each basin of ``figures`` (basin id -> PNG to write), as :func:`plot_plume`
+    draws it for that basin alone, at a fraction of the cost.
+
+    The basins' arrays are taken from the Datasets once, and one figure is drawn again for
+    every basin (:class:`_PlumeFigure`). With ``workers`` > 1 and at least
+    :data:`PLUMES_PER_WORKER` figures per process, ``workers - 1`` spawned processes draw
+    beside the calling one, each taking the next basin not yet taken (so a process that
+    starts late simply draws fewer).
+
+    Returns
+    -------
+    list of Path, in the order of ``figures``.
+    """
+    tasks = [(d, Path(figures[d["basin"]])) for d in
+             _plume_data(forecast, observed, list(figures), history_days=history_days, names=names,
+                         recent=recent, note=note)]
+    workers = max(1, min(int(workers), len(tasks) // PLUMES_PER_WORKER))
+    if workers == 1:
+        figure = _PlumeFigure()
+        return [figure.draw(d, p) for d, p in tasks]
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    # spawn, as plot_results: never a fork of a process holding library locks
+    context = multiprocessing.get_context("spawn")
+    taken = context.Value("i", 0)
+    with ProcessPoolExecutor(max_workers=workers - 1, mp_context=context, initializer=_share_counter,
+                             initargs=(taken,)) as pool:
+        futures = [pool.submit(_draw_taken, tasks) for _ in range(workers - 1)]
+        _draw_taken(tasks, taken)
+        for f in futures:
+            f.result()
+    return [p for _, p in tasks]
+
+
+_TAKEN = []  # in a drawing process: the counter of basins taken, shared with the others
+
+
+def _share_counter(taken) -> None:
+    _TAKEN.append(taken)
+
+
+def _draw_taken(tasks, taken=None) -> None:
+    """Draw the next basin no process has taken yet, until none is left."""
+    taken = taken if taken is not None else _TAKEN[0]
+    figure = None
+    while True:
+        with taken.get_lock():
+            i = taken.value
+            taken.value += 1
+        if i >= len(tasks):
+            return
+        figure = figure or _PlumeFigure()
+        figure.draw(*tasks[i])
+
+
+def _plume_data(forecast: xr.Dataset, observed, basins: Sequence[str], *, history_days: int,
+                names: Mapping[str, str] | None, recent, note: str | None) -> list[dict]:
+    """What the plume of each of ``basins`` shows, as plain arrays (one dict per basin); the
+    bands of every basin are computed in one call."""
+    basins = [str(b) for b in basins]
+    ids = [str(b) for b in forecast["basin"].values]
+    idx = np.array([ids.index(b) for b in basins], dtype=int)
+    valid = pd.DatetimeIndex(forecast["valid_time"].values)
+    issue = pd.Timestamp(str(forecast.attrs.get("issue_date", valid[0] - pd.Timedelta(days=1)))[:10])
+    start = issue - pd.Timedelta(days=max(history_days, 1) - 1)
+    members, bands = None, None
+    if "discharge" in forecast:
+        members = forecast["discharge"].transpose("basin", "lead", "member").values[idx].astype(float)
         bands = _bands(members)
     else:
-        bands = _quantile_bands(fc["discharge_quantile"].transpose("quantile", "lead"))
-    if bands is not None:
-        _draw_ensemble(ax, valid, bands, EXPERIMENT_STYLE["assimilation"]["color"], "forecast")
-    start = issue - pd.Timedelta(days=max(history_days, 1) - 1)
-    if recent is not None and basin in recent["basin"].values and history_days > 0:
-        r = recent.sel(basin=basin, time=slice(start, issue)).transpose("time", "member")
-        if r.sizes["time"]:
-            _draw_ensemble(ax, pd.DatetimeIndex(r["time"].values), _bands(r.values.astype(float)),
-                           ASSIMILATED_COLOR, "assimilated")
-    if observed is not None and basin in observed["basin"].values and history_days > 0:
-        hist = observed.sel(basin=basin, time=slice(start, issue))
-        ax.plot(pd.DatetimeIndex(hist["time"].values), hist.values, "o-", color="black", ms=3, lw=0.8,
-                label=f"observed, last {history_days} days")
-    ax.axvline(issue, color="black", lw=0.8, ls=":")
-    ax.text(issue, 0.02, "issue ", transform=ax.get_xaxis_transform(), ha="right", va="bottom", fontsize=8)
-    thr_names = [str(t) for t in fc["threshold"].values] if "threshold" in fc.dims else []
-    thr = fc["thresholds"].values.astype(float) if "thresholds" in fc else np.full(len(thr_names), np.nan)
-    shown = severity_order(thr)
-    colors = threshold_colors(thr)
-    for k in shown:
-        ax.axhline(thr[k], color=colors[k], ls="--", lw=1.2)
-        ax.text(1.0, thr[k], f" {thr_names[k]} ({thr[k]:g})", transform=ax.get_yaxis_transform(),
-                color=colors[k], va="center", fontsize=8, clip_on=False)
-    ax.set_ylabel(Q_LABEL)
-    top = np.nanmax([*ax.get_ylim(), *thr[np.isfinite(thr)]]) if len(thr) else ax.get_ylim()[1]
-    ax.set_ylim(0, 1.3 * top)  # head room for the legend above the data and thresholds
-    ax.grid(alpha=0.3)
-    ax.legend(loc="upper left", fontsize=8, ncol=3, framealpha=0.9)
+        bands = _quantile_bands(forecast["discharge_quantile"].transpose("quantile", "basin", "lead"))
+        bands = None if bands is None else {q: v[idx] for q, v in bands.items()}
+    thr_names = [str(t) for t in forecast["threshold"].values] if "threshold" in forecast.dims else []
+    thr = (forecast["thresholds"].transpose("basin", "threshold").values[idx].astype(float)
+           if "thresholds" in forecast else np.full((len(basins), len(thr_names)), np.nan))
+    p = (forecast["exceedance_probability"].transpose("basin", "lead", "threshold").values[idx] if thr_names
+         else np.zeros((len(basins), len(valid), 0)))
+    hist = {}
+    if recent is not None and history_days > 0:
+        r = recent.sel(time=slice(start, issue)).transpose("basin", "time", "member")
+        rows = {str(b): i for i, b in enumerate(r["basin"].values)}
+        if r.sizes["time"] and any(b in rows for b in basins):
+            r_bands = _bands(r.values.astype(float))
+            r_time = pd.DatetimeIndex(r["time"].values)
+            hist["recent"] = {b: (r_time, {q: v[rows[b]] for q, v in r_bands.items()}) for b in basins if b in rows}
+    if observed is not None and history_days > 0:
+        o = observed.sel(time=slice(start, issue)).transpose("basin", "time")
+        rows = {str(b): i for i, b in enumerate(o["basin"].values)}
+        o_time, o_values = pd.DatetimeIndex(o["time"].values), o.values
+        hist["observed"] = {b: (o_time, o_values[rows[b]]) for b in basins if b in rows}
     analysis = textwrap.shorten(str(forecast.attrs.get("analysis", "unknown")), width=110, placeholder=" ...")
     title = f"issued {issue:%Y-%m-%d} (end of day); analysis {analysis}"
     if note:
         title += "\n" + textwrap.shorten(note, width=130, placeholder=" ...")
-    ax.set_title(title, fontsize=9)
-    # exceedance probability per lead, one bar group per valid day, thresholds by value
-    p = fc["exceedance_probability"].transpose("lead", "threshold").values if thr_names else np.zeros((len(valid), 0))
-    width = 0.8 / max(1, len(shown))
-    for j, k in enumerate(shown):
-        offset = pd.to_timedelta((j - (len(shown) - 1) / 2) * width, unit="D")
-        bars = axp.bar(valid + offset, p[:, k], width=width, color=colors[k], label=thr_names[k])
-        if len(valid) <= 15:
-            axp.bar_label(bars, labels=[f"{x:.0%}" if x > 0 else "" for x in p[:, k]], fontsize=6, padding=1)
-    if not shown:
-        axp.text(0.5, 0.5, "no threshold for this basin", transform=axp.transAxes, ha="center", va="center")
-    elif not np.nanmax(p[:, shown], initial=0) > 0:
-        axp.text(0.5, 0.5, "no member exceeds any threshold at any lead (probability 0)",
-                 transform=axp.transAxes, ha="center", va="center", fontsize=9, color="0.3")
-    axp.set_ylim(0, 1.12)
-    axp.set_yticks(np.linspace(0, 1, 6))
-    axp.set_ylabel("Exceedance\nprobability (-)")
-    axp.set_xlabel("Valid date (UTC day)")
-    axp.grid(alpha=0.3, axis="y")
-    if shown:
-        axp.legend(title="threshold", fontsize=8, title_fontsize=8, loc="upper left", ncol=len(shown),
-                   framealpha=0.9)
-    _date_axis(axp)
-    fig.suptitle(f"{_title(basin, names)}: ensemble streamflow forecast", fontsize=12)
-    return _save(fig, Path(path))
+    return [{"basin": b, "issue": issue, "valid": valid, "history_days": history_days,
+             "members": None if members is None else members[i],
+             "bands": None if bands is None else {q: v[i] for q, v in bands.items()},
+             "recent": hist.get("recent", {}).get(b), "observed": hist.get("observed", {}).get(b),
+             "thr_names": thr_names, "thr": thr[i], "p": p[i], "title": title,
+             "suptitle": f"{_title(b, names)}: ensemble streamflow forecast"}
+            for i, b in enumerate(basins)]
+
+
+class _PlumeFigure:
+    """The plume's figure, made once and drawn again for each basin.
+
+    The axes, their fixed labels, grids, date axis and the caution stay; everything that
+    belongs to a basin (lines, bands, bars, texts, legends, titles) is removed before the
+    next basin is drawn, and the data limits start empty again, as in a new figure. The
+    margins follow the basin's own tick labels, threshold labels and titles, measured
+    directly (no layout engine: the constrained layout cost as much as the drawing)."""
+
+    SIZE = (10.0, 7.2)  # inches
+    FOOT = 0.32  # inches kept for the caution at the foot
+    BOTTOM = 0.5  # inches under the probability panel: date labels and the axis label
+    GAP = 0.17  # inches between the two panels
+    PAD = 0.06  # inches around the measured labels
+
+    def __init__(self):
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+        self.fig = Figure(figsize=self.SIZE, dpi=_DPI)
+        FigureCanvasAgg(self.fig)
+        axes = self.fig.subplots(2, 1, squeeze=False, sharex=True, height_ratios=[2.3, 1])
+        self.ax, self.axp = axes[:, 0]
+        self.ax.set_ylabel(Q_LABEL)
+        self.ax.grid(alpha=0.3)
+        self.axp.set_yticks(np.linspace(0, 1, 6))
+        self.axp.set_ylabel("Exceedance\nprobability (-)")
+        self.axp.set_xlabel("Valid date (UTC day)")
+        self.axp.grid(alpha=0.3, axis="y")
+        _date_axis(self.axp)
+        _caution(self.fig)
+
+    def _clear(self) -> None:
+        for a in (self.ax, self.axp):
+            for c in list(a.containers):
+                c.remove()
+            for artist in [*a.lines, *a.collections, *a.patches, *a.texts]:
+                artist.remove()
+            if a.legend_ is not None:
+                a.legend_.remove()
+            a.set_title("")
+            a.ignore_existing_data_limits = True  # limits of this basin's data alone, as in new axes
+            a.set_autoscale_on(True)
+
+    def draw(self, d: Mapping, path: Path) -> Path:
+        """Draw one basin (a dict of :func:`_plume_data`) and write it to ``path``."""
+        from matplotlib.collections import LineCollection
+        from matplotlib.dates import date2num
+
+        self._clear()
+        ax, axp = self.ax, self.axp
+        valid, issue, history_days = d["valid"], d["issue"], d["history_days"]
+        x = date2num(valid)
+        if d["members"] is not None:
+            m = d["members"]  # (lead, member)
+            segments = np.stack([np.broadcast_to(x[:, None], m.shape), m], axis=-1).transpose(1, 0, 2)
+            ax.add_collection(LineCollection(segments, colors="#7a7a7a", linewidths=0.5, alpha=0.45, zorder=2))
+            ax.plot([], [], color="#7a7a7a", lw=0.5, label=f"members ({m.shape[1]})")
+        if d["bands"] is not None:
+            _draw_ensemble(ax, valid, d["bands"], EXPERIMENT_STYLE["assimilation"]["color"], "forecast")
+        if d["recent"] is not None:
+            _draw_ensemble(ax, d["recent"][0], d["recent"][1], ASSIMILATED_COLOR, "assimilated")
+        if d["observed"] is not None:
+            ax.plot(d["observed"][0], d["observed"][1], "o-", color="black", ms=3, lw=0.8,
+                    label=f"observed, last {history_days} days")
+        ax.axvline(issue, color="black", lw=0.8, ls=":")
+        ax.text(issue, 0.02, "issue ", transform=ax.get_xaxis_transform(), ha="right", va="bottom", fontsize=8)
+        thr_names, thr, p = d["thr_names"], d["thr"], d["p"]
+        shown = severity_order(thr)
+        colors = threshold_colors(thr)
+        labels = []
+        for k in shown:
+            ax.axhline(thr[k], color=colors[k], ls="--", lw=1.2)
+            labels.append(ax.text(1.0, thr[k], f" {thr_names[k]} ({thr[k]:g})", transform=ax.get_yaxis_transform(),
+                                  color=colors[k], va="center", fontsize=8, clip_on=False))
+        top = np.nanmax([*ax.get_ylim(), *thr[np.isfinite(thr)]]) if len(thr) else ax.get_ylim()[1]
+        ax.set_ylim(0, 1.3 * top)  # head room for the legend above the data and thresholds
+        ax.legend(loc="upper left", fontsize=8, ncol=3, framealpha=0.9)
+        ax.set_title(d["title"], fontsize=9)
+        # exceedance probability per lead, one bar group per valid day, thresholds by value
+        width = 0.8 / max(1, len(shown))
+        for j, k in enumerate(shown):
+            offset = pd.to_timedelta((j - (len(shown) - 1) / 2) * width, unit="D")
+            bars = axp.bar(valid + offset, p[:, k], width=width, color=colors[k], label=thr_names[k])
+            if len(valid) <= 15:
+                axp.bar_label(bars, labels=[f"{v:.0%}" if v > 0 else "" for v in p[:, k]], fontsize=6, padding=1)
+        if not shown:
+            axp.text(0.5, 0.5, "no threshold for this basin", transform=axp.transAxes, ha="center", va="center")
+        elif not np.nanmax(p[:, shown], initial=0) > 0:
+            axp.text(0.5, 0.5, "no member exceeds any threshold at any lead (probability 0)",
+                     transform=axp.transAxes, ha="center", va="center", fontsize=9, color="0.3")
+        axp.set_ylim(0, 1.12)
+        if shown:
+            axp.legend(title="threshold", fontsize=8, title_fontsize=8, loc="upper left", ncol=len(shown),
+                       framealpha=0.9)
+        self.fig.suptitle(d["suptitle"], fontsize=12, va="top", y=1 - self.PAD / self.SIZE[1])
+        self._layout(labels)
+        return _save(self.fig, path)
+
+    def _layout(self, threshold_labels) -> None:
+        """Margins from this basin's labels: the tick and axis labels on the left, the longest
+        threshold label on the right, the titles on top (inches, then figure fractions)."""
+        r = self.fig.canvas.get_renderer()
+        w, h = self.SIZE
+        inch = self.fig.dpi
+        left = max(a.get_window_extent(r).x0 - a.yaxis.get_tightbbox(r).x0 for a in (self.ax, self.axp)) / inch
+        right = max([t.get_window_extent(r).width / inch for t in threshold_labels], default=0.0)
+        title = self.ax.title.get_window_extent(r).height / inch + rcParams["axes.titlepad"] / 72
+        top = self.PAD + self.fig._suptitle.get_window_extent(r).height / inch + self.PAD + title
+        bottom = self.FOOT + self.BOTTOM
+        self.fig.subplots_adjust(left=(left + self.PAD) / w, right=1 - (right + self.PAD) / w, top=1 - top / h,
+                                 bottom=bottom / h, hspace=2 * self.GAP / (h - top - bottom - self.GAP))
 
 
 def _skill_values(skill: xr.Dataset, basin: str, metric: str, exp: str):

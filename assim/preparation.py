@@ -510,21 +510,27 @@ def _build(cfg: Mapping, calibrated: bool = True):
 
 @dataclass(frozen=True)
 class _Raw:
-    """A raw file as read: its bytes, length and SHA-256."""
+    """A raw file as read: its bytes, length and SHA-256, and the SHA-256 of its first
+    ``prefix`` bytes (the part an earlier prep read; "" when the file is not that long)."""
 
     data: bytes
     size: int
     sha256: str
+    prefix_sha256: str = ""
 
     @classmethod
-    def read(cls, path: Path) -> _Raw:
+    def read(cls, path: Path, prefix: int | None = None) -> _Raw:
         import hashlib
 
         try:
             data = path.read_bytes()
         except OSError:
             return cls(b"", -1, "")
-        return cls(data, len(data), hashlib.sha256(data).hexdigest())
+        view = memoryview(data)
+        h = hashlib.sha256(view[:prefix])
+        head = h.hexdigest() if prefix is not None and 0 <= prefix <= len(data) else ""
+        h.update(view[prefix:] if prefix is not None else b"")  # one pass over the bytes gives both digests
+        return cls(data, len(data), h.hexdigest(), head)
 
     def line_offsets(self, start: int = 0) -> np.ndarray:
         """Byte offset of each line of ``data[start:]`` (its first line first)."""
@@ -670,15 +676,12 @@ def _update(cfg: Mapping, calibrated: bool):
         raise _Rebuild("other basins")
     raw = {}
     for name in (raw_io.BASINS_FILE, raw_io.WEATHER_FILE, raw_io.GAUGE_FILE):
-        r = raw[name] = _Raw.read(folder / name)
         size, sha = old.raw[name]
+        r = raw[name] = _Raw.read(folder / name, prefix=size)
         if r.size < size or (r.size == size and r.sha256 != sha):
             raise _Rebuild(f"{name} changed")
         if r.size > size:
-            import hashlib
-
-            if name == raw_io.BASINS_FILE or hashlib.sha256(r.data[:size]).hexdigest() != sha \
-                    or (size and r.data[size - 1:size] != b"\n"):
+            if name == raw_io.BASINS_FILE or r.prefix_sha256 != sha or (size and r.data[size - 1:size] != b"\n"):
                 raise _Rebuild(f"{name} changed before its end")
     try:
         forcing, obs, _ = prep_io.read_prepared(out)

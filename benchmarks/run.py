@@ -558,8 +558,9 @@ def daily_rows(quick: bool, figures: dict) -> list[Row]:
     growth = long_["issue_s"] / short["issue_s"]
     rows = [Row(f"daily issue, {y}-year record",
                 f"{n_basin} basins x {members} members, {r['gauge_rows']:,} gauge rows; `assim prep` + "
-                "`assim forecast` (climatology, 10 leads), fresh processes",
-                f"{r['issue_s']:.1f} s wall (prep {r['prep_s']:.1f} s, forecast {r['forecast_s']:.1f} s)",
+                f"`assim forecast` (climatology, 10 leads, bulletin with {r['figures']} figures), fresh processes",
+                f"{r['issue_s']:.1f} s wall (prep {r['prep_s']:.1f} s, forecast {r['forecast_s']:.1f} s); "
+                f"CPU {r['issue_cpu_s']:.1f} s",
                 target="<= 10 s", met=r["issue_s"] <= 10.0) for y, r in out.items()]
     rows.append(Row("daily issue, growth with the record", f"{max(out)}-year / {min(out)}-year record",
                     f"{growth:.2f}x", target="flat (<= 1.2x)", met=growth <= 1.2))

@@ -96,6 +96,49 @@ def test_plume_shows_thresholds_and_probabilities(study, tmp_path, monkeypatch):
         np.testing.assert_allclose(heights, expected)
 
 
+def _plume_inputs(cfg, truth):
+    """The latest forecast, observations of alder only and the assimilated ensemble of birch
+    only: the two basins differ in thresholds (two / one), range, history and bands."""
+    observed, names = plots._inputs(cfg)
+    with open_product(paths.forecast(cfg, truth["issue_date"])) as fc:
+        fc = fc.load()
+    with open_product(paths.run_product(cfg, "assimilate")) as an:
+        recent = an["discharge"].sel(basin=["birch"]).load()
+    kw = {"history_days": 20, "names": names, "recent": recent, "note": "a note under the title"}
+    return fc, observed.sel(basin=["alder"]), kw
+
+
+def _pixels(path):
+    return imread(path)
+
+
+def test_reused_plume_figure_draws_each_basin_as_alone(study, tmp_path):
+    """Common practice, no published source: the bulletin draws every basin on one reused
+    figure; each PNG must be the one drawn for that basin alone on a new figure (identical
+    bytes and pixels), in either order, so that no line, band, label, bar, legend entry,
+    data limit or margin of one basin is left in the next one's figure."""
+    cfg, truth = study
+    fc, observed, kw = _plume_inputs(cfg, truth)
+    alone = {b: plots.plot_plume(fc, observed, b, tmp_path / f"alone-{b}.png", **kw) for b in ("alder", "birch")}
+    for order in (("alder", "birch"), ("birch", "alder")):
+        reused = plots.plot_plumes(fc, observed, {b: tmp_path / f"{'-'.join(order)}-{b}.png" for b in order}, **kw)
+        for b, p in zip(order, reused, strict=True):
+            assert p.read_bytes() == alone[b].read_bytes(), (order, b)
+    assert not np.array_equal(_pixels(alone["alder"]), _pixels(alone["birch"]))
+
+
+def test_plume_figures_drawn_by_several_processes(study, tmp_path, monkeypatch):
+    """Common practice, no published source: figures drawn by a spawned process beside the
+    calling one are the same files as those drawn in one process."""
+    cfg, truth = study
+    fc, observed, kw = _plume_inputs(cfg, truth)
+    one = plots.plot_plumes(fc, observed, {b: tmp_path / f"one-{b}.png" for b in ("alder", "birch")}, **kw)
+    monkeypatch.setattr(plots, "PLUMES_PER_WORKER", 1)
+    two = plots.plot_plumes(fc, observed, {b: tmp_path / f"two-{b}.png" for b in ("alder", "birch")}, workers=2,
+                            **kw)
+    assert [p.read_bytes() for p in two] == [p.read_bytes() for p in one]
+
+
 def test_nothing_to_draw_is_an_input_error(tmp_path):
     """Common practice, no published source: an empty results folder is an InputError."""
     from assim.config import load_config

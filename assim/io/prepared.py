@@ -21,6 +21,7 @@ naming the file, the variable and the first bad (basin, date).
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -486,8 +487,14 @@ def read_forcing(path: str | Path, start=None, end=None) -> xr.Dataset:
 
 def _read_forcing(path, start, end) -> tuple[xr.Dataset, np.ndarray]:
     """The forcing over [start, end] and the file's whole daily axis."""
-    ds = _open(path)
+    return _forcing_period(_open(path), path, start, end)
+
+
+def _forcing_period(ds: xr.Dataset, path, start, end) -> tuple[xr.Dataset, np.ndarray]:
+    """An opened forcing file (left as it is) checked and cut to [start, end]; and its whole
+    daily axis."""
     check_forcing(ds, path, start, end)
+    ds = ds.copy(deep=False)
     ds = _float64(ds, ("precipitation", "pet", "temperature") if "temperature" in ds else ("precipitation", "pet"))
     days = ds["time"].values.astype("datetime64[D]")
     lo, hi = _period_index(days, path, start, end)
@@ -553,13 +560,40 @@ def read_basins(path: str | Path) -> xr.Dataset:
     return ds
 
 
-def read_prepared(folder: str | Path, start=None, end=None) -> tuple[xr.Dataset, xr.Dataset, xr.Dataset]:
+@dataclass(frozen=True)
+class Layer:
+    """The three prepared files, each read and checked against its checksums once
+    (:func:`read_layer`), for a command that takes several periods of them (a forecast
+    reads its restart's days, the climatology's whole record and the bulletin's latest
+    readings): pass it to :func:`read_prepared` and :meth:`forcing_period`."""
+
+    folder: Path
+    forcing: xr.Dataset  # the whole file, as read (checked for a period when cut)
+    observations: xr.Dataset  # as read_observations returns it
+    basins: xr.Dataset  # as read_basins returns it
+
+    def forcing_period(self, start=None, end=None) -> xr.Dataset:
+        """The forcing as :func:`read_forcing` returns it for [start, end]."""
+        return _forcing_period(self.forcing, self.folder / FORCING_FILE, start, end)[0]
+
+
+def read_layer(folder: str | Path) -> Layer:
+    """Read the three prepared files once (each checked against the checksums written with
+    it); the checks of one period and of the files together are :func:`read_prepared`'s."""
+    folder = Path(folder)
+    return Layer(folder, _open(folder / FORCING_FILE), read_observations(folder / OBSERVATIONS_FILE),
+                 read_basins(folder / BASINS_FILE))
+
+
+def read_prepared(folder: str | Path, start=None, end=None, *,
+                  layer: Layer | None = None) -> tuple[xr.Dataset, xr.Dataset, xr.Dataset]:
     """Read the three prepared files and check they fit together.
 
     Parameters
     ----------
     folder : the prepared folder (config ``data.prepared``)
     start, end : the run period (see :func:`read_forcing`)
+    layer : the files already read (:func:`read_layer` of ``folder``); None reads them
 
     Returns
     -------
@@ -576,9 +610,13 @@ def read_prepared(folder: str | Path, start=None, end=None) -> tuple[xr.Dataset,
         the observations run outside the forcing's days.
     """
     folder = Path(folder)
-    forcing, full = _read_forcing(folder / FORCING_FILE, start, end)
-    obs = read_observations(folder / OBSERVATIONS_FILE)
-    basins = read_basins(folder / BASINS_FILE)
+    if layer is None:
+        forcing, full = _read_forcing(folder / FORCING_FILE, start, end)
+        obs = read_observations(folder / OBSERVATIONS_FILE)
+        basins = read_basins(folder / BASINS_FILE)
+    else:
+        forcing, full = _forcing_period(layer.forcing, folder / FORCING_FILE, start, end)
+        obs, basins = layer.observations, layer.basins
     check_set({folder / name: ds.attrs for name, ds in
                ((FORCING_FILE, forcing), (OBSERVATIONS_FILE, obs), (BASINS_FILE, basins))})
     f_ids = forcing["basin"].values.astype(str).tolist()
