@@ -555,6 +555,8 @@ CASES = [
     Case("prepared discharge changed", RUN,
          _nc("prepared/observations.nc", _var_set("discharge", lambda a: np.where(np.isfinite(a), a * 2, a))),
          ("observations.nc", "discharge", "damaged")),
+    Case("prepared day bounds changed", RUN, _nc("prepared/forcing.nc", _var_set("time_bnds", lambda a: a + 1)),
+         ("forcing.nc", "time_bnds", "damaged")),
     Case("prepared checksums garbled", CHECK, _nc("prepared/basins.nc", _attr("area", "sha256", "x")),
          ("basins.nc", "damaged")),
     # ---- products a later step reads: damaged

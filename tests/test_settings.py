@@ -33,7 +33,7 @@ def test_every_field_comes_from_the_config():
                 "parameters": {"estimate": ["x3", "x1"], "shrinkage": 0.9}, "collapse_ratio": 0.2,
                 "collapse_days": 12, "gating_warn_fraction": 0.3, "smoother": {"window_days": 4}},
         outputs={"ensemble": "quantiles", "quantiles": [0.1, 0.9], "states": True, "all_states": True,
-                 "float32": False},
+                 "float32": False, "compression": "zlib"},
     )
     st = settings_from_config(cfg, GR4J, "assimilate")
     default = engine.Settings()

@@ -191,8 +191,9 @@ def _set_global_attributes(path: Path, attrs: Mapping[str, str], checksums: Mapp
 
     with NETCDF4_PYTHON_LOCK, netCDF4.Dataset(path, "a") as nc:
         nc.setncatts(dict(attrs))
+        bounds = {getattr(v, "bounds", None) for v in nc.variables.values()}
         for name, digest in (checksums or {}).items():
-            nc.variables[name].setncattr(CHECKSUM_ATTR, digest)
+            nc.variables[name].setncattr(BOUNDS_CHECKSUM_ATTR if name in bounds else CHECKSUM_ATTR, digest)
 
 
 # ------------------------------------------------------------------------ checksums, sets
@@ -201,6 +202,9 @@ def _set_global_attributes(path: Path, attrs: Mapping[str, str], checksums: Mapp
 #: (see :func:`variable_digest`). Files written before it (with the global attribute
 #: :data:`LEGACY_CHECKSUM_ATTR`, or with none) are read without a check.
 CHECKSUM_ATTR = "sha256"
+#: The same on a boundary variable (e.g. ``time_bnds``): CF 1.8 section 7.1 asks that an
+#: attribute a boundary variable shares with its parent have the parent's value.
+BOUNDS_CHECKSUM_ATTR = "bounds_sha256"
 LEGACY_CHECKSUM_ATTR = "sha256_variables"
 
 
@@ -335,7 +339,7 @@ def verify_digests(ds, path, error: type[AssimError] | None = None, names: Itera
     wanted = set(ds.variables) if names is None else set(names) & set(ds.variables)
     for name in sorted(map(str, wanted)):
         var = ds.variables[name]
-        recorded = var.attrs.get(CHECKSUM_ATTR)
+        recorded = var.attrs.get(CHECKSUM_ATTR, var.attrs.get(BOUNDS_CHECKSUM_ATTR))
         if recorded is None:
             continue
         split = tuple(d for d in str(recorded).partition(":")[0].split(",") if d)
@@ -345,6 +349,7 @@ def verify_digests(ds, path, error: type[AssimError] | None = None, names: Itera
                 "write it again (rerun the step that made it)", file=path, variable=name)
     for var in ds.variables.values():
         var.attrs.pop(CHECKSUM_ATTR, None)
+        var.attrs.pop(BOUNDS_CHECKSUM_ATTR, None)
     ds.attrs.pop(LEGACY_CHECKSUM_ATTR, None)
 
 
