@@ -205,24 +205,35 @@ def load_config(path: str | Path | None = None, **overrides: Any) -> Config:
         if the file is missing, is not YAML (a key given twice included, named with its
         line), or fails the schema (an override's error names ``--set``).
     """
-    raw: Any = {}
-    source = "<defaults>"
-    if path is not None:
-        source = str(path)
-        try:
-            with open(path, encoding="utf-8") as f:
-                raw = load_yaml(f)
-        except FileNotFoundError:
-            raise ConfigError("config file not found", file=source) from None
-        except IsADirectoryError:
-            raise ConfigError("the config path is a folder, not a file", file=source) from None
-        except (OSError, UnicodeDecodeError) as exc:
-            raise ConfigError(f"cannot read config file ({exc})", file=source) from None
-        except yaml.YAMLError as exc:
-            message, key, place = yaml_problem(exc)
-            raise ConfigError(message, file=source, variable=key, place=place) from None
-        if raw is None:
-            raw = {}
-        if not isinstance(raw, dict):
-            raise ConfigError("the configuration must be a mapping of sections", file=source)
-    return validate(_merge(raw, overrides), source, overrides)
+    if path is None:
+        return validate(_merge({}, overrides), "<defaults>", overrides)
+    return validate(_merge(read_config_file(path), overrides), str(path), overrides)
+
+
+def read_config_file(path: str | Path) -> dict:
+    """The sections of a YAML config file, read with the project's one YAML loader.
+
+    Raises
+    ------
+    ConfigError
+        (one line naming the file, and the key and line where known) if the file is
+        missing, unreadable, not YAML, gives a key twice, or is not a mapping of sections.
+    """
+    source = str(path)
+    try:
+        with open(path, encoding="utf-8") as f:
+            raw = load_yaml(f)
+    except FileNotFoundError:
+        raise ConfigError("config file not found", file=source) from None
+    except IsADirectoryError:
+        raise ConfigError("the config path is a folder, not a file", file=source) from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"cannot read config file ({exc})", file=source) from None
+    except yaml.YAMLError as exc:
+        message, key, place = yaml_problem(exc)
+        raise ConfigError(message, file=source, variable=key, place=place) from None
+    if raw is None:
+        return {}
+    if not isinstance(raw, dict):
+        raise ConfigError("the configuration must be a mapping of sections", file=source)
+    return raw

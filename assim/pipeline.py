@@ -166,7 +166,7 @@ def _period(cfg: Config):
     return p["start"], p["end"]
 
 
-def _identity(cfg: Config, model, inputs, mode: str) -> dict[str, str]:
+def _identity(cfg: Config, model, inputs, mode: str) -> dict[str, str | int]:
     import hashlib
 
     import numpy as np
@@ -178,8 +178,8 @@ def _identity(cfg: Config, model, inputs, mode: str) -> dict[str, str]:
         h.update(np.ascontiguousarray(inputs.parameters[k]).tobytes())
     return {
         "model": model.name,
-        "members": str(cfg["ensemble"]["members"]),
-        "seed": str(cfg["ensemble"]["seed"]),
+        "members": int(cfg["ensemble"]["members"]),
+        "seed": int(cfg["ensemble"]["seed"]),
         "mode": mode,
         "digest_perturbation": cfg.digest("perturbation"),
         "digest_filter": cfg.digest("filter"),

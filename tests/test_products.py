@@ -7,6 +7,7 @@ import socket
 import subprocess
 import sys
 
+import netCDF4
 import numpy as np
 import pandas as pd
 import pytest
@@ -242,3 +243,26 @@ def test_forecast_lock(tmp_path):
     with pytest.raises(LockError, match="another-host"):
         with forecast_lock(lock):
             pass
+
+
+def test_forecast_values_are_day_means_bounded_by_their_lead(tmp_path):
+    """CF-1.8 section 7.3 (cell methods) and 7.1 (cell boundaries): a value at lead L is the
+    mean over the L-th day after the issue, so forecast and hindcast discharge say
+    ``lead: mean`` with ``lead_bnds`` = [L - 1, L] days; the assimilated days of a forecast are
+    day means bounded by [d, d + 1)."""
+    rng = np.random.default_rng(3)
+    day = int(DAYS[4])
+    write_forecast(tmp_path / "f.nc", basins=["a"], issue_day=day, discharge=rng.gamma(2.0, 3.0, (1, 3, 4)),
+                   quantiles=[0.5], thresholds={"minor": np.array([5.0])}, analysis="performed",
+                   assimilated=(np.array([day - 1, day]), rng.gamma(2.0, 1.0, (1, 2, 4))))
+    with HindcastWriter(tmp_path / "h.nc", basins=["a"], issue_days=DAYS[:2], leads=3, members=4) as w:
+        w.write_block("openloop", 0, rng.gamma(2.0, 1.0, (1, 2, 3, 4)))
+    for name in ("f.nc", "h.nc"):
+        with netCDF4.Dataset(tmp_path / name) as nc:
+            assert nc["discharge"].cell_methods == "lead: mean"
+            assert nc["lead"].bounds == "lead_bnds"
+            np.testing.assert_array_equal(nc["lead_bnds"][:], [[0, 1], [1, 2], [2, 3]])
+    with netCDF4.Dataset(tmp_path / "f.nc") as nc:
+        assert nc["discharge_analysis"].cell_methods == "time: mean"
+        np.testing.assert_array_equal(np.diff(nc["time_bnds"][:], axis=1), 1)
+        np.testing.assert_array_equal(nc["time_bnds"][:, 0], nc["time"][:])

@@ -219,3 +219,19 @@ def test_file_set_replaced_whole_or_not_at_all(tmp_path):
         nc.set_generation = "0" * 32
     with pytest.raises(RestartError, match="analysis.nc.*different writes"):
         read_restart(restart)
+
+
+def test_identity_numbers_are_stored_as_numbers(tmp_path):
+    """NetCDF attributes keep their type (NetCDF User Guide, attribute data types): a restart's
+    member count and seed are integers on disk, read back as the same text the checks compare."""
+    import netCDF4
+
+    from assim.io.restart import Restart, read_restart, write_restart
+
+    r = Restart(("a",), 18262, ("s",), np.ones((1, 3, 1)), {}, {}, np.zeros(1, dtype=np.int64),
+                {"model": "m", "members": 3, "seed": 12, "mode": "assimilate"})
+    write_restart(tmp_path / "restart.nc", r)
+    with netCDF4.Dataset(tmp_path / "restart.nc") as nc:
+        assert isinstance(nc.members, np.integer) and nc.members == 3
+        assert isinstance(nc.seed, np.integer) and nc.seed == 12
+    assert read_restart(tmp_path / "restart.nc").identity["members"] == "3"

@@ -131,3 +131,18 @@ def test_config_failing_the_schema_stops_before_any_rule(tmp_path):
     assert r.returncode != 0
     assert "ensemble.members" in r.stderr and "minimum of 2" in r.stderr
     assert not (tmp_path / "results").exists()
+
+
+def test_config_with_a_key_given_twice_stops_with_one_line(tmp_path):
+    """Snakemake reads --configfile keeping the last of a duplicated key; the workflow reads
+    the file again with the project's loader and refuses it (exit 2, the key and both lines
+    named, no traceback) before any rule runs."""
+    path = _short_config(tmp_path)
+    text = path.read_text().replace("  members: 16\n", "  members: 16\n  members: 3\n")
+    path.write_text(text)
+    first = text.splitlines().index("  members: 16") + 1
+    r = _snakemake(tmp_path, "--configfile", str(path))
+    assert r.returncode == 2, r.stderr[-2000:]
+    assert f"'members' given twice (first on line {first})" in r.stderr
+    assert f"line {first + 1}" in r.stderr and "Traceback" not in r.stderr
+    assert not (tmp_path / "results").exists()

@@ -55,6 +55,15 @@ DISCHARGE_ATTRS = {
 # Simulated discharge of a day is the mean over the day (the model's daily step), bounded by
 # the variable ``time_bnds`` (CF-1.8 section 7.3).
 DAILY_MEAN = {"cell_methods": "time: mean"}
+# A forecast's value at lead L is the mean over the L-th day after the issue, bounded by the
+# variable ``lead_bnds`` [L - 1, L] days (forecast.nc and hindcast.nc alike).
+LEAD_MEAN = {"cell_methods": "lead: mean"}
+
+
+def lead_bounds(leads: int) -> np.ndarray:
+    """(lead, 2) int32 bounds of leads 1..``leads`` in days: the day [L - 1, L] after the issue."""
+    lead = np.arange(1, int(leads) + 1, dtype=np.int32)
+    return np.stack([lead - 1, lead], axis=1)
 # Engine array -> variable of analysis.nc: a reader of `discharge` gets the analysis.
 _ANALYSIS_NAMES = {
     "discharge": "discharge_background",
@@ -398,12 +407,15 @@ class HindcastWriter(_StreamedFile):
         v.long_name = "origin of the initial states"
         self._basin(self.basins)
         self._days("issue_time", self.issue_days, "issue time: the forecast starts from the end of this day")
-        self._int_coord("lead", np.arange(1, self.leads + 1), units="days", long_name="lead time; valid day = issue_time + lead")
+        self._int_coord("lead", np.arange(1, self.leads + 1), units="days", long_name="lead time; valid day = issue_time + lead",
+                        bounds="lead_bnds")
+        nc.createDimension("nv", 2)
+        nc.createVariable("lead_bnds", "i4", ("lead", "nv"))[:] = lead_bounds(self.leads)
         self._int_coord("member", np.arange(self.members), long_name="ensemble member")
         # on disk: issue_time last (CF-1.8 section 2.4); read back in contract order by open_product
         chunks = (1, 1, self.leads, self.members, max(1, min(len(self.issue_days), 64)))
         self._float_var("discharge", ("experiment", "basin", "lead", "member", "issue_time"), chunks,
-                        {**DISCHARGE_ATTRS, "long_name": "forecast discharge"})
+                        {**DISCHARGE_ATTRS, **LEAD_MEAN, "long_name": "forecast discharge"})
 
     def write_block(self, experiment: str, start: int, discharge: np.ndarray) -> None:
         e = EXPERIMENTS.index(experiment)
@@ -454,16 +466,18 @@ def write_forecast(
     lead = np.arange(1, nl + 1)
     ds = xr.Dataset(
         {
-            "discharge": (("basin", "lead", "member"), discharge, {**DISCHARGE_ATTRS, "long_name": "forecast discharge"}),
+            "discharge": (("basin", "lead", "member"), discharge,
+                          {**DISCHARGE_ATTRS, **LEAD_MEAN, "long_name": "forecast discharge"}),
             "discharge_quantile": (("basin", "lead", "quantile"), dq,
-                                   {**DISCHARGE_ATTRS, "long_name": "quantiles of the forecast discharge"}),
+                                   {**DISCHARGE_ATTRS, **LEAD_MEAN, "long_name": "quantiles of the forecast discharge"}),
             "exceedance_probability": (("basin", "lead", "threshold"), exceedance_probability(discharge[:, :, None, :], thr[:, None, :]),
                                        {"units": "1", "long_name": "fraction of members above the threshold"}),
             "thresholds": (("basin", "threshold"), thr, {**DISCHARGE_ATTRS, "long_name": "named discharge thresholds"}),
         },
         coords={
             "basin": ("basin", np.array([str(b) for b in basins], dtype=object), {"cf_role": "timeseries_id"}),
-            "lead": ("lead", lead, {"units": "days", "long_name": "lead time after the issue date"}),
+            "lead": ("lead", lead, {"units": "days", "long_name": "lead time after the issue date", "bounds": "lead_bnds"}),
+            "lead_bnds": (("lead", "nv"), lead_bounds(nl)),
             "member": ("member", np.arange(nm), {"long_name": "ensemble member"}),
             "quantile": ("quantile", q, {"long_name": "probability of non-exceedance"}),
             "threshold": ("threshold", np.array(names, dtype=object), {"long_name": "threshold name"}),
@@ -480,14 +494,18 @@ def write_forecast(
     if assimilated is not None and len(assimilated[0]):
         a_days, a_values = assimilated
         ds["discharge_analysis"] = (("basin", "time", "member"), np.asarray(a_values, dtype=np.float64),
-                                    {**DISCHARGE_ATTRS, "long_name": "assimilated discharge before the issue "
+                                    {**DISCHARGE_ATTRS, **DAILY_MEAN, "long_name": "assimilated discharge before the issue "
                                      "(ensemble after each day's update)"})
-        ds = ds.assign_coords(time=("time", dates(a_days), {"standard_name": "time", "axis": "T",
+        ds = ds.assign_coords(time=("time", dates(a_days), {"standard_name": "time", "axis": "T", "bounds": "time_bnds",
                                                             "long_name": "day assimilated before the issue"}))
+        a_days = np.asarray(a_days, dtype=np.int64)
+        ds["time_bnds"] = (("time", "nv"), np.stack([dates(a_days), dates(a_days + 1)], axis=1))  # UTC day [d, d + 1)
     ds.attrs.pop("featureType", None)  # one issue: no time series (CF-1.8 section 9)
     enc_t = {"units": TIME_UNITS, "calendar": CALENDAR, "dtype": "i4"}
     encoding = {"valid_time": enc_t, "issue_time": enc_t, "lead": {"dtype": "i4"}, "member": {"dtype": "i4"},
-                "quantile": {"_FillValue": None}}
+                "quantile": {"_FillValue": None}, "lead_bnds": {"dtype": "i4", "_FillValue": None}}
+    if "time_bnds" in ds:
+        encoding["time_bnds"] = {**enc_t, "_FillValue": None}
     fdtype = "f4" if float32 else "f8"
     for v in ("discharge", "discharge_quantile", "discharge_analysis"):
         if v in ds:

@@ -44,7 +44,7 @@ class Restart:
     parameters: dict[str, np.ndarray]
     ar1: dict[str, np.ndarray]
     collapse_days: np.ndarray
-    identity: dict[str, str] = field(default_factory=dict)
+    identity: dict[str, str | int] = field(default_factory=dict)
     path: str | None = None
 
     @property
@@ -81,8 +81,7 @@ def write_restart(path, restart: Restart, commit=None) -> Path:
             "valid_time": ((), dates([restart.valid_day])[0],
                            {"long_name": "the states are valid at the end of this day"}),
         },
-        attrs=global_attributes("ensemble restart", feature_type=None,
-                                **{k: str(v) for k, v in restart.identity.items()}),
+        attrs=global_attributes("ensemble restart", feature_type=None, **restart.identity),  # numbers stay numbers
     )
     enc = {"valid_time": {"units": TIME_UNITS, "calendar": CALENDAR, "dtype": "i4"}}
     if commit is None:

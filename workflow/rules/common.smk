@@ -10,11 +10,10 @@ import sys
 import yaml
 
 from assim import paths
-from assim.config import validate
+from assim.config import read_config_file, validate
 from assim.io import raw as raw_io
 from assim.pipeline import latest_issue_date
 from assim.errors import ConfigError
-from assim.io.common import load_yaml
 
 
 def _config_file():
@@ -26,6 +25,9 @@ def _config_file():
 CONFIG_FILE = _config_file()
 
 try:
+    # Snakemake has read the file already, keeping the last of a key given twice: the
+    # project's own read refuses that (and names the key and line) before anything runs.
+    WRITTEN = read_config_file(CONFIG_FILE)
     CFG = validate(config, source=CONFIG_FILE)
 except ConfigError as _exc:
     sys.stderr.write(f"assim workflow: config error: {_exc}\n")
@@ -47,8 +49,7 @@ def _flat_differences(effective, written, prefix=""):
 def _cli_overrides():
     # Values given with `snakemake --config key=value` (or merged from several config
     # files) reach the CLI as --set options, so the CLI computes with the same settings.
-    with open(CONFIG_FILE, encoding="utf-8") as f:
-        written = validate(load_yaml(f) or {}, source=CONFIG_FILE)
+    written = validate(WRITTEN, source=CONFIG_FILE)
     diff = _flat_differences(CFG, written)
     diff.pop("issue_date", None)  # passed as --issue-date
     return " ".join(f"--set {shlex.quote(k + '=' + json.dumps(v))}" for k, v in sorted(diff.items()))
