@@ -45,8 +45,9 @@ def _parser() -> argparse.ArgumentParser:
     add("prep", "prepare raw records (basins.yaml, weather.csv, gauge.csv) into CF NetCDF")
     add("check", "validate the config and inputs and summarise them")
     add("calibrate", "calibrate each basin's model parameters against its gauge (calibration.nc)")
-    s = add("run", "ensemble run: open loop or assimilation of gauge readings")
-    s.add_argument("--mode", choices=["openloop", "assimilate"], default="assimilate")
+    s = add("run", "ensemble run: open loop, assimilation of gauge readings, or reanalysis (smoothed)")
+    s.add_argument("--mode", choices=["openloop", "assimilate", "reanalysis"], default="assimilate",
+                   help="reanalysis: the fixed-lag smoothed ensemble (reanalysis.nc; filter.smoother.window_days)")
     s.add_argument("--restart-from", metavar="FILE", help="continue from this restart file")
     s.add_argument("--until", metavar="YYYY-MM-DD", help="last day to run (default: period end)")
     add("hindcast", "hindcast experiments: forecasts from open-loop and assimilation states")
@@ -113,8 +114,8 @@ def _command(cfg, args: argparse.Namespace) -> str:
 
     cmd = args.command
     if cmd == "prep":
-        pipeline.prep(cfg)
-        return f"prepared layer written to {cfg['data']['prepared']}"
+        layer = pipeline.prep(cfg)
+        return f"prepared layer written to {cfg['data']['prepared']}: {layer.forcing.attrs.get('prepared', '')}"
     if cmd == "check":
         return pipeline.check(cfg)
     if cmd == "calibrate":

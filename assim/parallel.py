@@ -1,35 +1,39 @@
-"""dask parallelism of the engine: basin chunks (and member chunks) on worker *lanes*.
+"""dask parallelism of the engine: the basin chunks (and member chunks) of each time block.
 
 :func:`executor` opens the scheduler named in ``ensemble.scheduler`` once per run and yields
 an :class:`_Executor` with two ways of running work:
 
-- ``submit_to(lane, key, fn, item)`` runs ``fn(item, store)`` on one of ``lanes`` workers;
-  the tasks given to one lane run one after the other in the order they were submitted,
-  and ``store`` is a dict of that run that stays in the worker between tasks. The engine
-  pins each basin chunk to a lane, so a chunk's ensemble state stays in its worker from one
-  time block to the next: only the block's inputs go out and its outputs come back, and a
-  lane never waits for the other chunks of a block (no barrier at block ends);
+- ``submit_block(fn, items)`` runs ``fn(item, store)`` for every chunk of one time block,
+  one task each, and returns one future of the results in order. A chunk's task of a block
+  runs after its task of the block before, and ``store`` is a dict of the run that the tasks
+  find again in their process: a chunk leaves its ensemble state there for its next block,
+  so the state never travels between blocks (only a block's inputs and outputs do). The
+  engine submits the next block before it writes the current one;
 - ``map(fn, items)`` runs ``fn`` on every item as one dask task each and returns the
   results in order.
 
 Schedulers:
 
-- ``synchronous``: one lane, in the calling thread (debugging, profiling);
-- ``threads``: ``workers`` lanes, one thread each. numpy releases the GIL inside its loops
-  only, and a day of a chunk is some hundreds of numpy calls, so the threads spend much of
-  their time waiting for each other: on 2 cores, 2 threads ran a 1,000-basin run only about
-  1.15x faster than one;
-- ``processes``: ``workers`` lanes, one process each (spawned clean, no GIL shared): the
-  faster choice on several cores for large runs (on 2 cores about 1.8x one thread for
-  1,000 basins x 128 members x 3 years), at the price of about a second to start the
-  workers;
+- ``synchronous``: every task in the calling thread, in order (debugging, profiling);
+- ``threads``: dask's threaded scheduler (``dask.threaded.get``) over a pool of ``workers``
+  threads, one ``dask.compute`` per block, started from one driver thread so that the main
+  thread writes a block while the next is computed. The threads share the process, so the
+  store is one dict and any thread may take any chunk (dask balances them). The fused
+  compiled kernel releases the GIL (``nogil=True``), so its chunks run side by side; on the
+  numpy path the Python between numpy calls holds the GIL and threads gain little (on 2
+  cores, 2 threads ran a 1,000-basin numpy run about 1.15x faster than one);
+- ``processes``: ``workers`` worker processes (spawned clean), each chunk pinned to one of
+  them (its *lane*) so that its state stays in that process. dask's own process scheduler
+  would pickle every chunk's state to a worker and back at every block (on the numpy path,
+  1,000 x 128 x 3 years: 66 s against 30 s with lanes), so these lanes are the project's
+  own. The faster local choice for the numpy path on several cores;
 - ``local-cluster``: a :class:`distributed.LocalCluster` started for the run and closed
-  after, one lane per worker;
+  after, each chunk pinned to one worker;
 - ``tcp://host:port`` (or any ``scheme://`` address): an existing dask.distributed
-  scheduler, one lane per worker.
+  scheduler, each chunk pinned to one worker.
 
-Every task is a pure function of its arguments and of what earlier tasks of its chunk left
-in the store, so the results are the same whatever the scheduler, the number of lanes or
+Every task is a pure function of its arguments and of what the chunk's earlier tasks left
+in the store, so the results are the same whatever the scheduler, the number of workers or
 the chunking. :class:`ProgressBar` is a small terminal progress bar, quiet when its stream
 is not a terminal.
 """
@@ -43,9 +47,6 @@ import time
 import uuid
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor, ThreadPoolExecutor
-
-import cloudpickle
-import dask
 
 from assim.errors import ConfigError, RunError
 
@@ -74,7 +75,11 @@ def _lane_call(token: str, payload, *after):
 
     ``after`` (ignored) is the previous task of the same chunk, which a dask.distributed
     scheduler must finish first."""
-    fn, item = cloudpickle.loads(payload) if isinstance(payload, bytes) else payload
+    if isinstance(payload, bytes):
+        import cloudpickle
+
+        payload = cloudpickle.loads(payload)
+    fn, item = payload
     return fn(item, _STORES.setdefault(token, {}))
 
 
@@ -82,44 +87,74 @@ def _drop_store(token: str) -> None:
     _STORES.pop(token, None)
 
 
+class _Gathered:
+    """The results of several futures as one list, in order (``result()`` like a future)."""
+
+    def __init__(self, futures: Sequence[Future]):
+        self.futures = list(futures)
+
+    def result(self) -> list:
+        return [f.result() for f in self.futures]
+
+
 class _Executor:
     """Runs the tasks of one run with one scheduler (see the module docstring)."""
 
-    def __init__(self, scheduler, pool=None, client=None, workers=1, lanes=()):
+    def __init__(self, scheduler, pool=None, client=None, workers=1, lanes=(), driver=None):
         self.scheduler = scheduler
         self.pool = pool
         self.client = client
         self.workers = workers
-        self._lanes = list(lanes)  # one single-worker pool per lane, or worker addresses
+        self._lanes = list(lanes)  # processes: one single-worker pool per lane; distributed: addresses
+        self._driver = driver  # threads: the one thread that starts each block's dask.compute
         self.token = uuid.uuid4().hex
         self._last: dict = {}  # distributed: the previous future of each chunk
 
     @property
     def lanes(self) -> int:
-        """Number of lanes (workers that keep chunk state between tasks)."""
+        """Number of lanes (processes or workers that keep chunk state between tasks); 1 for
+        the schedulers whose tasks share the calling process."""
         return max(1, len(self._lanes))
 
-    def submit_to(self, lane: int, key, fn: Callable, item) -> Future:
-        """Run ``fn(item, store)`` on lane ``lane % lanes``, after the lane's earlier tasks.
+    def submit_block(self, fn: Callable, items: Sequence):
+        """Run ``fn(item, store)`` for every chunk ``i, item`` of one time block.
 
-        ``key`` names the chunk (tasks of one key must go to one lane); ``store`` is the
-        run's dict in the worker. Returns a future; a failure is raised by its ``result()``."""
+        Chunk ``i``'s task runs after chunk ``i``'s task of the block submitted before (see
+        the module docstring). Returns an object whose ``result()`` is the list of results in
+        order; a failure is raised by ``result()``."""
         if self.scheduler == "synchronous":
             done: Future = Future()
             try:
-                done.set_result(_lane_call(self.token, (fn, item)))
+                done.set_result([_lane_call(self.token, (fn, item)) for item in items])
             except BaseException as exc:  # re-raised by result(), as by the other schedulers
                 done.set_exception(exc)
             return done
-        target = self._lanes[lane % len(self._lanes)]
         if self.scheduler == "threads":
-            return target.submit(_lane_call, self.token, (fn, item))
+            # one compute per block, one after the other in the driver thread: a block's
+            # tasks find what the chunk's task of the block before left in the store
+            return self._driver.submit(self._compute_threads, fn, list(items))
+        return _Gathered([self._submit_to(i, fn, item) for i, item in enumerate(items)])
+
+    def _compute_threads(self, fn: Callable, items: list) -> list:
+        if len(items) == 1:  # nothing to run side by side (a day's forecast): no dask needed
+            return [_lane_call(self.token, (fn, items[0]))]
+        import dask  # imported when first needed: a short run does not pay its import
+
+        tasks = [dask.delayed(_lane_call, pure=False)(self.token, dask.delayed((fn, item), traverse=False, pure=False))
+                 for item in items]
+        return list(dask.compute(*tasks, scheduler="threads", pool=self.pool, num_workers=self.workers))
+
+    def _submit_to(self, chunk: int, fn: Callable, item) -> Future:
+        """Run ``fn(item, store)`` on the lane of ``chunk``, after the chunk's earlier tasks."""
+        target = self._lanes[chunk % len(self._lanes)]
         if self.scheduler == "processes":
+            import cloudpickle
+
             return target.submit(_lane_call, self.token, cloudpickle.dumps((fn, item)))
-        prev = self._last.get(key)
+        prev = self._last.get(chunk)
         fut = self.client.submit(_lane_call, self.token, (fn, item), *(() if prev is None else (prev,)),
                                  workers=[target], allow_other_workers=False, pure=False)
-        self._last[key] = fut
+        self._last[chunk] = fut
         return fut
 
     def close(self) -> None:
@@ -135,6 +170,8 @@ class _Executor:
         """``[fn(item) for item in items]``, one dask task per item, results in order."""
         if self.scheduler == "synchronous" or len(items) == 1 and self.client is None:
             return [fn(item) for item in items]
+        import dask
+
         # Each item enters its task as one opaque argument: dask would otherwise walk every
         # field, dict and tuple of the inputs and states looking for collections.
         tasks = [dask.delayed(fn, pure=False)(dask.delayed(item, traverse=False, pure=False))
@@ -169,9 +206,9 @@ def _open(scheduler: str, w: int) -> Iterator[_Executor]:
         yield _Executor("synchronous")
     elif scheduler == "threads":
         with contextlib.ExitStack() as stack:
-            lanes = [stack.enter_context(_shutting_down(ThreadPoolExecutor(1))) for _ in range(w)]
             pool = stack.enter_context(_shutting_down(ThreadPoolExecutor(w)))
-            yield _Executor("threads", pool=pool, workers=w, lanes=lanes)
+            driver = stack.enter_context(_shutting_down(ThreadPoolExecutor(1)))
+            yield _Executor("threads", pool=pool, workers=w, driver=driver)
     elif scheduler == "processes":
         import multiprocessing
 

@@ -19,14 +19,19 @@ def results(cfg: Mapping) -> Path:
     return Path(cfg["results"])
 
 
+_PRODUCTS = {"openloop": "openloop.nc", "assimilate": "analysis.nc", "reanalysis": "reanalysis.nc"}
+
+
 def run_product(cfg: Mapping, mode: str) -> Path:
-    """``openloop.nc`` (mode "openloop") or ``analysis.nc`` (mode "assimilate")."""
-    return results(cfg) / ("openloop.nc" if mode == "openloop" else "analysis.nc")
+    """``openloop.nc`` (mode "openloop"), ``analysis.nc`` ("assimilate") or
+    ``reanalysis.nc`` ("reanalysis")."""
+    return results(cfg) / _PRODUCTS.get(mode, "analysis.nc")
 
 
 def restart(cfg: Mapping, mode: str = "assimilate") -> Path:
-    """The restart written at the end of a run (``restart.nc``; ``restart-openloop.nc``)."""
-    return results(cfg) / ("restart.nc" if mode == "assimilate" else "restart-openloop.nc")
+    """The restart written at the end of a run (``restart.nc``; ``restart-openloop.nc``,
+    ``restart-reanalysis.nc``)."""
+    return results(cfg) / ("restart.nc" if mode == "assimilate" else f"restart-{mode}.nc")
 
 
 def calibration(cfg: Mapping) -> Path:

@@ -8,8 +8,8 @@ the sine one for day 2j + 1. Nothing is drawn from a generator that carries stat
 a basin, changing the chunking or restarting a run never changes another number, and a
 block of consecutive days costs one transform per pair of days.
 
-Streams (the last element of the counter) keep the uses apart: precipitation and PET errors,
-the perturbed observations of the stochastic EnKF, the additive state noise (one stream per
+Streams (the last element of the counter) keep the uses apart: precipitation, PET and
+temperature errors, the perturbed observations of the stochastic EnKF, the additive state noise (one stream per
 state name), the parameter draws (one stream per parameter name) and the Liu & West kernel
 noise of joint estimation.
 
@@ -20,6 +20,11 @@ The error model
   variance, ``e_t = phi e_{t-1} + sqrt(1 - phi^2) z_t``. Since every ``e_t ~ N(0, 1)``,
   ``E[w] = 1`` exactly and ``CV[w] = cv``; the lag-one autocorrelation of ``w`` is
   ``(exp(phi s^2) - 1) / (exp(s^2) - 1)`` (lognormal moments), slightly below ``phi``.
+- Temperature (for a snow routine): an additive Gaussian error ``sd e`` (degC) with the same
+  stationary unit-variance AR(1) process ``e``: mean 0, standard deviation ``sd``, lag-one
+  autocorrelation ``phi``. Temperature errors are additive because a degree-day routine
+  responds to the difference between the temperature and a threshold near 0 degC, where a
+  relative error has no meaning (common practice, no published source).
 - Parameters: one draw per (basin, member), made in a space that respects the valid range:
   the logit of the position in ``[low, high]`` for a finite range, ``log(theta - low)`` for
   a range open above. The draw's standard deviation in that space is chosen so that, to
@@ -45,6 +50,9 @@ PRECIPITATION = 1
 PET = 2
 OBSERVATION = 3
 KERNEL = 4
+TEMPERATURE = 5
+# the stream of each perturbed forcing
+FORCING_STREAMS = {"precipitation": PRECIPITATION, "pet": PET, "temperature": TEMPERATURE}
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 _M1 = np.uint64(0xBF58476D1CE4E5B9)
@@ -249,48 +257,22 @@ def _horner(x: np.ndarray, coef: tuple[float, ...], out: np.ndarray) -> None:
     np.add(out, coef[0], out=out)
 
 
-# ---------------------------------------------------------------- multiplicative AR(1) error
+# ---------------------------------------------------------------- AR(1) forcing errors
 
 
-@dataclass(frozen=True)
-class LognormalAR1:
-    """Multiplicative lognormal error with mean 1, coefficient of variation ``cv`` and
-    AR(1) log error of lag-one autocorrelation ``phi``."""
-
-    cv: float
-    phi: float
-
-    @property
-    def sigma(self) -> float:
-        """Standard deviation of the log error, ``sqrt(ln(1 + cv^2))`` (lognormal moments)."""
-        return float(np.sqrt(np.log1p(self.cv**2)))
+class _AR1:
+    """The stationary unit-variance AR(1) process ``e`` behind a forcing error (field ``phi``)."""
 
     def step(self, e_prev: np.ndarray, z: np.ndarray) -> np.ndarray:
-        """Next log error (unit variance) from the previous one and a standard normal."""
+        """Next error (unit variance) from the previous one and a standard normal."""
         return self.phi * e_prev + np.sqrt(1.0 - self.phi**2) * z  # stationary AR(1)
 
-    def multiplier(self, e: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
-        """Multiplicative error ``exp(s e - s^2/2)``; mean exactly 1 when e ~ N(0, 1).
-
-        ``out``: an array of the shape of ``e`` to write into (may be ``e`` itself)."""
-        s = self.sigma
-        out = np.multiply(s, e, out=out)
-        out -= 0.5 * s * s
-        return np.exp(out, out=out)
-
-    def lag1_autocorrelation(self) -> float:
-        """Lag-one autocorrelation of the multiplier (not of the log error)."""
-        s2 = self.sigma**2
-        if s2 == 0.0:
-            return float(self.phi)
-        return float(np.expm1(self.phi * s2) / np.expm1(s2))
-
     def series(self, e_prev: np.ndarray, z: np.ndarray) -> np.ndarray:
-        """Log errors of consecutive days.
+        """Errors of consecutive days.
 
         Parameters
         ----------
-        e_prev : (...) float64, log error of the day before the first
+        e_prev : (...) float64, error of the day before the first
         z : (day, ...) float64, standard normals of the days
 
         Returns
@@ -305,6 +287,58 @@ class LognormalAR1:
             np.multiply(self.phi, e, out=out[t])
             np.multiply(c, z[t], out=tmp)
             e = np.add(out[t], tmp, out=out[t])
+        return out
+
+
+@dataclass(frozen=True)
+class LognormalAR1(_AR1):
+    """Multiplicative lognormal error with mean 1, coefficient of variation ``cv`` and
+    AR(1) log error of lag-one autocorrelation ``phi``."""
+
+    cv: float
+    phi: float
+
+    @property
+    def sigma(self) -> float:
+        """Standard deviation of the log error, ``sqrt(ln(1 + cv^2))`` (lognormal moments)."""
+        return float(np.sqrt(np.log1p(self.cv**2)))
+
+    def multiplier(self, e: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """Multiplicative error ``exp(s e - s^2/2)``; mean exactly 1 when e ~ N(0, 1).
+
+        ``out``: an array of the shape of ``e`` to write into (may be ``e`` itself)."""
+        s = self.sigma
+        out = np.multiply(s, e, out=out)
+        out -= 0.5 * s * s
+        return np.exp(out, out=out)
+
+    def apply(self, e: np.ndarray, values: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """``values`` (broadcast to the shape of ``e``) times :meth:`multiplier` of ``e``."""
+        w = self.multiplier(e, out=out)
+        w *= values
+        return w
+
+    def lag1_autocorrelation(self) -> float:
+        """Lag-one autocorrelation of the multiplier (not of the log error)."""
+        s2 = self.sigma**2
+        if s2 == 0.0:
+            return float(self.phi)
+        return float(np.expm1(self.phi * s2) / np.expm1(s2))
+
+
+@dataclass(frozen=True)
+class GaussianAR1(_AR1):
+    """Additive Gaussian error ``sd e`` (in the forcing's unit) whose standardised error ``e``
+    is a stationary AR(1) process of lag-one autocorrelation ``phi``; ``sd`` 0 leaves the
+    forcing exactly as it is."""
+
+    sd: float
+    phi: float
+
+    def apply(self, e: np.ndarray, values: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """``values`` (broadcast to the shape of ``e``) plus ``sd e``."""
+        out = np.multiply(self.sd, e, out=out)
+        out += values
         return out
 
 

@@ -42,7 +42,7 @@ def prep(cfg: Config) -> PreparedLayer:
 
     folder = Path(cfg["data"]["prepared"])
     with output_lock(folder / ".prepared.lock", "the prepared layer",
-                     [folder / n for n in ("forcing.nc", "observations.nc", "basins.nc")]):
+                     [folder / n for n in ("forcing.nc", "observations.nc", "basins.nc", "prep-record.json")]):
         return PreparedLayer(folder, **preparation.prepare(cfg))
 
 
@@ -130,12 +130,19 @@ def _inputs(cfg: Config, start=None, end=None, *, climatology: bool = False):
     folder = cfg["data"]["prepared"]
     forcing, obs, basins = prep_io.read_prepared(folder, start, end)
     model = _model(cfg, basins)
-    extra = [f for f in model.forcings if f not in engine.FORCINGS]
-    if extra:  # e.g. the temperature of a snow routine: calibrate takes it, the engine not yet
+    names = engine.forcing_names(model)
+    lacking = [f for f in model.forcings if f not in names]
+    if lacking:  # a user model's own forcing: prep writes precipitation, PET and temperature only
         from assim.errors import RunError
 
-        raise RunError(f"model {model.name} needs the forcing {extra[0]!r}, which ensemble runs do not pass "
-                       "yet (`assim calibrate` does)", file=Path(folder) / "basins.nc", variable="model")
+        raise RunError(f"model {model.name} needs the forcing {lacking[0]!r}, which ensemble runs do not pass",
+                       file=Path(folder) / "basins.nc", variable="model")
+    if "temperature" in names and "temperature" not in forcing:
+        from assim.errors import InputError
+
+        raise InputError(f"model {model.name} takes the daily mean air temperature, which this forcing file "
+                         "lacks: give the basin a `snow:` block in basins.yaml and rerun `assim prep`",
+                         file=Path(folder) / prep_io.FORCING_FILE, variable="temperature")
     usable = prep_io.usable_discharge(obs).values
     rejected_mask = int(prep_io.REJECTED)
     flags = obs["qc_flag"].values.astype(np.int64)
@@ -145,7 +152,7 @@ def _inputs(cfg: Config, start=None, end=None, *, climatology: bool = False):
     if climatology:
         full = prep_io.read_forcing(Path(folder) / prep_io.FORCING_FILE)
         clim = engine.Climatology(day_numbers(full["time"].values), full["precipitation"].values,
-                                  full["pet"].values)
+                                  full["pet"].values, full["temperature"].values if "temperature" in names else None)
     inputs = engine.Inputs(
         basin_ids=ids,
         keys=perturb.basin_keys(ids),
@@ -157,6 +164,8 @@ def _inputs(cfg: Config, start=None, end=None, *, climatology: bool = False):
         rejected=rejected,
         parameters={p: basins[p].values.astype(np.float64) for p in model.parameter_names},
         climatology=clim,
+        temperature=(np.ascontiguousarray(forcing["temperature"].values, dtype=np.float64)
+                     if "temperature" in names else None),
     )
     return model, inputs, basins
 
@@ -190,14 +199,21 @@ def _identity(cfg: Config, model, inputs, mode: str) -> dict[str, str | int]:
 def _to_state(r):
     from assim import engine
 
-    return engine.EnsembleState(r.valid_day, r.states, dict(r.parameters), dict(r.ar1), r.collapse_days)
+    return engine.EnsembleState(r.valid_day, r.states, dict(r.parameters), dict(r.ar1), r.collapse_days,
+                                r.inflation_mean, r.inflation_sd, r.window, r.window_days)
 
 
-def _to_restart(state, model, inputs, identity):
+def _to_restart(state, model, inputs, identity, settings):
+    from assim.engine.window import window_columns
     from assim.io.restart import Restart
 
+    w = {}
+    if state.window is not None:  # the smoother's window (filter.smoother.window_days > 0)
+        w = dict(window=state.window, window_days=state.window_days,
+                 window_columns=window_columns(settings.write_states))
     return Restart(tuple(inputs.basin_ids), int(state.day), model.state_names, state.states,
-                   dict(state.parameters), dict(state.ar1), state.collapse_days, identity)
+                   dict(state.parameters), dict(state.ar1), state.collapse_days, identity,
+                   inflation_mean=state.inflation_mean, inflation_sd=state.inflation_sd, **w)
 
 
 def _read_checked_restart(path, model, inputs, identity):
@@ -230,6 +246,21 @@ def _attrs(cfg: Config, model, settings, summary=None) -> dict[str, str]:
         "config_digest": cfg.digest(),
         "results_digest": cfg.digest_results(),
     }
+    return out
+
+
+def _smoother_attrs(settings) -> dict:
+    """The fixed-lag smoother's window, and for a reanalysis how final its days are."""
+    w = int(settings.smoother_window)
+    if not settings.assimilate:
+        return {}
+    out = {"smoother_window_days": w}
+    if settings.reanalysis:
+        out["smoothing"] = (
+            f"fixed-lag ensemble Kalman smoother (Evensen & van Leeuwen 2000), window {w} days: each day "
+            f"is corrected by the readings of its own day and of the {w} days after it; the last {w} days "
+            "of the file had fewer later readings (filter plus partial smoothing) and change when the run "
+            "is continued")
     return out
 
 
@@ -277,13 +308,17 @@ def _health_attrs(summary, inputs) -> dict[str, str]:
 
 
 def run(cfg: Config, mode: str = "assimilate", restart_from=None, until=None) -> xr.Dataset:
-    """Open-loop or assimilation run over ``period``; writes openloop.nc or analysis.nc and
-    the restart (restart.nc; restart-openloop.nc for the open loop).
+    """Open-loop, assimilation or reanalysis run over ``period``; writes openloop.nc,
+    analysis.nc or reanalysis.nc and the restart (restart.nc; restart-openloop.nc,
+    restart-reanalysis.nc).
 
     Parameters
     ----------
     cfg : validated config
-    mode : "openloop" or "assimilate"
+    mode : "openloop", "assimilate" or "reanalysis" (the assimilation with the fixed-lag
+        smoother of ``filter.smoother.window_days`` W, recording each day's smoothed
+        ensemble once W later days' readings have corrected it; the last W days of the
+        period hold the filter's values smoothed by the readings up to the period's end only)
     restart_from : restart file to continue from (its valid time + 1 is the first day run).
         When the existing product was written by the run being continued (same config,
         ending on the restart's day), the new file holds its days followed by the continued
@@ -302,8 +337,8 @@ def run(cfg: Config, mode: str = "assimilate", restart_from=None, until=None) ->
     from assim import paths
     from assim.errors import ConfigError
 
-    if mode not in ("openloop", "assimilate"):
-        raise ConfigError(f"mode must be openloop or assimilate, not {mode!r}", variable="mode")
+    if mode not in ("openloop", "assimilate", "reanalysis"):
+        raise ConfigError(f"mode must be openloop, assimilate or reanalysis, not {mode!r}", variable="mode")
     with _product_lock(paths.run_product(cfg, mode), paths.restart(cfg, mode)), _reading_layer(cfg):
         return _run(cfg, mode, restart_from, until)
 
@@ -342,6 +377,10 @@ def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
     state = None
     if restart_from is not None:
         state = _read_checked_restart(restart_from, model, inputs, identity)
+        w = settings.smoother_window
+        if settings.reanalysis and w and (state.window is None or state.window.shape[2] != w):
+            raise RestartError(f"the restart carries no smoother window of {w} days, which a reanalysis "
+                               "continues from", file=restart_from, variable="window")
     until_day = None if until is None else _day(until, "--until")
     try:
         plan = engine.plan(inputs, settings, state, until_day)
@@ -365,8 +404,10 @@ def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
         state_units={s.name: s.unit for s in model.states},
         parameter_names=settings.estimate if mode == "assimilate" else (),
         quantiles=settings.quantiles, float32=settings.float32,
-        time_chunk=min(settings.time_block_days, 365), state_noise=bool(settings.state_noise),
-        earlier=earlier, attrs=_attrs(cfg, model, settings), commit=files,
+        time_chunk=min(settings.time_block_days, 365),
+        state_noise=bool(settings.state_noise) and not settings.reanalysis,
+        adaptive_inflation=settings.adaptive_inflation and mode == "assimilate",
+        earlier=earlier, attrs={**_attrs(cfg, model, settings), **_smoother_attrs(settings)}, commit=files,
     )
     # the product and its restart are one set: both replaced, or neither (a full disk)
     with files:
@@ -375,10 +416,11 @@ def _run(cfg: Config, mode: str, restart_from, until) -> xr.Dataset:
                 summary = engine.run(model, inputs, settings, writer, state=state, until_day=until_day,
                                      progress=bar)
                 writer.set_attributes(**_health_attrs(summary, inputs))
+                writer.write_innovation_statistics()
         finally:
             bar.close()
         write_restart(restart_path, _to_restart(summary.state, model, inputs,
-                                                {**identity, **_readings_identity(cfg, summary.state.day)}),
+                                                {**identity, **_readings_identity(cfg, summary.state.day)}, settings),
                       commit=files)
     _show_warnings(engine.summarise_warnings(summary.warnings))
     return open_product(path)
@@ -478,11 +520,11 @@ def _hindcast(cfg: Config) -> xr.Dataset:
         if not hc["forcing_file"]:
             raise ConfigError("hindcast.forcing is file but hindcast.forcing_file is empty",
                               file=cfg.source, variable="hindcast.forcing_file")
-        parts = [read_forcing_forecast(hc["forcing_file"], inputs.basin_ids, int(inputs.days[i]), leads)
+        names = engine.forcing_names(model)
+        parts = [read_forcing_forecast(hc["forcing_file"], inputs.basin_ids, int(inputs.days[i]), leads, names)
                  for i in issues]
         inputs = dataclasses.replace(inputs, forecast_forcing={
-            "days": inputs.days[issues],
-            **{n: np.stack([p[n] for p in parts], axis=1) for n in ("precipitation", "pet")}})
+            "days": inputs.days[issues], **{n: np.stack([p[n] for p in parts], axis=1) for n in names}})
     path = paths.hindcast(cfg)
     attrs = {**_attrs(cfg, model, base), "forcing": kind, "every_days": every}
     attrs.pop("filter_method")
@@ -757,7 +799,8 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
             if not fc["forcing_file"]:
                 raise ConfigError("forecast.forcing is file but forecast.forcing_file is empty",
                                   file=cfg.source, variable="forecast.forcing_file")
-            file_forcing = read_forcing_forecast(fc["forcing_file"], inputs.basin_ids, issue_day, leads)
+            file_forcing = read_forcing_forecast(fc["forcing_file"], inputs.basin_ids, issue_day, leads,
+                                                 engine.forcing_names(model))
         assimilated = _Assimilated()  # the ensemble of the days taken in, for the bulletin
         summary = engine.run(model, inputs, settings, assimilated, state=state, until_day=issue_day)
         _show_warnings(engine.summarise_warnings(summary.warnings))
@@ -772,7 +815,10 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
             analysis = (f"performed: {n_used} gauge readings assimilated over the {n_days} days since the "
                         f"last restart (valid at {conventions.iso(valid)})")
         try:
-            q = engine.forecast_issue(model, inputs, settings, summary.state, leads, kind, file_forcing)
+            cols = tuple(model.state_index(n) for n in settings.write_states)
+            q = engine.forecast_issue(model, inputs, settings, summary.state, leads, kind, file_forcing,
+                                      keep_states=cols)
+            q, kept = q if cols else (q, None)
         except RunError as exc:  # the engine knows no files: name the forcing it lacked
             if exc.file is None:
                 forcing = fc["forcing_file"] if kind == "file" else Path(cfg["data"]["prepared"]) / "forcing.nc"
@@ -789,6 +835,8 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
                 quantiles=fc["quantiles"], thresholds={n: thr[:, j] for j, n in enumerate(names)},
                 analysis=analysis, float32=settings.float32,
                 assimilated=assimilated.result(inputs.days, valid),
+                states={n: kept[..., j] for j, n in enumerate(settings.write_states)},
+                state_units={s.name: s.unit for s in model.states},
                 attrs={**_attrs(cfg, model, settings), "forcing": kind, "restart": str(restart_path),
                        "restart_valid_time": conventions.iso(valid), **traces,
                        **({"warnings": " | ".join(notes + [str(w) for w in summary.warnings])}
@@ -796,7 +844,7 @@ def forecast(cfg: Config, issue_date: str | None = None) -> xr.Dataset:
                 commit=files,
             )
             write_restart(restart_file, _to_restart(summary.state, model, inputs,
-                                                    {**identity, **_readings_identity(cfg, issue_day)}),
+                                                    {**identity, **_readings_identity(cfg, issue_day)}, settings),
                           commit=files)
         ds.attrs["bulletin"] = str(_write_bulletin(cfg, ds, iso, issue_day))
     return ds

@@ -117,10 +117,12 @@ def render_report(cfg: Mapping) -> str:
         f"<code>{_e(paths.results(cfg))}</code>.</p>",
         "<nav>" + " ".join(
             f'<a href="#{a}">{t}</a>' for a, t in (("provenance", "Settings"), ("summary", "Skill summary"),
+                                                   ("innovations", "Innovations"),
                                                    ("calibration", "Calibration"), ("basins", "Basins"))) + "</nav>",
     ]
     out += _provenance(cfg, __version__)
     out += _summary(skill, cfg)
+    out += _innovations(cfg, names)
     out += _calibration(cfg, names)
     out.append('<h2 id="basins">Basins</h2>')
     if basins:
@@ -232,6 +234,88 @@ def _provenance(cfg: Mapping, version: str) -> list[str]:
     out.append("<details><summary>Full configuration (every default filled in)</summary><pre>")
     out.append(_e(yaml.safe_dump(dict(cfg), sort_keys=False, default_flow_style=False)))
     out.append("</pre></details>")
+    return out
+
+
+# The plain-language reading of the innovation diagnostics (analysis.nc): the thresholds.
+INNOVATION_MIN_READINGS = 30  # fewer readings used: too few to judge
+CHI2_MARGIN = 0.2  # chi-square beyond its 95% interval AND more than 20% from 1
+BIAS_LIMIT = 0.5  # |mean normalised innovation| above this: the background is biased
+DESROZIERS_FACTOR = 1.5  # Desroziers estimate / R used beyond 1.5 or below 1 / 1.5
+
+
+def innovation_reading(stats: Mapping[str, float]) -> str:
+    """A plain-language reading of one basin's innovation statistics (the per-basin
+    variables of analysis.nc, :data:`assim.filters.consistency.STATISTICS`).
+
+    Rules (thresholds above): under-/over-dispersed when the chi-square statistic lies
+    outside its 95% interval and more than ``CHI2_MARGIN`` from 1; biased when the mean
+    normalised innovation exceeds ``BIAS_LIMIT`` in size; observation error too small/large
+    when the Desroziers et al. (2005) estimate exceeds ``DESROZIERS_FACTOR`` times the
+    variance used, or falls below it divided by that factor; else consistent."""
+    n = int(stats["innovation_count"])
+    if n < INNOVATION_MIN_READINGS:
+        return f"too few readings used ({n}) to judge"
+    chi2, lo, hi = (float(stats[k]) for k in ("innovation_chi2", "innovation_chi2_lower", "innovation_chi2_upper"))
+    out = []
+    if chi2 > max(hi, 1.0 + CHI2_MARGIN):
+        out.append(f"ensemble under-dispersed: spread too small for the innovations (chi-square {chi2:.2f}, "
+                   f"95% interval {lo:.2f}-{hi:.2f}); consider inflation or larger forcing errors")
+    elif chi2 < min(lo, 1.0 - CHI2_MARGIN):
+        out.append(f"ensemble over-dispersed: spread too large for the innovations (chi-square {chi2:.2f}, "
+                   f"95% interval {lo:.2f}-{hi:.2f}); consider less inflation or smaller forcing errors")
+    bias = float(stats["normalised_innovation_mean"])
+    if abs(bias) > BIAS_LIMIT:
+        side = "under" if bias > 0 else "over"
+        out.append(f"background biased: mean normalised innovation {bias:+.2f} (the model {side}-predicts)")
+    est, used = float(stats["obs_error_variance_desroziers"]), float(stats["obs_error_variance_used"])
+    if used > 0 and np.isfinite(est):
+        if est > DESROZIERS_FACTOR * used:
+            out.append(f"observation error looks too small: Desroziers estimate {est:.3g} vs {used:.3g} used")
+        elif est < used / DESROZIERS_FACTOR:
+            out.append(f"observation error looks too large: Desroziers estimate {est:.3g} vs {used:.3g} used")
+    return "; ".join(out) if out else "consistent"
+
+
+def _innovations(cfg: Mapping, names: Mapping[str, str]) -> list[str]:
+    """Per-basin innovation diagnostics from analysis.nc, with their reading."""
+    out = ['<h2 id="innovations">Innovation diagnostics</h2>']
+    path = paths.run_product(cfg, "assimilate")
+    if not path.is_file():
+        return out + ['<p class="note">No analysis.nc (run <code>assim run --mode assimilate</code>).</p>']
+    from assim.filters.consistency import STATISTICS
+    from assim.io.products import open_product
+
+    with open_product(path) as ds:
+        if any(k not in ds for k in STATISTICS):
+            return out + ['<p class="note">analysis.nc has no innovation statistics (written by an earlier '
+                          "version): run the assimilation again.</p>"]
+        table = {k: ds[k].values for k in STATISTICS}
+        basins = [str(b) for b in ds["basin"].values]
+        infl = ds["inflation_mean"].isel(time=-1).values if "inflation_mean" in ds else None
+    out.append(
+        '<p class="note">Normalised innovation z = d / sqrt(HPH&#39; + R) over the days a reading was used '
+        "(assimilation space). A consistent filter has mean 0, variance 1 and chi-square (mean z&sup2;) within "
+        "its 95% interval; daily innovations are serially correlated, which the interval ignores, so it is a sign, "
+        "not a test. Desroziers et al. (2005): E[d<sub>o-a</sub> d<sub>o-b</sub>] estimates the observation error "
+        f"variance R. Readings: chi-square outside its interval and more than {CHI2_MARGIN:.0%} from 1; "
+        f"|mean z| &gt; {BIAS_LIMIT}; Desroziers estimate beyond {DESROZIERS_FACTOR} times (or below 1/"
+        f"{DESROZIERS_FACTOR} of) R used; fewer than {INNOVATION_MIN_READINGS} readings: not judged.</p>")
+    head = ("basin", "readings", "mean z", "var z", "chi-square", "95% interval", "R Desroziers", "R used")
+    head += ("inflation (last day)",) if infl is not None else ()
+    out.append("<table><tr>" + "".join(f'<th class="{"l" if h == "basin" else ""}">{_e(h)}</th>' for h in head)
+               + '<th class="l">reading</th></tr>')
+    for i, b in enumerate(basins):
+        row = {k: v[i] for k, v in table.items()}
+        cells = [f"{int(row['innovation_count'])}"] + [
+            f"{row[k]:.3g}" for k in ("normalised_innovation_mean", "normalised_innovation_variance", "innovation_chi2")]
+        cells.append(f"{row['innovation_chi2_lower']:.2f}-{row['innovation_chi2_upper']:.2f}")
+        cells += [f"{row[k]:.3g}" for k in ("obs_error_variance_desroziers", "obs_error_variance_used")]
+        if infl is not None:
+            cells.append(f"{infl[i]:.3g}")
+        out.append(f'<tr><td class="l">{_e(_name(b, names))}</td>' + "".join(f"<td>{_e(c)}</td>" for c in cells)
+                   + f'<td class="l">{_e(innovation_reading(row))}</td></tr>')
+    out.append("</table>")
     return out
 
 

@@ -35,10 +35,18 @@ CONFIG_KEYS: dict[str, tuple[str, ...]] = {
     "inflation": ("filter", "inflation", "multiplicative"),
     "rtps": ("filter", "inflation", "rtps"),
     "rtpp": ("filter", "inflation", "rtpp"),
+    "adaptive_inflation": ("filter", "inflation", "adaptive", "enabled"),
+    "adaptive_initial_mean": ("filter", "inflation", "adaptive", "initial_mean"),
+    "adaptive_initial_sd": ("filter", "inflation", "adaptive", "initial_sd"),
+    "adaptive_damping": ("filter", "inflation", "adaptive", "damping"),
+    "adaptive_lower": ("filter", "inflation", "adaptive", "lower"),
+    "adaptive_upper": ("filter", "inflation", "adaptive", "upper"),
+    "adaptive_min_sd": ("filter", "inflation", "adaptive", "min_sd"),
     "shrinkage": ("filter", "parameters", "shrinkage"),
     "collapse_ratio": ("filter", "collapse_ratio"),
     "collapse_days": ("filter", "collapse_days"),
     "gating_warn_fraction": ("filter", "gating_warn_fraction"),
+    "smoother_window": ("filter", "smoother", "window_days"),
     "float32": ("outputs", "float32"),
 }
 
@@ -67,7 +75,9 @@ def _check_names(cfg: Mapping, model: Model) -> None:
 
 
 def settings_from_config(cfg: Mapping, model: Model, mode: str) -> Settings:
-    """Engine settings of a run in ``mode`` ("openloop" or "assimilate") from a validated config.
+    """Engine settings of a run in ``mode`` ("openloop", "assimilate" or "reanalysis") from a
+    validated config. A reanalysis records members (``outputs.ensemble`` quantiles apply to
+    the filter's products).
 
     Raises
     ------
@@ -87,12 +97,13 @@ def settings_from_config(cfg: Mapping, model: Model, mode: str) -> Settings:
         mode=mode,
         precipitation=pt.LognormalAR1(float(per["precipitation_cv"]), float(per["precipitation_ar1"])),
         pet=pt.LognormalAR1(float(per["pet_cv"]), float(per["pet_ar1"])),
+        temperature=pt.GaussianAR1(float(per["temperature_sd_c"]), float(per["temperature_ar1"])),
         parameter_sd=dict(per["parameters"]),
         state_noise=dict(per["state_noise"]),
         update_states=update,
         obs_error=ObsError(oe["kind"], float(oe["absolute_m3s"]), float(oe["relative"]), float(oe["floor_m3s"])),
         estimate=tuple(p for p in model.parameter_names if p in fil["parameters"]["estimate"]),
-        quantiles=tuple(out["quantiles"]) if out["ensemble"] == "quantiles" else None,
+        quantiles=tuple(out["quantiles"]) if out["ensemble"] == "quantiles" and mode != "reanalysis" else None,
         write_states=write,
         **plain,
     )

@@ -66,6 +66,8 @@ _ALIASES = {
     "degree_east": "degrees_east",
     "degree_e": "degrees_east",
     "degrees_e": "degrees_east",
+    **dict.fromkeys(("degc", "celsius", "degree_celsius", "degrees_celsius", "deg_c", "degree_c", "degrees_c"),
+                    "degC"),
 }
 _TOKEN = re.compile(r"^([a-z_]+)(-?\d+)?$")
 
@@ -78,6 +80,7 @@ CANONICAL = {
     "length": "m",
     "latitude": "degrees_north",
     "longitude": "degrees_east",
+    "temperature": "degC",
 }
 _EXTRA = {"cumecs": "m3 s-1", "mm/day": "mm d-1", "kg m-2 d-1": "mm d-1"}
 

@@ -20,7 +20,9 @@ subprocess, for their own peak memory; the rest in this process), and tabulates 
    (raw data from the repository's ``sample_basin``), package installation excluded;
 7. one ordinary day of operation (``bench_daily.run``): the `issue` target's commands
    (`assim prep` with the day's records appended, `assim forecast`) for 100 basins x 64
-   members with a 5- and a 10-year record, to show the cost does not grow with the record.
+   members with a 5- and a 10-year record, to show the cost does not grow with the record;
+8. the fixed-lag smoother (``bench_smoother.run``): 50 basins x 64 members x 1 year with a
+   window of 5 and 10 days against the filter on the same numpy path (target <= 2x).
 
 It prints the machine and one table, and writes the table to ``benchmarks/out/latest.md``
 and every figure to ``benchmarks/out/latest.json`` (``quick.md``, ``quick.json`` for
@@ -60,6 +62,7 @@ import bench_daily  # noqa: E402
 import bench_engine  # noqa: E402
 import bench_filters  # noqa: E402
 import bench_models  # noqa: E402
+import bench_smoother  # noqa: E402
 import numba  # noqa: E402
 import numpy as np  # noqa: E402
 import yaml  # noqa: E402
@@ -566,6 +569,22 @@ def daily_rows(quick: bool, figures: dict) -> list[Row]:
 # ---------------------------------------------------------------- main
 
 
+def smoother_rows(quick: bool, figures: dict) -> list[Row]:
+    _log("smoother (bench_smoother): window of 5 and 10 days against the filter")
+    r = figures["smoother"] = bench_smoother.run(quick)
+    conf = f"{r['basins']} basins x {r['members']} members x {r['days']} d, readings daily, one core"
+    rows = []
+    for name, ratio in bench_smoother.ratios(r).items():
+        if name.endswith("_W0"):
+            continue
+        rows.append(Row(f"smoother cost, {name.replace('_W', ', W = ')} days", conf,
+                        f"{r[name + '_s']:.2f} s (filter {r['filter_numpy_s']:.2f} s numpy, "
+                        f"{r['filter_compiled_s']:.2f} s compiled)", ratio=None,
+                        target=f"<= {bench_smoother.TARGET_RATIO:g}x the filter: {ratio:.2f}x",
+                        met=ratio <= bench_smoother.TARGET_RATIO))
+    return rows
+
+
 def run(quick: bool = False, demo: bool = False) -> tuple[dict, list[Row]]:
     """Every measurement of the suite; returns the raw figures and the table's rows.
 
@@ -584,8 +603,10 @@ def run(quick: bool = False, demo: bool = False) -> tuple[dict, list[Row]]:
     parts["demo"] = demo_rows(quick, figures, shortened=quick and demo)
     load["daily"] = os.getloadavg()[0]
     parts["daily"] = daily_rows(quick, figures)
+    load["smoother"] = os.getloadavg()[0]
+    parts["smoother"] = smoother_rows(quick, figures)
     load["end"] = os.getloadavg()[0]
-    for name in ("gr4j", "analysis", "engine", "baseline", "compile", "calibration", "demo", "daily"):
+    for name in ("gr4j", "analysis", "engine", "baseline", "compile", "calibration", "demo", "daily", "smoother"):
         rows += parts[name]
     if quick:  # small sizes: the targets are not judged
         for r in rows:

@@ -154,8 +154,7 @@ def test_figure_and_report_section(study):
 def test_snow_parameters_are_calibrated_where_a_basin_has_snow(study, capsys):
     """With a `snow:` block on one basin the run's model is gr4j+snow: its snow parameters
     are searched, the rain-only basin's stay fixed (search_lower == search_upper), the
-    snow_routine switch is never searched; ensemble runs refuse the model in one line until
-    they pass temperature."""
+    snow_routine switch is never searched; the calibrated model then runs as an ensemble."""
     import yaml
 
     root, defaults = study
@@ -174,5 +173,6 @@ def test_snow_parameters_are_calibrated_where_a_basin_has_snow(study, capsys):
     assert list(ds["snow_routine"].values) == [0.0, 1.0]
     assert main(["prep", "--config", str(cfg_path)]) == 0
     capsys.readouterr()
-    assert main(["run", "--config", str(cfg_path), "--mode", "openloop"]) == 2
-    assert "needs the forcing 'temperature'" in capsys.readouterr().err
+    cfg_path = write_config(root, defaults, calibration=QUICK, ensemble={"members": 4},
+                            period={"start": "2013-01-01", "end": "2013-12-31", "spinup_days": 30})
+    assert main(["run", "--config", str(cfg_path), "--mode", "openloop"]) == 0

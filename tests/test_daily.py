@@ -212,6 +212,8 @@ def test_issue_target_cron_line_and_timer_as_documented(tmp_path):
     with xr.open_dataset(root / "results" / "forecasts" / "forecast-2013-04-02.nc") as f:
         assert f.attrs["restart_valid_time"] == "2013-04-01"
         assert "performed: " in f.attrs["analysis"] and "over the 1 days" in f.attrs["analysis"]
+    # the workflow's prep keeps the layer (an `update` output) and appends the day to it
+    assert "appended 1 day(s)" in (root / "results" / "logs" / "prep.log").read_text()
 
 
 @pytest.mark.slow

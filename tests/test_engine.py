@@ -54,6 +54,15 @@ def lognormal_ar1(rng, shape, cv, phi):
     return np.exp(s * e - s * s / 2)
 
 
+def gaussian_ar1(rng, shape, phi):
+    """A stationary unit-variance Gaussian AR(1) series drawn independently of assim.perturb."""
+    e = np.empty(shape)
+    e[:, 0] = rng.standard_normal(shape[0])
+    for i in range(1, shape[1]):
+        e[:, i] = phi * e[:, i - 1] + np.sqrt(1 - phi**2) * rng.standard_normal(shape[0])
+    return e
+
+
 def synthetic_weather(rng, nb, nt):
     t = np.arange(nt)
     wet = rng.random((nb, nt)) < 0.35
@@ -469,3 +478,345 @@ def test_collapse_counts_equal_the_day_by_day_counter():
         got_c, got_first = engine.collapse_counts(c0, has, low, days, limit)
         np.testing.assert_array_equal(got_c, c)
         np.testing.assert_array_equal(got_first, first)
+
+
+# ---------------------------------------------------------------- adaptive inflation
+
+
+def _adaptive_case(**changes):
+    rng = np.random.default_rng(5)
+    nb, nt = 3, 150
+    p, e = synthetic_weather(rng, nb, nt)
+    params = {"x1": np.array([300.0, 350.0, 420.0]), "x2": np.zeros(nb), "x3": np.full(nb, 80.0),
+              "x4": np.full(nb, 1.8)}
+    obs = np.where(rng.random((nb, nt)) < 0.85, rng.gamma(3.0, 1.5, (nb, nt)), np.nan)
+    inputs = make_inputs(GR4J, params, p, e, obs=obs)
+    settings = engine.Settings(mode="assimilate", members=16, seed=3, gate_sigma=0.0, method="etkf",
+                               update_states=("production_store", "routing_store"), time_block_days=40,
+                               scheduler="synchronous", adaptive_inflation=True, adaptive_damping=0.95,
+                               adaptive_initial_mean=1.1, adaptive_initial_sd=0.5, adaptive_min_sd=0.05,
+                               **changes)
+    return inputs, settings
+
+
+@pytest.mark.parametrize("kernel", ["numpy", "auto"])
+def test_adaptive_inflation_trajectory_replays_from_the_recorded_innovations(kernel):
+    """The engine's daily inflation (Anderson 2009) equals the scheme replayed by hand from
+    the diagnostics it records: each day the mean is damped, then updated by the day's
+    innovation with the background spread and the observation error variance used
+    (update_inflation); days without a reading keep it. The compiled kernel declines the
+    run, so "auto" gives the same numbers."""
+    from assim.filters import AdaptiveInflation, damp_inflation, update_inflation
+
+    inputs, settings = _adaptive_case(kernel=kernel)
+    sink = Collect()
+    summary = engine.run(GR4J, inputs, settings, sink)
+    d, r = sink.get("innovation"), sink.get("obs_error_variance")
+    sp = sink.get("spread_before")
+    status = sink.get("obs_status")
+    opts = AdaptiveInflation(1.1, 0.5, 0.95, 1.0, 10.0, 0.05)
+    mean, sd = np.full(3, 1.1), np.full(3, 0.5)
+    want = np.empty_like(d)
+    for t in range(d.shape[1]):
+        mean = damp_inflation(mean, opts.damping)
+        mean, sd = update_inflation(mean, sd, d[:, t], sp[:, t] ** 2, r[:, t], opts,
+                                    use=status[:, t] == engine.OBS_USED)
+        want[:, t] = mean
+    np.testing.assert_allclose(sink.get("inflation_mean"), want, rtol=1e-9)
+    np.testing.assert_allclose(summary.state.inflation_mean, want[:, -1], rtol=1e-9)
+    assert np.ptp(want) > 0.05  # the inflation moved
+    # the recorded expected innovation variance carries the updated inflation
+    np.testing.assert_allclose(sink.get("innovation_variance"), want * sp**2 + r, rtol=1e-9)
+
+
+def test_adaptive_inflation_kernel_declines_and_default_writes_nothing():
+    """The compiled kernel declines adaptive inflation with a reason (ensemble.kernel
+    "compiled" is then a config error); without it no inflation trajectory is recorded.
+    Common practice, no published source."""
+    from assim.engine.fused import kernel_choice
+
+    inputs, settings = _adaptive_case()
+    assert "adaptive" in kernel_choice(GR4J, settings)
+    assert kernel_choice(GR4J, dataclasses.replace(settings, adaptive_inflation=False)) is None
+    cfg = load_config(ensemble={"kernel": "compiled"}, filter={"inflation": {"adaptive": {"enabled": True}}})
+    from assim.errors import ConfigError
+
+    with pytest.raises(ConfigError, match="adaptive"):
+        settings_from_config(cfg, GR4J, "assimilate")
+    sink = Collect()
+    engine.run(GR4J, inputs, dataclasses.replace(settings, adaptive_inflation=False), sink)
+    assert "inflation_mean" not in sink.blocks and "innovation_analysis" in sink.blocks
+
+
+# ---------------------------------------------------------------- snow: temperature through the engine
+
+SNOW = models.get("gr4j+snow")
+LR_SNOW = models.get("linear_reservoir+snow")
+# snow parameters of the hand-worked days of tests/test_snow.py
+SNOW_PARAMS = {"snow_routine": 1.0, "snow_threshold": 0.0, "snow_interval": 2.0, "melt_threshold": 0.5,
+               "degree_day_factor": 3.0, "water_holding": 0.1, "refreezing": 0.05}
+
+
+def cold_temperature(rng, nb, nt):
+    """Daily mean air temperature (degC) of invented cold basins: winters near -10 degC,
+    summers near +8 degC, with day-to-day noise."""
+    t = np.arange(nt)
+    season = -1.0 + 9.0 * np.sin(2 * np.pi * (t - 110) / 365.25)
+    return season[None, :] + rng.normal(0.0, 2.5, (nb, nt))
+
+
+def snow_inputs(model, params, p, e, temp, **kw):
+    return dataclasses.replace(make_inputs(model, params, p, e, **kw), temperature=temp)
+
+
+def snow_params(nb, **gr4j):
+    base = {"x1": np.linspace(250, 450, nb), "x2": np.linspace(-0.5, 0.5, nb), "x3": np.linspace(60, 120, nb),
+            "x4": np.linspace(1.3, 2.5, nb)}
+    base.update(gr4j)
+    return {**base, **{k: np.full(nb, v) for k, v in SNOW_PARAMS.items()}}
+
+
+def test_snow_hand_worked_days_through_the_engine():
+    """Three days through engine.run of linear_reservoir+snow, one basin, no perturbation:
+    two days of 10 mm at -5 degC build a 10 then 20 mm pack (all snow, no melt); a dry day
+    at 4 degC melts DDF (T - Tm) = 3 x 3.5 = 10.5 mm (Hock 2003, eq. 1), the pack keeps
+    9.5 mm and holds 0.95 mm of liquid (the hand-worked days of tests/test_snow.py)."""
+    p = np.array([[10.0, 10.0, 0.0]])
+    temp = np.array([[-5.0, -5.0, 4.0]])
+    params = {"k": np.array([0.2]), "c": np.array([0.02]), **{k: np.array([v]) for k, v in SNOW_PARAMS.items()}}
+    inputs = snow_inputs(LR_SNOW, params, p, np.zeros((1, 3)), temp)
+    st = engine.Settings(mode="openloop", members=2, precipitation=pt.LognormalAR1(0.0, 0.5),
+                         pet=pt.LognormalAR1(0.0, 0.5), float32=False, scheduler="synchronous",
+                         write_states=LR_SNOW.state_names)
+    sink = Collect()
+    engine.run(LR_SNOW, inputs, st, sink)
+    np.testing.assert_array_equal(sink.get("snowpack")[0, :, 0], [10.0, 20.0, 9.5])
+    np.testing.assert_allclose(sink.get("snow_liquid")[0, :, 0], [0.0, 0.0, 0.95], atol=1e-12)
+    np.testing.assert_array_equal(sink.get("store")[0, :2, 0], [0.0, 0.0])  # nothing reached the store
+
+
+def test_snow_open_loop_without_perturbation_equals_the_model_loop():
+    """With zero forcing errors (temperature_sd 0) every member is a plain loop of
+    gr4j+snow's model.step with the same temperature: snowpack exactly, discharge to 1e-12
+    (common practice, no published source)."""
+    rng = np.random.default_rng(11)
+    nb, nt = 2, 500
+    p, e = synthetic_weather(rng, nb, nt)
+    temp = cold_temperature(rng, nb, nt)
+    params = snow_params(nb)
+    inputs = snow_inputs(SNOW, params, p, e, temp)
+    st = engine.Settings(mode="openloop", members=3, seed=0, precipitation=pt.LognormalAR1(0.0, 0.5),
+                         pet=pt.LognormalAR1(0.0, 0.5), temperature=pt.GaussianAR1(0.0, 0.7), float32=False,
+                         scheduler="synchronous", write_states=("snowpack",))
+    sink = Collect()
+    engine.run(SNOW, inputs, st, sink)
+    q, pack = sink.get("discharge"), sink.get("snowpack")
+    prepared = SNOW.prepare(params)
+    x = SNOW.initial_state(params)
+    k = SNOW.state_index("snowpack")
+    for t in range(nt):
+        x, f = SNOW.step(x, {"precipitation": p[:, t], "pet": e[:, t], "temperature": temp[:, t]}, prepared)
+        for m in range(3):
+            np.testing.assert_array_equal(pack[:, t, m], x[:, k])
+            np.testing.assert_allclose(q[:, t, m], f["runoff"] * 250.0 / 86.4, rtol=1e-12)
+    assert pack.max() > 50.0  # the winters build a pack
+
+
+def test_temperature_error_is_an_additive_gaussian_ar1():
+    """The perturbed temperature minus the recorded one has mean 0, the configured sd and
+    lag-one autocorrelation phi (a stationary Gaussian AR(1); common practice, no published
+    source); sd 0 leaves the temperature bit for bit; the precipitation and PET errors are
+    the same with or without a temperature in the run (their own streams)."""
+    from assim.engine.block import perturbed_forcing
+
+    rng = np.random.default_rng(3)
+    nb, nt, nm = 2, 3000, 40
+    p, e = synthetic_weather(rng, nb, nt)
+    temp = cold_temperature(rng, nb, nt)
+    inputs = snow_inputs(SNOW, snow_params(nb), p, e, temp)
+    st = engine.Settings(members=nm, seed=5, temperature=pt.GaussianAR1(1.5, 0.6))
+    state = engine.initial_ensemble(SNOW, inputs, st)
+    assert set(state.ar1) == {"precipitation", "pet", "temperature"}
+    members = np.arange(nm)
+    forcing, _, _ = perturbed_forcing(inputs, state.ar1, st, members, 0, nt, False)
+    err = forcing["temperature"].reshape(nt, nb, nm) - temp.T[:, :, None]
+    assert abs(err.mean()) < 0.03
+    assert err.std() == pytest.approx(1.5, rel=0.02)
+    lag1 = (err[1:] * err[:-1]).mean() / err.var()
+    assert lag1 == pytest.approx(0.6, abs=0.02)
+    still = dataclasses.replace(st, temperature=pt.GaussianAR1(0.0, 0.6))
+    f0, _, _ = perturbed_forcing(inputs, state.ar1, still, members, 0, nt, False)
+    np.testing.assert_array_equal(f0["temperature"].reshape(nt, nb, nm), np.broadcast_to(temp.T[:, :, None], err.shape))
+    rain = engine.initial_ensemble(GR4J, inputs, st)
+    assert set(rain.ar1) == {"precipitation", "pet"}
+    fr, _, _ = perturbed_forcing(inputs, rain.ar1, st, members, 0, nt, False)
+    for name in ("precipitation", "pet"):
+        np.testing.assert_array_equal(fr[name], forcing[name])
+
+
+def test_snow_runs_need_their_temperature_and_skip_the_compiled_kernel():
+    """A snow model without temperature in the inputs is refused; the compiled kernel has no
+    form for <model>+snow, so kernel auto runs numpy and kernel compiled is a ConfigError."""
+    from assim.engine import fused
+    from assim.errors import ConfigError
+
+    rng = np.random.default_rng(2)
+    p, e = synthetic_weather(rng, 1, 30)
+    inputs = make_inputs(SNOW, snow_params(1), p, e)
+    with pytest.raises(ValueError, match="temperature"):
+        engine.run(SNOW, inputs, engine.Settings(members=2, scheduler="synchronous"), None)
+    assert fused.kernel_choice(SNOW, engine.Settings()) == "model 'gr4j+snow' has no compiled form"
+    assert not fused.applicable(SNOW, engine.Settings(kernel="auto"))
+    with pytest.raises(ConfigError, match="no compiled form"):
+        settings_from_config(load_config(ensemble={"kernel": "compiled"}), SNOW, "assimilate")
+
+
+def test_snow_continued_run_and_forecast_leads():
+    """With the temperature perturbed: a run continued from its end state (snowpack and the
+    temperature error included) equals the one-shot run bit for bit; an observed-forcing
+    forecast continues the run exactly (discharge and the snowpack of every lead); climatology and file forecasts take their
+    temperature from the same source as their precipitation (colder leads, more snow, less
+    discharge)."""
+    rng = np.random.default_rng(8)
+    nb, nt = 2, 3 * 365
+    p, e = synthetic_weather(rng, nb, nt)
+    temp = cold_temperature(rng, nb, nt)
+    inputs = snow_inputs(SNOW, snow_params(nb), p, e, temp, day0=11000)
+    st = engine.Settings(members=6, seed=4, float32=False, scheduler="synchronous", time_block_days=100,
+                         temperature=pt.GaussianAR1(1.0, 0.7), write_states=("snowpack",),
+                         obs_error=engine.ObsError("relative", 1.0, 0.1, 0.05))
+    obs = np.where(rng.random((nb, nt)) < 0.8, 0.5 + rng.gamma(2.0, 1.0, (nb, nt)), np.nan)
+    inputs = dataclasses.replace(inputs, observed=obs)
+    for mode in ("openloop", "assimilate"):
+        sm = dataclasses.replace(st, mode=mode)
+        whole = Collect()
+        one = engine.run(SNOW, inputs, sm, whole)
+        cut = int(inputs.days[500])
+        first, rest = Collect(), Collect()
+        part = engine.run(SNOW, inputs, sm, first, until_day=cut)
+        assert set(part.state.ar1) == {"precipitation", "pet", "temperature"}
+        two = engine.run(SNOW, inputs, sm, rest, state=part.state)
+        for name in ("discharge", "snowpack"):
+            np.testing.assert_array_equal(np.concatenate([first.get(name), rest.get(name)], axis=1), whole.get(name))
+        np.testing.assert_array_equal(two.state.states, one.state.states)
+        np.testing.assert_array_equal(two.state.ar1["temperature"], one.state.ar1["temperature"])
+    ol = dataclasses.replace(st, mode="openloop")
+    whole = Collect()
+    engine.run(SNOW, inputs, ol, whole)
+    issue = int(inputs.days[800])
+    part = engine.run(SNOW, inputs, ol, None, until_day=issue)
+    q, kept = engine.forecast_issue(SNOW, inputs, ol, part.state, 7, "observed",
+                                    keep_states=(SNOW.state_index("snowpack"),))
+    np.testing.assert_array_equal(q, whole.get("discharge")[:, 801:808])
+    np.testing.assert_array_equal(kept[..., 0], whole.get("snowpack")[:, 801:808])
+    # a winter issue with a pack: leads at +15 degC melt it, leads at -15 degC keep it
+    winter = int(np.flatnonzero((np.arange(nt) % 365 > 330) & (np.arange(nt) > 400))[0])
+    part = engine.run(SNOW, inputs, ol, None, until_day=int(inputs.days[winter]))
+    assert part.state.states[..., SNOW.state_index("snowpack")].min() > 10.0
+    qs = {}
+    for t in (-15.0, 15.0):
+        ff = {"precipitation": np.full((nb, 7, 3), 2.0), "pet": np.full((nb, 7, 3), 0.5),
+              "temperature": np.full((nb, 7, 3), t)}
+        qs[t] = engine.forecast_issue(SNOW, inputs, ol, part.state, 7, "file", ff)
+        clim = engine.Climatology(inputs.days, p, e, np.full_like(temp, t))
+        qc = engine.forecast_issue(SNOW, dataclasses.replace(inputs, climatology=clim), ol, part.state, 7,
+                                   "climatology")
+        assert np.isfinite(qc).all()
+        qs[("clim", t)] = qc
+    assert (qs[15.0][:, -1] > qs[-15.0][:, -1]).all()
+    assert (qs[("clim", 15.0)][:, -1] > qs[("clim", -15.0)][:, -1]).all()
+
+
+def test_snow_twin_assimilation_improves_the_one_day_crps():
+    """Twin experiment with snow: a truth of gr4j+snow on 4 invented cold basins; recorded
+    precipitation and PET carry the configured lognormal errors, the recorded temperature an
+    additive Gaussian AR(1) error of 1.5 degC drawn here (not by assim.perturb); readings =
+    truth + the configured observation error. The ensemble runs with the shipped defaults and
+    temperature_sd_c 1.5. The one-day-ahead (background) CRPS of the assimilation run
+    (scoringrules.crps_ensemble, reference library) is below 0.6 of the open loop's, over
+    the whole period and over the snowmelt days; the filter updates the snowpack (by
+    default), which stays >= 0 after every analysis; clipped water is reported, not lost
+    (common practice of twin experiments)."""
+    cfg = load_config(None, perturbation={"temperature_sd_c": 1.5})
+    rng = np.random.default_rng(20261205)
+    nb, spin = 4, cfg["period"]["spinup_days"]
+    nt = spin + 2 * 365
+    p, e = synthetic_weather(rng, nb, nt)
+    temp = cold_temperature(rng, nb, nt)
+    area = np.linspace(150, 900, nb)
+    params = snow_params(nb)
+    prepared = SNOW.prepare(params)
+    x = SNOW.initial_state(params)
+    q, melt = np.empty((nb, nt)), np.empty((nb, nt))
+    for i in range(nt):
+        x, f = SNOW.step(x, {"precipitation": p[:, i], "pet": e[:, i], "temperature": temp[:, i]}, prepared)
+        q[:, i], melt[:, i] = f["runoff"], f["melt"]
+    truth = q * area[:, None] / 86.4
+    per, oe = cfg["perturbation"], cfg["filter"]["obs_error"]
+    po = p * lognormal_ar1(rng, (nb, nt), per["precipitation_cv"], per["precipitation_ar1"])
+    eo = e * lognormal_ar1(rng, (nb, nt), per["pet_cv"], per["pet_ar1"])
+    t_err = 1.5 * gaussian_ar1(rng, (nb, nt), per["temperature_ar1"])
+    sd = np.maximum(oe["relative"] * truth, oe["floor_m3s"])
+    obs = np.maximum(truth + sd * rng.standard_normal((nb, nt)), 0.0)
+    inputs = snow_inputs(SNOW, params, po, eo, temp + t_err, obs=obs, area=area)
+    out = {}
+    for mode in ("openloop", "assimilate"):
+        st = dataclasses.replace(settings_from_config(cfg, SNOW, mode), write_states=("snowpack",))
+        assert mode == "openloop" or "snowpack" in st.update_states
+        out[mode] = Collect()
+        engine.run(SNOW, inputs, st, out[mode])
+    tr = truth[:, spin:]
+    c_ol = sr.crps_ensemble(tr, out["openloop"].get("discharge").astype(np.float64))
+    c_da = sr.crps_ensemble(tr, out["assimilate"].get("discharge").astype(np.float64))
+    melting = melt[:, spin:] > 1.0
+    assert melting.sum() > 50
+    assert c_da.mean() < 0.6 * c_ol.mean()  # 0.38 measured
+    assert c_da[melting].mean() < 0.6 * c_ol[melting].mean()
+    assert out["assimilate"].get("snowpack").min() >= 0.0
+    assert np.isfinite(out["assimilate"].get("clipped_water")).all()
+
+
+def test_snowpack_state_noise_stays_in_bounds_and_is_reported():
+    """perturbation.state_noise on the snowpack: members spread, the pack never goes below
+    0 (clipped to its bound), and the water the noise added is reported (common practice,
+    no published source)."""
+    rng = np.random.default_rng(9)
+    nb, nt = 2, 400
+    p, e = synthetic_weather(rng, nb, nt)
+    temp = cold_temperature(rng, nb, nt)
+    inputs = snow_inputs(SNOW, snow_params(nb), p, e, temp)
+    st = engine.Settings(mode="openloop", members=8, seed=1, scheduler="synchronous", float32=False,
+                         state_noise={"snowpack": 2.0}, write_states=("snowpack",))
+    sink = Collect()
+    engine.run(SNOW, inputs, st, sink)
+    pack = sink.get("snowpack")
+    assert pack.min() >= 0.0 and (pack == 0.0).any()  # clipped at its bound in summer
+    assert pack.std(axis=-1).max() > 1.0
+    assert np.isfinite(sink.get("state_noise_water")).all() and np.abs(sink.get("state_noise_water")).max() > 0
+
+
+def test_forecast_leads_of_several_issues_equal_each_issue_alone():
+    """Issues that share their parameters (none estimated) are advanced with the parameters
+    prepared once and repeated: every issue's leads equal that issue run alone, bit for bit
+    (np.array_equal), as GR4J's prepared values are element-wise (common practice, no
+    published source: a batch's elements are independent)."""
+    from assim.engine.forecast import forecast_leads
+
+    rng = np.random.default_rng(7)
+    ni, nb, nm, nl = 3, 4, 6, 5
+    params = {"x1": rng.uniform(200, 600, nb), "x2": rng.uniform(-1, 1, nb),
+              "x3": rng.uniform(50, 150, nb), "x4": rng.uniform(1.2, 3.0, nb)}
+    par = {k: np.broadcast_to(v[None, :, None], (ni, nb, nm)).copy() for k, v in params.items()}
+    x0 = GR4J.initial_state({k: np.repeat(v, nm) for k, v in params.items()}).reshape(nb, nm, -1)
+    states = np.stack([x0 * rng.uniform(0.5, 1.5, x0.shape) for _ in range(ni)])
+    forcing = {"precipitation": rng.gamma(0.8, 9.0, (nl, ni, nb, nm)), "pet": rng.uniform(0.5, 4, (nl, ni, nb, nm))}
+    s = engine.Settings(mode="openloop", members=nm, seed=1)
+    keys = pt.basin_keys(tuple(f"b{i}" for i in range(nb)))
+    area = rng.uniform(100, 900, nb)
+    days = np.arange(nl)[:, None] + np.arange(ni)[None] + 17000
+    both = forecast_leads(GR4J, states, par, forcing, area, s, keys, np.arange(nm), days)
+    for i in range(ni):
+        one = forecast_leads(GR4J, states[i:i + 1], {k: v[i:i + 1] for k, v in par.items()},
+                             {k: v[:, i:i + 1] for k, v in forcing.items()}, area, s, keys, np.arange(nm), days[:, i:i + 1])
+        np.testing.assert_array_equal(both[:, i:i + 1], one)
+    assert np.all(both > 0)

@@ -621,3 +621,129 @@ def test_bad_snow_block(tmp_path, block, variable):
         prep.prepare(config(raw, tmp_path / "prepared"))
     assert info.value.variable == variable and info.value.place == "basin 'beta'"
     assert not (tmp_path / "prepared").exists()
+
+
+# ---------------------------------------------------------------------------------- appended days
+
+
+def _daily_rows(rng, days):
+    """Weather and gauge rows of each day (lists of CSV lines): a few readings a day at
+    random times; alpha (stage) now and then below its rating's offset or above its valid
+    range, beta (discharge) with spikes, a negative reading and a stuck sensor holding 5.0
+    across two midnights (the flat-line test), some days silent."""
+    weather, gauge = {}, {}
+    for i, d in enumerate(days):
+        weather[d] = [f"{d},{b},{rng.gamma(0.7, 4):.1f},{rng.normal(4, 2):.1f},{rng.normal(13, 2):.1f}"
+                      for b in ("alpha", "beta")]
+        rows = []
+        for b in ("alpha", "beta"):
+            n = 0 if (i % 5 == 3 and b == "beta") else int(rng.integers(3, 9))
+            minutes = np.sort(rng.choice(24 * 60, n, replace=False))
+            for m in minutes:
+                stamp = f"{d}T{m // 60:02d}:{m % 60:02d}:00Z"
+                if b == "alpha":
+                    v = rng.choice([0.05, 3.4, *np.round(rng.uniform(0.3, 2.5, 8), 3)])
+                elif 4 <= i <= 6:
+                    v = 5.0
+                else:
+                    v = rng.choice([-1.0, 60.0, *np.round(rng.uniform(4, 9, 10), 3)])
+                rows.append(f"{stamp},{b},{v:g}")
+        if i in (9, 10):  # a spike on the first reading of a day, its previous plausible neighbour
+            # before the midnight and an impossible reading between them
+            rows = [r for r in rows if not r.endswith((",beta,-1", ",beta,60"))]
+            rows += ([f"{d}T20:00:00Z,beta,6", f"{d}T23:00:00Z,beta,-1"] if i == 9 else
+                     [f"{d}T00:10:00Z,beta,60", f"{d}T00:20:00Z,beta,6.5"])
+            rows = [r for r in rows if not (r.split(",")[1] == "beta" and (
+                (i == 9 and r[11:16] > "20:00" and not r.endswith("-1")) or (i == 10 and r[11:16] < "00:10")))]
+            rows.sort()
+        gauge[d] = rows
+    return weather, gauge
+
+
+def _same_layer(a: Path, b: Path):
+    import xarray as xr
+
+    for name in (prep_io.FORCING_FILE, prep_io.OBSERVATIONS_FILE, prep_io.BASINS_FILE):
+        with xr.open_dataset(a / name) as x, xr.open_dataset(b / name) as y:
+            xr.testing.assert_identical(x.drop_attrs(), y.drop_attrs())
+            assert x.attrs["sha256_variables"] == y.attrs["sha256_variables"], name
+            assert x.attrs["raw_sha256"] == y.attrs["raw_sha256"], name
+
+
+def test_appended_days_update_the_layer_as_preparing_the_whole_record_does(tmp_path):
+    """The daily chain's cost (common practice, no published source, for the outcome: an
+    update must equal a rebuild): preparing a raw folder that only grew by appended days
+    reads only the new rows, and the layer is then variable by variable (and checksum by
+    checksum) the one preparing the whole record from scratch gives. Checked day after day
+    over readings that exercise every QC test across midnights (a flat line over three
+    days, spikes, stage below the rating's offset), readings arriving before their day's
+    weather, a weather day without any reading, unsorted and repeated rows; a late reading
+    for an earlier day and a corrected reading inside the old rows are noticed and the
+    whole record prepared again."""
+    rng = np.random.default_rng(11)
+    days = [str(d) for d in np.arange("2015-03-01", "2015-03-17", dtype="datetime64[D]")]
+    weather, gauge = _daily_rows(rng, days)
+    head_w, head_g = "date,basin,precipitation_mm,tmin_c,tmax_c", "timestamp,basin,value"
+    n0 = 3
+    raw = make_raw(tmp_path / "raw",
+                   weather_csv="\n".join([head_w] + sum((weather[d] for d in days[:n0]), [])) + "\n",
+                   gauge_csv="\n".join([head_g] + sum((gauge[d] for d in days[:n0]), [])) + "\n")
+    cfg = config(raw, tmp_path / "layer")
+    assert prep.prepare(cfg)["forcing"].attrs["prepared"].startswith("prepared the whole record")
+
+    def append(name, rows):
+        with open(raw / name, "a") as f:
+            f.write("".join(r + "\n" for r in rows))
+
+    hows = []
+    for i, d in enumerate(days[n0:], start=n0):
+        if i == 6:  # the next day's readings arrive before its weather
+            append("gauge.csv", gauge[d] + gauge[days[i + 1]])
+        elif i == 7:
+            pass
+        elif i == 9:  # unsorted, one row sent twice
+            append("gauge.csv", gauge[d][::-1] + gauge[d][:1])
+        elif i == 11:  # a late reading for an earlier day, appended at the end
+            append("gauge.csv", gauge[d] + [f"{days[2]}T23:50:00Z,beta,7.25"])
+        elif i == 13:  # a reading corrected inside the old rows
+            text = (raw / "gauge.csv").read_text()
+            old = gauge[days[5]][1]
+            (raw / "gauge.csv").write_text(text.replace(old + "\n", old.rsplit(",", 1)[0] + ",4.321\n"))
+            append("gauge.csv", gauge[d])
+        elif i != 12:  # day 12: a weather day without any reading of either gauge
+            append("gauge.csv", gauge[d])
+        append("weather.csv", weather[d])
+        how = prep.prepare(cfg)["forcing"].attrs["prepared"]
+        hows.append(how)
+        ref = config(raw, tmp_path / f"ref-{i}")
+        prep.prepare(ref)
+        _same_layer(tmp_path / "layer", tmp_path / f"ref-{i}")
+    whole = [i for i, h in zip(range(n0, len(days)), hows, strict=True) if not h.startswith("appended")]
+    assert whole == [11, 13], hows
+    assert "late or corrected" in hows[11 - n0] and "gauge.csv changed" in hows[13 - n0]
+    observations = prep_io.read_observations(tmp_path / "layer" / prep_io.OBSERVATIONS_FILE)
+    flags = observations["qc_flag"].values
+    for name in ("flat_line", "spike", "below_rating_offset", "impossible_value"):  # the QC tests were exercised
+        assert ((flags & F[name]) != 0).any(), name
+    assert flags[1, 10] & F["spike"] and flags[1, 9] & F["impossible_value"]
+
+
+def test_a_record_of_another_write_or_changed_settings_prepare_the_whole_record(tmp_path):
+    """The record beside the layer is trusted only when it belongs to the layer's write
+    (its set_generation) and to the same data settings (common practice, no published
+    source): otherwise the whole record is prepared again, and the layer equals a rebuild."""
+    import json
+
+    raw = make_raw(tmp_path / "raw")
+    cfg = config(raw, tmp_path / "layer")
+    prep.prepare(cfg)
+    assert prep.prepare(cfg)["forcing"].attrs["prepared"].startswith("appended 0 day")
+    record = tmp_path / "layer" / prep_io.RECORD_FILE
+    d = json.loads(record.read_text())
+    d["set_generation"] = "0" * 32  # e.g. a kill between the renames of two writes
+    record.write_text(json.dumps(d))
+    assert "not the layer's" in prep.prepare(cfg)["forcing"].attrs["prepared"]
+    other = config(raw, tmp_path / "layer", daily_coverage=0.5)
+    assert "other data settings" in prep.prepare(other)["forcing"].attrs["prepared"]
+    prep.prepare(config(raw, tmp_path / "ref", daily_coverage=0.5))
+    _same_layer(tmp_path / "layer", tmp_path / "ref")

@@ -245,6 +245,44 @@ def test_forecast_lock(tmp_path):
             pass
 
 
+def test_innovation_statistics_and_inflation_written_with_cf_attributes(tmp_path):
+    """analysis.nc holds the daily inflation and Desroziers series and the per-basin
+    innovation statistics computed from every written day (equal to
+    assim.filters.consistency.innovation_statistics of the written series), each with a
+    long name; compliance-checker (reference library) reports no CF failure."""
+    from _cf import cf_failures
+
+    from assim.filters.consistency import STATISTICS, innovation_statistics
+
+    rng = np.random.default_rng(4)
+    blocks = [_block(rng, 8), _block(rng, 12)]
+    for b in blocks:
+        n = b["discharge"].shape[1]
+        b["innovation_analysis"] = 0.3 * b["innovation"]
+        b["obs_error_variance"] = rng.gamma(2.0, 0.5, (2, n))
+        b["inflation_mean"] = rng.uniform(1, 2, (2, n))
+        b["inflation_sd"] = rng.uniform(0.1, 0.5, (2, n))
+    path = tmp_path / "analysis.nc"
+    with RunWriter(path, basins=["alder", "birch"], days=DAYS, members=4, mode="assimilate",
+                   adaptive_inflation=True) as w:
+        w.write_block(0, blocks[0])
+        w.write_block(8, blocks[1])
+        w.write_innovation_statistics()
+    cat = {k: np.concatenate([b[k] for b in blocks], axis=1)
+           for k in ("innovation", "innovation_variance", "innovation_analysis", "obs_error_variance")}
+    want = innovation_statistics(cat["innovation"], cat["innovation_variance"], cat["innovation_analysis"],
+                                 cat["obs_error_variance"])
+    with open_product(path) as ds:
+        for k in STATISTICS:
+            np.testing.assert_allclose(ds[k].values, want[k], rtol=1e-12, err_msg=k)
+            assert ds[k].dims == ("basin",) and ds[k].attrs["long_name"]
+        np.testing.assert_array_equal(ds["inflation_mean"].values,
+                                      np.concatenate([b["inflation_mean"] for b in blocks], axis=1))
+        assert "Anderson 2009" in ds["inflation_mean"].attrs["long_name"]
+        assert ds["innovation_analysis"].attrs["long_name"]
+    assert cf_failures(path) == ([], [])
+
+
 def test_forecast_values_are_day_means_bounded_by_their_lead(tmp_path):
     """CF-1.8 section 7.3 (cell methods) and 7.1 (cell boundaries): a value at lead L is the
     mean over the L-th day after the issue, so forecast and hindcast discharge say

@@ -125,3 +125,58 @@ def test_report_links_figures_beyond_the_size_limit(study, tmp_path, monkeypatch
     assert text.count('href="figures/hydrograph__extra') == 300
     assert len(text.encode()) < 400_000
     assert "Basins without figures (1)" in text and "Alder Creek (alder)" in text
+
+
+def test_report_innovation_section_reads_analysis_nc(tmp_path):
+    """The innovation section shows, per basin, the statistics written in analysis.nc and
+    the reading innovation_reading gives for them (thresholds documented in the section);
+    common practice, no published source for the presentation."""
+    import numpy as np
+
+    from assim.filters.consistency import STATISTICS
+    from assim.io.products import RunWriter, open_product
+
+    cfg = assim.load_config(None, data={"prepared": str(tmp_path / "p"), "raw": str(tmp_path / "raw")},
+                            results=str(tmp_path / "r"))
+    path = paths.run_product(cfg, "assimilate")
+    path.parent.mkdir(parents=True)
+    rng = np.random.default_rng(0)
+    n = 200
+    d = rng.normal(0.0, 1.0, (2, n)) * np.array([[1.0], [2.0]])  # basin b: innovations too large
+    block = {"discharge": rng.gamma(2.0, 3.0, (2, n, 4)), "discharge_analysis": rng.gamma(2.0, 3.0, (2, n, 4)),
+             "innovation": d, "innovation_variance": np.ones((2, n)), "innovation_analysis": 0.5 * d,
+             "obs_error_variance": np.full((2, n), 0.5)}
+    with RunWriter(path, basins=["a", "b"], days=np.arange(18000, 18000 + n), members=4,
+                   mode="assimilate") as w:
+        w.write_block(0, block)
+        w.write_innovation_statistics()
+    text = report.render_report(cfg)
+    section = text.split('id="innovations"')[1].split("<h2")[0]
+    assert "Desroziers" in section
+    with open_product(path) as ds:
+        rows = [{k: ds[k].values[i] for k in STATISTICS} for i in range(2)]
+    lines = section.split("<tr>")
+    for basin, row in zip(("a", "b"), rows, strict=True):
+        line = next(tr for tr in lines if f'<td class="l">{basin}</td>' in tr)
+        assert f"<td>{int(row['innovation_count'])}</td>" in line
+        assert f"<td>{row['innovation_chi2']:.3g}</td>" in line
+        assert report.innovation_reading(row) in line
+    assert "under-dispersed" in report.innovation_reading(rows[1])
+
+
+def test_innovation_reading_thresholds():
+    """Each documented threshold of the reading changes it (common practice, no published
+    source): chi-square beyond its interval and 20% from 1, |mean z| > 0.5, Desroziers
+    beyond 1.5 times R used."""
+    base = {"innovation_count": 400, "normalised_innovation_mean": 0.0, "innovation_chi2": 1.0,
+            "innovation_chi2_lower": 0.9, "innovation_chi2_upper": 1.1, "obs_error_variance_desroziers": 1.0,
+            "obs_error_variance_used": 1.0, "normalised_innovation_variance": 1.0}
+    read = report.innovation_reading
+    assert read(base) == "consistent"
+    assert read({**base, "innovation_chi2": 1.15}) == "consistent"  # outside the interval, within 20%
+    assert read({**base, "innovation_chi2": 1.3}).startswith("ensemble under-dispersed")
+    assert read({**base, "innovation_chi2": 0.7}).startswith("ensemble over-dispersed")
+    assert "background biased" in read({**base, "normalised_innovation_mean": 0.6})
+    assert "too small: Desroziers estimate 1.6 vs 1 used" in read({**base, "obs_error_variance_desroziers": 1.6})
+    assert "too large" in read({**base, "obs_error_variance_desroziers": 0.6})
+    assert read({**base, "innovation_count": 29}).startswith("too few readings")

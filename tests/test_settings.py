@@ -22,13 +22,16 @@ def test_every_field_comes_from_the_config():
                   "scheduler": "synchronous", "workers": 1, "kernel": "numpy"},
         period={"spinup_days": 9},
         perturbation={"precipitation_cv": 0.25, "precipitation_ar1": 0.4, "pet_cv": 0.15, "pet_ar1": 0.7,
+                      "temperature_sd_c": 1.5, "temperature_ar1": 0.6,
                       "parameters": {"x1": 0.1}, "state_noise": {"routing_store": 0.5}},
         filter={"method": "etkf", "update_states": ["routing_store", "production_store"],
                 "obs_error": {"kind": "absolute", "absolute_m3s": 2.0, "relative": 0.2, "floor_m3s": 0.1},
                 "transform": {"kind": "boxcox", "offset_m3s": 0.02, "lambda": 0.4}, "gate_sigma": 4.0,
-                "inflation": {"multiplicative": 1.1, "rtps": 0.3, "rtpp": 0.2},
+                "inflation": {"multiplicative": 1.1, "rtps": 0.3, "rtpp": 0.2,
+                              "adaptive": {"enabled": True, "initial_mean": 1.5, "initial_sd": 0.3,
+                                           "damping": 0.95, "lower": 0.9, "upper": 5.0, "min_sd": 0.05}},
                 "parameters": {"estimate": ["x3", "x1"], "shrinkage": 0.9}, "collapse_ratio": 0.2,
-                "collapse_days": 12, "gating_warn_fraction": 0.3},
+                "collapse_days": 12, "gating_warn_fraction": 0.3, "smoother": {"window_days": 4}},
         outputs={"ensemble": "quantiles", "quantiles": [0.1, 0.9], "states": True, "all_states": True,
                  "float32": False},
     )
@@ -44,6 +47,7 @@ def test_every_field_comes_from_the_config():
             value = value[k]
         assert getattr(st, name) == value and type(getattr(st, name)) is type(getattr(default, name)), name
     assert st.precipitation.cv == 0.25 and st.pet.phi == 0.7
+    assert st.temperature == engine.Settings().temperature.__class__(1.5, 0.6)
     assert st.obs_error == engine.ObsError("absolute", 2.0, 0.2, 0.1)
     assert st.update_states == ("production_store", "routing_store")  # the model's order
     assert st.estimate == ("x1", "x3") and st.write_states == GR4J.state_names

@@ -15,6 +15,8 @@ The package, one module per part:
 - :mod:`~assim.engine.outputs`: member means and quantiles of a block's outputs;
 - :mod:`~assim.engine.forecast`: forecast leads, hindcast issues, one operational issue;
 - :mod:`~assim.engine.cycling`: the plan of a run, its chunks and blocks, :func:`run`;
+- :mod:`~assim.engine.window`: the fixed-lag smoother's window of the last W days (the
+  days a reanalysis records when they leave it);
 - :mod:`~assim.engine.diagnostics`: health warnings of a run.
 """
 
@@ -48,6 +50,7 @@ from assim.engine.records import (
     Plan,
     RunSummary,
     Settings,
+    forcing_names,
 )
 from assim.members import member_quantiles
 
@@ -55,7 +58,7 @@ __all__ = [
     "FORCINGS", "OBS_GATED", "OBS_MISSING", "OBS_REJECTED", "OBS_USED", "SECONDS_PER_DAY_OVER_1000",
     "BlockResult", "Climatology", "EnsembleState", "HealthWarning", "Inputs", "ObsError", "Plan", "RunSummary", "Settings",
     "advance", "analyse", "augmented_bounds", "climatology_index", "collapse_counts", "fixed_parameters",
-    "forecast_issue", "forecast_leads", "health_warnings", "hindcast_forecasts", "initial_ensemble",
+    "forcing_names", "forecast_issue", "forecast_leads", "health_warnings", "hindcast_forecasts", "initial_ensemble",
     "issue_indices", "lead_forcing", "liu_west_shrink", "member_quantiles", "parameter_ranges", "plan",
     "quantile_arrays", "reduce_members", "run", "summarise_warnings",
 ]

@@ -48,12 +48,18 @@ def analyse(
     upper: np.ndarray,
     obs_noise: np.ndarray | None,
     settings: Settings,
+    inflation_state: tuple[np.ndarray, np.ndarray] | None = None,
+    lagged: np.ndarray | None = None,
 ):
     """One analysis over all basins of a chunk.
 
     The analysis vector of each member is (updated states, predicted discharge, estimated
     parameters): the discharge column gives ``discharge_analysis`` and the parameter
-    columns the joint state-parameter update.
+    columns the joint state-parameter update. With ``lagged`` (the smoother's window), the
+    lagged days' columns are appended to the vector, so the same analysis corrects them by
+    their cross-covariance with today's predicted discharge (the fixed-lag smoother,
+    :func:`assim.filters.fixed_lag_update`); they come back as the last columns of the
+    ``Analysis`` states.
 
     Parameters
     ----------
@@ -62,8 +68,12 @@ def analyse(
     theta : (basin, member, n_param) float64 or None, estimated parameters
     observed : (basin,) float64, m3 s-1, NaN where no usable reading
     obs_var : (basin,) float64, (m3 s-1)^2, observation error variance
-    lower, upper : (basin, member, n_update + 1 + n_param), from :func:`augmented_bounds`
+    lower, upper : (basin, member, n_update + 1 + n_param [+ n_lagged]), from
+        :func:`augmented_bounds` (and the window's bounds)
     obs_noise : (basin, member) standard normals for the perturbed observations (EnKF)
+    inflation_state : (mean, sd), each (basin,), the prior adaptive inflation (already
+        damped), when ``settings.adaptive_inflation``
+    lagged : (n_lagged, basin, member) float64, optional, the window's planes
 
     Returns
     -------
@@ -75,15 +85,17 @@ def analyse(
     npar = 0 if theta is None else theta.shape[-1]
     # one (basin, member) plane per column, members fastest: the layout the filter's
     # one-observation path works on along contiguous members (and returns)
-    planes = np.empty((nu + 1 + npar, nb, nm))
+    n_lag = 0 if lagged is None else lagged.shape[0]
+    planes = np.empty((nu + 1 + npar + n_lag, nb, nm))
     planes[:nu] = np.moveaxis(states, -1, 0)
     planes[nu] = discharge
     if theta is not None:
-        planes[nu + 1:] = np.moveaxis(theta, -1, 0)
+        planes[nu + 1:nu + 1 + npar] = np.moveaxis(theta, -1, 0)
+    if n_lag:
+        planes[nu + 1 + npar:] = lagged
     x = np.moveaxis(planes, 0, -1)  # (basin, member, column)
     transform = _transform(settings)
-    if transform is not None:
-        obs_var = transform.variance(observed, obs_var)
+    obs_var = assimilation_variance(observed, obs_var, settings)
     a = ensemble_update(
         x,
         discharge[..., None],
@@ -96,14 +108,54 @@ def analyse(
         upper=upper,
         transform=transform,
         obs_noise=None if obs_noise is None else obs_noise[..., None],
+        inflation_state=inflation_state,
     )
     xa = a.states
-    new_theta = None if theta is None else xa[..., nu + 1:]
+    new_theta = None if theta is None else xa[..., nu + 1:nu + 1 + npar]
     return xa[..., :nu], xa[..., nu], new_theta, a
 
 
+def assimilation_variance(observed: np.ndarray, obs_var: np.ndarray, settings: Settings) -> np.ndarray:
+    """The observation error variance in the assimilation space (the transform's), (basin,)."""
+    transform = _transform(settings)
+    return obs_var if transform is None else transform.variance(observed, obs_var)
+
+
+def desroziers_series(observed: np.ndarray, variance: np.ndarray, analysed: np.ndarray, used: np.ndarray,
+                      settings: Settings) -> tuple[np.ndarray, np.ndarray]:
+    """What the Desroziers et al. (2005) diagnostics need of each analysed day, beside the
+    innovation: the observed minus the ensemble mean of the analysed discharge (d_o-a) and
+    the observation error variance used, both in the assimilation space.
+
+    Parameters
+    ----------
+    observed, variance : (basin, time) m3 s-1 and (m3 s-1)^2, the readings and their error variance
+    analysed : (basin, time, member) m3 s-1, the discharge after each day's analysis
+    used : (basin, time) bool, readings the analysis used
+
+    Returns
+    -------
+    innovation_analysis, obs_error_variance : (basin, time) float64, NaN where no reading was used
+    """
+    obs = np.where(used, observed, np.nan)
+    transform = _transform(settings)
+    if transform is not None:
+        obs, analysed = transform.forward(obs), transform.forward(analysed)
+    d_oa = obs - np.add.reduce(analysed, axis=-1) / analysed.shape[-1]
+    return d_oa, np.where(used, assimilation_variance(observed, variance, settings), np.nan)
+
+
 def _inflation(settings: Settings):
-    return _inflation_of(settings.inflation, settings.rtps, settings.rtpp)
+    adaptive = None
+    if settings.adaptive_inflation:
+        adaptive = (settings.adaptive_initial_mean, settings.adaptive_initial_sd, settings.adaptive_damping,
+                    settings.adaptive_lower, settings.adaptive_upper, settings.adaptive_min_sd)
+    return _inflation_of(settings.inflation, settings.rtps, settings.rtpp, adaptive)
+
+
+def adaptive_options(settings: Settings):
+    """The :class:`assim.filters.AdaptiveInflation` of the settings, or None when off."""
+    return _inflation(settings).adaptive
 
 
 def _transform(settings: Settings):
@@ -115,10 +167,11 @@ def _transform(settings: Settings):
 
 # Built once per distinct setting, not once per analysis (frozen records, safe to share).
 @functools.lru_cache(maxsize=32)
-def _inflation_of(multiplicative: float, rtps: float, rtpp: float):
+def _inflation_of(multiplicative: float, rtps: float, rtpp: float, adaptive: tuple | None = None):
     from assim import filters
 
-    return filters.Inflation(multiplicative=multiplicative, rtps=rtps, rtpp=rtpp)
+    opts = None if adaptive is None else filters.AdaptiveInflation(*adaptive)
+    return filters.Inflation(multiplicative=multiplicative, rtps=rtps, rtpp=rtpp, adaptive=opts)
 
 
 @functools.lru_cache(maxsize=32)

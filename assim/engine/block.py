@@ -12,8 +12,10 @@ the whole flat (basin x member) batch of the chunk:
    column, giving ``discharge_analysis``) and the parameters with one analysis over every
    basin of the chunk (:func:`analyse_day`); basins without a reading are left unchanged;
 4. check that every state is finite (:func:`check_finite`);
-5. record the day's outputs (:func:`record_day`) and keep the end state of a hindcast issue
-   day (:func:`snapshot`).
+5. record the day's outputs (:func:`record_day`); with the fixed-lag smoother, the day
+   enters its window and the day W days older leaves it, final (:func:`window_day`; the
+   analysis of step 3 corrected the window's days too); keep the end state of a hindcast
+   issue day (:func:`snapshot`).
 
 At the end of the block the spreads, reading counts and collapse counters of every day are
 computed at once (:func:`finish_block`).
@@ -28,17 +30,18 @@ import numpy as np
 
 from assim import perturb as pt
 from assim.engine.analysis import (
+    adaptive_options,
     analyse,
     augmented_bounds,
     clipped_water,
     collapse_counts,
+    desroziers_series,
     liu_west_shrink,
     member_sd,
 )
 from assim.engine.forecast import hindcast_forecasts
 from assim.engine.initial import fixed_parameters, parameter_ranges
 from assim.engine.records import (
-    FORCINGS,
     OBS_GATED,
     OBS_MISSING,
     OBS_REJECTED,
@@ -49,6 +52,8 @@ from assim.engine.records import (
     Inputs,
     Settings,
 )
+from assim.engine.window import Window, emitted_days, window_columns
+from assim.filters.inflation import damp_inflation
 from assim.models.base import Model
 
 
@@ -65,31 +70,34 @@ def perturbed_forcing(inputs: Inputs, ar1: Mapping[str, np.ndarray], settings: S
                       t0: int, t1: int, keep_errors: bool) -> tuple[dict, dict, dict]:
     """The perturbed forcing of days ``t0 .. t1 - 1``, one random-number call per stream.
 
+    The forcings are the names of ``ar1`` (:func:`assim.engine.records.forcing_names` of the
+    model), each perturbed by its error model in ``settings`` (the field of the same name).
+
     Parameters
     ----------
-    ar1 : forcing name -> (basin, member) AR(1) log errors on the day before ``t0``
-    keep_errors : keep the log errors of every day (hindcast issues start from them)
+    ar1 : forcing name -> (basin, member) AR(1) errors on the day before ``t0``
+    keep_errors : keep the errors of every day (hindcast issues start from them)
 
     Returns
     -------
-    forcing : name -> (time, basin * member) float64, mm d-1
-    log_errors : name -> (time, basin, member) log errors (empty unless ``keep_errors``)
-    end_ar1 : name -> (basin, member) log errors on the last day
+    forcing : name -> (time, basin * member) float64, mm d-1 (temperature degC)
+    log_errors : name -> (time, basin, member) AR(1) errors (empty unless ``keep_errors``)
+    end_ar1 : name -> (basin, member) AR(1) errors on the last day
     """
     days = inputs.days[t0:t1]
     nt = len(days)
     nb, nm = inputs.n_basin, len(members)
     log_err, end_ar1, forcing = {}, {}, {}
-    for name, stream, model_err in (("precipitation", pt.PRECIPITATION, settings.precipitation),
-                                    ("pet", pt.PET, settings.pet)):
-        ck = pt.counter_keys(settings.seed, inputs.keys, members, stream)
+    for name in ar1:
+        model_err = getattr(settings, name)
+        ck = pt.counter_keys(settings.seed, inputs.keys, members, pt.FORCING_STREAMS[name])
         e = model_err.series(ar1[name], pt.standard_normal(ck, days))
         end_ar1[name] = e[-1].copy() if nt else ar1[name]
         if keep_errors:
             log_err[name] = e
             e = np.empty_like(e)
-        w = model_err.multiplier(log_err.get(name, e), out=e)  # in place when not kept
-        w *= getattr(inputs, name)[:, t0:t1].T[:, :, None]
+        # in place when not kept
+        w = model_err.apply(log_err.get(name, e), getattr(inputs, name)[:, t0:t1].T[:, :, None], out=e)
         forcing[name] = w.reshape(nt, nb * nm)
     return forcing, log_err, end_ar1
 
@@ -152,8 +160,12 @@ def allocate_outputs(model: Model, settings: Settings, readings: Readings | None
     if assim:
         for p in settings.estimate:
             arrays[p] = np.empty(ens, dtype=odt)
-        for n in ("innovation", "innovation_variance", "spread_before", "spread_after"):
+        for n in ("innovation", "innovation_variance", "innovation_analysis", "obs_error_variance",
+                  "spread_before", "spread_after"):
             arrays[n] = np.full((nb, n_out), np.nan)
+        if settings.adaptive_inflation:
+            for n in ("inflation_mean", "inflation_sd"):
+                arrays[n] = np.full((nb, n_out), np.nan)
         arrays["observed_discharge"] = readings.observed[:, k_out0:].copy()
         arrays["clipped_water"] = np.zeros((nb, n_out))
         arrays["obs_status"] = readings.status[:, k_out0:].copy()
@@ -172,6 +184,7 @@ class _Block:
     x : (basin * member, n_state) float64, mm, the members' states (changed in place)
     params : name -> (basin, member) float64; prepared, lower, upper : of the members
     bounds : bounds of the analysis columns (:func:`augmented_bounds`)
+    inflation : (mean, sd) of the adaptive inflation, each (basin,), or None when off
     """
 
     model: Model
@@ -193,6 +206,7 @@ class _Block:
     first_analysis: int
     collect: bool
     issues: set[int]
+    inflation: tuple[np.ndarray, np.ndarray] | None = None
     upd: np.ndarray = field(init=False)
     estimate: tuple[str, ...] = field(init=False)
     theta_low: np.ndarray = field(init=False)
@@ -209,6 +223,8 @@ class _Block:
     analysed: np.ndarray | None = None  # (time,) bool
     used: np.ndarray | None = None  # (basin, time) bool, reading used / gated
     gated: np.ndarray | None = None
+    window: Window | None = None  # the smoother's window (assim.engine.window), when kept
+    emit0: int = 0  # block index of the first recorded day leaving the window (reanalysis)
 
     def __post_init__(self):
         model, s, inputs = self.model, self.settings, self.inputs
@@ -218,13 +234,13 @@ class _Block:
         ranges = parameter_ranges(model)
         self.theta_low = np.array([ranges[p].low for p in self.estimate])
         self.theta_high = np.array([ranges[p].high for p in self.estimate])
+        self.write_cols = [(n, model.state_index(n)) for n in s.write_states]
         self.bounds = self.updated_bounds()
         self.noise = pt.StateNoise.from_names(s.state_noise, list(model.state_names))
         self.noise_keys = [pt.counter_keys(s.seed, inputs.keys, self.members, k) for k in self.noise.streams]
         self.kernel_keys = [pt.counter_keys(s.seed, inputs.keys, self.members, pt.stream_id("kernel:" + p))
                             for p in self.estimate]
         self.area = inputs.area_km2[:, None] / SECONDS_PER_DAY_OVER_1000  # (basin, 1)
-        self.write_cols = [(n, model.state_index(n)) for n in s.write_states]
         if s.assimilate:  # discharge (float64) and reading use of every day, for the spreads,
             # counts and collapse counters of the block at its end
             nb, nm, nt = inputs.n_basin, len(self.members), len(self.days)
@@ -241,8 +257,14 @@ class _Block:
 
     def updated_bounds(self) -> tuple[np.ndarray, np.ndarray]:
         nb, nm, nu = self.shape
-        return augmented_bounds(self.lower[:, self.upd].reshape(nb, nm, nu), self.upper[:, self.upd].reshape(nb, nm, nu),
-                                self.theta_low, self.theta_high)
+        lo, hi = augmented_bounds(self.lower[:, self.upd].reshape(nb, nm, nu),
+                                  self.upper[:, self.upd].reshape(nb, nm, nu), self.theta_low, self.theta_high)
+        if self.window is None or not self.window.size:
+            return lo, hi
+        ns = self.model.n_state
+        wlo, whi = self.window.bounds(self.lower.reshape(nb, nm, ns), self.upper.reshape(nb, nm, ns),
+                                      [c for _, c in self.write_cols])
+        return np.concatenate([lo, wlo], axis=-1), np.concatenate([hi, whi], axis=-1)
 
 
 # ---------------------------------------------------------------- one day
@@ -256,7 +278,7 @@ def step_day(blk: _Block, k: int, day: int) -> tuple[np.ndarray, np.ndarray | No
     q : (basin, member) float64, m3 s-1, predicted discharge
     added : (basin * member,) mm of water the state noise added, or None without noise
     """
-    blk.x, fluxes = blk.model.step(blk.x, {n: blk.forcing[n][k] for n in FORCINGS}, blk.prepared)
+    blk.x, fluxes = blk.model.step(blk.x, {n: f[k] for n, f in blk.forcing.items()}, blk.prepared)
     added = None
     if blk.noise:
         z = [pt.standard_normal(kk, day).reshape(-1) for kk in blk.noise_keys]
@@ -294,9 +316,15 @@ def analyse_day(blk: _Block, k: int, day: int, q: np.ndarray, record: bool) -> n
     # x is the model's fresh output: update its columns in place (it may be Fortran-ordered,
     # so work on the flat (batch, n_state) view, never on a reshaped copy)
     lo3, hi3 = blk.bounds
+    w = blk.window if blk.window is not None and blk.window.size else None
     xs, qa, theta_new, a = analyse(blk.x[:, blk.upd].reshape(nb, nm, nu), q, theta, r.observed[:, k],
-                                   r.variance[:, k], lo3, hi3, on, blk.settings)
+                                   r.variance[:, k], lo3, hi3, on, blk.settings, blk.inflation,
+                                   lagged=None if w is None else w.values)
     blk.x[:, blk.upd] = xs.reshape(nb * nm, nu)
+    if blk.inflation is not None:
+        blk.inflation = (a.inflation_mean, a.inflation_sd)
+    if w is not None:  # the lagged days, corrected by the same analysis: the last columns
+        w.values = np.ascontiguousarray(np.moveaxis(a.states[..., a.states.shape[-1] - w.values.shape[0]:], -1, 0))
     if blk.estimate:
         set_parameters(blk, theta_new)
     blk.used[:, k] = np.asarray(a.used).reshape(nb)
@@ -339,11 +367,13 @@ def record_day(blk: _Block, k: int, q: np.ndarray, qa: np.ndarray, added: np.nda
     if blk.settings.assimilate:
         blk.q_blk[:, k] = q
         blk.qa_blk[:, k] = qa
-    if not blk.collect or k < blk.k_out0:
+    if not blk.collect or k < blk.k_out0 or blk.settings.reanalysis:
         return
     k_o = k - blk.k_out0
     nb, nm, _ = blk.shape
     arrays = blk.arrays
+    if blk.inflation is not None:
+        arrays["inflation_mean"][:, k_o], arrays["inflation_sd"][:, k_o] = blk.inflation
     if not blk.settings.assimilate:
         arrays["discharge"][:, k_o] = q
     for p in blk.estimate:
@@ -352,6 +382,24 @@ def record_day(blk: _Block, k: int, q: np.ndarray, qa: np.ndarray, added: np.nda
         arrays[n][:, k_o] = blk.x[:, col].reshape(nb, nm)
     if added is not None:
         arrays["state_noise_water"][:, k_o] = added.reshape(nb, nm)
+
+
+def window_day(blk: _Block, k: int, day: int, qa: np.ndarray) -> None:
+    """Day ``k`` enters the smoother's window with its analysed discharge and recorded
+    states; in a reanalysis, the day leaving it is recorded with its final values."""
+    nb, nm, _ = blk.shape
+    w = blk.window
+    planes = np.empty((w.n_column, nb, nm))
+    planes[0] = qa
+    for j, (_, col) in enumerate(blk.write_cols):
+        planes[1 + j] = blk.x[:, col].reshape(nb, nm)
+    left, values = w.push(day, planes)
+    if values is None or not blk.settings.reanalysis or not blk.arrays:
+        return
+    i = left - int(blk.days[0]) - blk.emit0
+    if 0 <= i < blk.arrays["discharge"].shape[1]:
+        for j, name in enumerate(w.columns):
+            blk.arrays[name][:, i] = values[j]
 
 
 def snapshot(blk: _Block, k: int) -> None:
@@ -369,12 +417,18 @@ def run_day(blk: _Block, k: int, check_daily: bool) -> tuple | None:
     day = int(blk.days[k])
     q, added = step_day(blk, k, day)
     qa = q
-    if blk.settings.assimilate and blk.t0 + k >= blk.first_analysis and blk.readings.any_day[k]:
-        qa = analyse_day(blk, k, day, q, record=blk.collect and k >= blk.k_out0)
+    analysis_day = blk.settings.assimilate and blk.t0 + k >= blk.first_analysis
+    if analysis_day and blk.inflation is not None:
+        # Anderson (2009): the inflation is damped toward 1 before each day's analysis
+        blk.inflation = (damp_inflation(blk.inflation[0], blk.settings.adaptive_damping), blk.inflation[1])
+    if analysis_day and blk.readings.any_day[k]:
+        qa = analyse_day(blk, k, day, q, record=blk.collect and k >= blk.k_out0 and not blk.settings.reanalysis)
     bad = check_finite(blk, k, day, q, check_daily)
     if bad is not None:
         return bad
     record_day(blk, k, q, qa, added)
+    if blk.window is not None:
+        window_day(blk, k, day, qa)
     snapshot(blk, k)
     return None
 
@@ -404,16 +458,31 @@ def finish_block(blk: _Block, collapse: np.ndarray) -> tuple[np.ndarray, np.ndar
     low_spread = has & (spread_b[:, a_days] < s.collapse_ratio * r.sd[:, a_days])
     collapse, collapse_first = collapse_counts(collapse, has, low_spread, blk.days[a_days], s.collapse_days)
     arrays, k0 = blk.arrays, blk.k_out0
-    if arrays:
+    if arrays and not s.reanalysis:
         arrays["obs_status"][:] = np.where(blk.used, OBS_USED, np.where(blk.gated, OBS_GATED, r.status))[:, k0:]
         arrays["discharge"][:] = blk.q_blk[:, k0:]
         arrays["discharge_analysis"][:] = blk.qa_blk[:, k0:]
         arrays["spread_before"][:] = spread_b[:, k0:]
         arrays["spread_after"][:] = member_sd(blk.qa_blk[:, k0:])
+        arrays["innovation_analysis"][:], arrays["obs_error_variance"][:] = desroziers_series(
+            r.observed[:, k0:], r.variance[:, k0:], blk.qa_blk[:, k0:], blk.used[:, k0:], s)
     return n_used, n_gated, collapse, collapse_first
 
 
 # ---------------------------------------------------------------- one task
+
+
+def initial_inflation(state: EnsembleState, settings: Settings) -> tuple[np.ndarray, np.ndarray] | None:
+    """The adaptive inflation (mean, sd) a block starts from: the state's, else the settings'
+    initial values; None when adaptive inflation is off."""
+    if not settings.adaptive_inflation:
+        return None
+    nb = state.states.shape[0]
+    if state.inflation_mean is not None:
+        return (np.array(state.inflation_mean, dtype=np.float64), np.array(state.inflation_sd, dtype=np.float64))
+    opts = adaptive_options(settings)
+    return np.full(nb, opts.initial_mean), np.full(nb, opts.initial_sd)
+
 
 
 def advance(
@@ -495,13 +564,26 @@ def _advance(model, inputs, state, settings, t0, t1, members, first_output, firs
     k_out0 = out_idx[0] if out_idx else nt
     n_out = len(out_idx) if collect else 0
     noisy = bool(pt.StateNoise.from_names(s.state_noise, list(model.state_names)))
+    window, emit0 = None, 0
+    if s.keeps_window and issue_index is None:  # (a hindcast's forecasts never read the window)
+        columns = window_columns(s.write_states)
+        window = Window.from_state(state.window, state.window_days, s.smoother_window, columns, nb, nm)
+    if s.reanalysis:  # a reanalysis records the days leaving the window
+        emit0, n_emit = emitted_days(nt, s.smoother_window, first_output)
+        odt = np.float32 if s.float32 else np.float64
+        arrays = {n: np.empty((nb, n_emit, nm), dtype=odt) for n in window_columns(s.write_states)} \
+            if collect and n_emit else {}
+    else:
+        arrays = allocate_outputs(model, s, readings, nb, nm, k_out0, n_out, noisy)
     blk = _Block(
         model, s, inputs, members, t0, days,
         x=np.array(state.states, dtype=np.float64).reshape(nb * nm, model.n_state),
         params=params, prepared=prepared, lower=lower, upper=upper, forcing=forcing, log_err=log_err,
-        readings=readings, arrays=allocate_outputs(model, s, readings, nb, nm, k_out0, n_out, noisy),
+        readings=readings, arrays=arrays,
         k_out0=k_out0, first_analysis=first_analysis, collect=collect,
         issues=set() if issue_index is None else {int(i) for i in issue_index},
+        inflation=initial_inflation(state, s) if s.assimilate else None,
+        window=window, emit0=emit0,
     )
     n_used = np.zeros(nb, dtype=np.int64)
     n_gated = np.zeros(nb, dtype=np.int64)
@@ -525,12 +607,17 @@ def _advance(model, inputs, state, settings, t0, t1, members, first_output, firs
             return BlockResult({}, state, None, n_used, n_gated, collapse_first, first_bad=bad)
     if s.assimilate and nt:
         n_used, n_gated, collapse, collapse_first = finish_block(blk, collapse)
+    win, win_days = (None, None) if window is None else window.to_state()
     end = EnsembleState(
         day=int(days[-1]) if nt else state.day,
         states=blk.x.reshape(nb, nm, model.n_state).copy(),
         parameters=blk.params,
         ar1=end_ar1,
         collapse_days=collapse,
+        inflation_mean=None if blk.inflation is None else blk.inflation[0].copy(),
+        inflation_sd=None if blk.inflation is None else blk.inflation[1].copy(),
+        window=win,
+        window_days=win_days,
     )
     hind = None
     if blk.snaps:

@@ -3,11 +3,12 @@
 Time is cut into blocks (``ensemble.time_block_days``); within a block, each basin chunk
 (and, where members are independent, each member chunk) is one task that advances its part
 of the ensemble over the block (:func:`assim.engine.block.advance`) and returns the block's
-outputs. Each chunk is pinned to a worker lane (:mod:`assim.parallel`) where its state stays
-from one block to the next; the last block returns the end state. The main thread joins the
-chunks of each block and hands it to the sink while the lanes compute the next blocks (at
-most two blocks in flight), so memory stays flat and the results do not depend on the
-chunking or the scheduler.
+outputs. A chunk's state stays in the process that computes it from one block to the next
+(:mod:`assim.parallel`: dask's threaded scheduler, or a lane per chunk for worker
+processes); the last block returns the end state. The main thread joins the chunks of each
+block and hands it to the sink while the next block is computed (at most two blocks in
+flight), so memory stays flat and the results do not depend on the chunking or the
+scheduler.
 """
 
 from __future__ import annotations
@@ -24,7 +25,16 @@ from assim.engine.diagnostics import health_warnings
 from assim.engine.forecast import issue_indices
 from assim.engine.initial import fixed_parameters, initial_ensemble
 from assim.engine.outputs import reduce_members
-from assim.engine.records import BlockResult, EnsembleState, Inputs, Plan, RunSummary, Settings
+from assim.engine.records import (
+    BlockResult,
+    EnsembleState,
+    Inputs,
+    Plan,
+    RunSummary,
+    Settings,
+    forcing_names,
+)
+from assim.engine.window import held_arrays, window_columns
 from assim.errors import RunError
 from assim.models.base import Model
 
@@ -75,12 +85,13 @@ def _merge(results: list[list[BlockResult]]) -> BlockResult:
 
 
 def _chunk_task(args, store) -> BlockResult:
-    """One chunk over one time block, on the chunk's lane (see :mod:`assim.parallel`).
+    """One chunk over one time block (see :mod:`assim.parallel`).
 
     The first block of a chunk brings its model and state; later blocks take the model and
-    the end state the previous block left in the lane's ``store``, with the prepared
+    the end state the previous block left in the ``store``, with the prepared
     parameters (fixed when no parameter is estimated). The result carries the end state only after the last block (or
-    a failure); otherwise the state stays in the store."""
+    a failure); otherwise the state stays in the store (one per process: for the threads
+    scheduler, any thread may take the chunk's next block)."""
     key, model, inputs, state, settings, t1, kwargs, last, whole_members = args
     if state is None:
         state = store.pop(key)
@@ -120,9 +131,11 @@ def run(
     ----------
     model : the model of every basin
     inputs : :class:`Inputs`
-    settings : :class:`Settings` (``mode`` "openloop" or "assimilate")
+    settings : :class:`Settings` (``mode`` "openloop", "assimilate" or "reanalysis")
     sink : object with ``write_block(start, arrays)`` (run outputs; ``start`` counts the
-        output days of :attr:`Plan.output_slice`) and, for hindcasts,
+        output days of :attr:`Plan.output_slice`; a reanalysis writes each day when it
+        leaves the smoother's window, W days later, and the last W days after the last
+        block, so its ``start`` may be negative when a run is continued) and, for hindcasts,
         ``write_issues(start, discharge)`` with discharge (basin, issue, lead, member) m3 s-1;
         None keeps nothing (the end state is still returned)
     state : the ensemble to continue from (a restart); None starts a new run
@@ -138,9 +151,19 @@ def run(
     Raises
     ------
     RunError
-        when a state becomes NaN or infinite (naming the basin, the day and the state), or
-        the days asked for are outside the inputs.
+        when a state becomes NaN or infinite (naming the basin, the day and the state), the
+        days asked for are outside the inputs, or ``state`` lacks the AR(1) error of a
+        forcing the model takes.
+    ValueError
+        when ``inputs`` lack a forcing the model takes (:func:`forcing_names`).
     """
+    names = forcing_names(model)
+    lacking = [n for n in names if getattr(inputs, n) is None]
+    if lacking:
+        raise ValueError(f"model {model.name!r} takes the forcing {lacking[0]!r}, which the inputs lack")
+    if state is not None and set(state.ar1) != set(names):
+        raise RunError(f"the ensemble carries forcing errors of {sorted(state.ar1)}, model {model.name} takes "
+                       f"{sorted(names)}", variable="ar1")
     if state is None:
         state = initial_ensemble(model, inputs, settings)
     p = plan(inputs, settings, state, until_day)
@@ -168,7 +191,7 @@ def run(
     issue_done = 0
 
     def submit_block(ex, j):
-        """Submit the tasks of block ``j``, one per chunk on the chunk's lane."""
+        """Submit the tasks of block ``j``, one per chunk (:meth:`assim.parallel._Executor.submit_block`)."""
         t, t1 = blocks[j]
         # each task gets the days of its block only (and the leads after it), indices shifted
         end = min(len(inputs.days), t1 + (hindcast[1] if hindcast is not None else 0))
@@ -178,20 +201,19 @@ def run(
             blk = issues[(issues >= t) & (issues < t1)]
             kwargs.update(issue_index=blk - t, leads=hindcast[1], forecast_forcing=hindcast[2])
         last = j == len(blocks) - 1
-        first = j == 0  # the model and the state go to a chunk's lane once
-        return [ex.submit_to(ci, ci, _chunk_task,
-                             (ci, model if first else None, sub_inputs[bi].days_slice(t, end),
-                              state.subset(b, m) if first else None, settings, t1 - t,
-                              dict(kwargs, members=members[m]), last, len(m_chunks) == 1))
-                for ci, (bi, b, mi, m) in enumerate(chunks)]
+        first = j == 0  # the model and the state go out once per chunk
+        return ex.submit_block(_chunk_task, [
+            (ci, model if first else None, sub_inputs[bi].days_slice(t, end), state.subset(b, m) if first else None,
+             settings, t1 - t, dict(kwargs, members=members[m]), last, len(m_chunks) == 1)
+            for ci, (bi, b, mi, m) in enumerate(chunks)])
 
     with parallel.executor(settings.scheduler, settings.workers) as ex:
-        # Every lane gets its chunks' next block before it finishes the current one; the main
-        # thread meanwhile joins and writes the finished block. Two blocks in flight bound memory.
+        # The next block is submitted before the current one is joined and written by the main
+        # thread; two blocks in flight bound memory.
         ahead = 2
         pending = [submit_block(ex, j) for j in range(min(ahead, len(blocks)))]
         for j, (t, t1) in enumerate(blocks):
-            flat_results = [f.result() for f in pending.pop(0)]
+            flat_results = pending.pop(0).result()
             bad = [r.first_bad for r in flat_results if r.first_bad is not None]
             if bad:
                 basin, day, var = min(bad, key=lambda x: x[1])
@@ -204,10 +226,12 @@ def run(
             merged = _merge(grid)
             if merged.state is not None:  # the last block brings the end state back
                 state = merged.state
-            if len(m_chunks) > 1 and merged.arrays:  # else reduced in the lanes
+            if len(m_chunks) > 1 and merged.arrays:  # else reduced in the chunk tasks
                 merged.arrays = reduce_members(merged.arrays, settings)
             if sink is not None and merged.arrays:
-                sink.write_block(max(t, out0) - out0, merged.arrays)
+                # a reanalysis records the days that left the smoother's window in the block
+                first = max(t - settings.smoother_window, p.first_output) if settings.reanalysis else max(t, out0)
+                sink.write_block(first - out0, merged.arrays)
             if merged.hindcast is not None and sink is not None:
                 sink.write_issues(issue_done, merged.hindcast)
                 issue_done += merged.hindcast.shape[1]
@@ -217,5 +241,12 @@ def run(
                                       merged.collapse_first, first_collapse)
             if progress is not None:
                 progress(t1 - p.start, total)
+    if settings.reanalysis and sink is not None and hindcast is None:
+        # the last days never leave the window: recorded as the window holds them
+        held = held_arrays(state.window, state.window_days, window_columns(settings.write_states),
+                           int(inputs.days[p.first_output]) if p.first_output < len(inputs.days) else 2**62,
+                           np.float32 if settings.float32 else np.float64)
+        if held is not None:
+            sink.write_block(held[0] - int(inputs.days[0]) - out0, held[1])
     warns = health_warnings(inputs.basin_ids, n_used, n_gated, first_collapse, settings)
     return RunSummary(state, warns, n_used, n_gated, first_collapse, p)

@@ -13,6 +13,7 @@ import numpy as np
 
 from assim import perturb as pt
 from assim.engine.analysis import _transform as _transform_of_settings
+from assim.engine.analysis import desroziers_series
 from assim.errors import ConfigError
 
 
@@ -26,6 +27,10 @@ def kernel_choice(model, settings) -> str | None:
         return "perturbation.state_noise is set"
     if settings.estimate:
         return "filter.parameters.estimate is set"
+    if settings.adaptive_inflation:
+        return "filter.inflation.adaptive is enabled"
+    if settings.keeps_window:
+        return "the fixed-lag smoother (filter.smoother.window_days > 0, or --mode reanalysis) runs on numpy"
     return None
 
 
@@ -120,6 +125,8 @@ def advance(model, inputs, state, settings, t0, t1, *, members, first_output, fi
         if n_out:
             arrays["innovation"] = out["innovation"][:, k_out0:].copy()
             arrays["innovation_variance"] = out["innovation_variance"][:, k_out0:].copy()
+            arrays["innovation_analysis"], arrays["obs_error_variance"] = desroziers_series(
+                obs_blk[:, k_out0:], var_blk[:, k_out0:], qa_blk[:, k_out0:], used_blk[:, k_out0:], s)
             arrays["spread_before"] = spread_b[:, k_out0:].copy()
             arrays["spread_after"] = out["spread_after"][:, k_out0:].copy()
             arrays["observed_discharge"] = obs_blk[:, k_out0:].copy()

@@ -7,7 +7,7 @@ from collections.abc import Mapping
 import numpy as np
 
 from assim import perturb as pt
-from assim.engine.records import EnsembleState, Inputs, Settings
+from assim.engine.records import EnsembleState, Inputs, Settings, forcing_names
 from assim.models.base import Model
 
 
@@ -19,7 +19,7 @@ def initial_ensemble(model: Model, inputs: Inputs, settings: Settings) -> Ensemb
     """The ensemble before the first day of ``inputs``.
 
     Members get their parameters (:func:`assim.perturb.perturb_parameters`), the model's
-    initial state, and AR(1) log errors drawn from the stationary distribution on the day
+    initial state, and AR(1) errors of each forcing (:func:`forcing_names`) drawn from the stationary distribution on the day
     before the first (so the first day's errors are already stationary).
 
     Returns
@@ -36,8 +36,8 @@ def initial_ensemble(model: Model, inputs: Inputs, settings: Settings) -> Ensemb
     states = np.asarray(model.initial_state(flat), dtype=np.float64).reshape(b, m, model.n_state)
     day0 = int(inputs.days[0]) - 1
     ar1 = {
-        name: pt.standard_normal(pt.counter_keys(settings.seed, inputs.keys, members, stream), day0)
-        for name, stream in (("precipitation", pt.PRECIPITATION), ("pet", pt.PET))
+        name: pt.standard_normal(pt.counter_keys(settings.seed, inputs.keys, members, pt.FORCING_STREAMS[name]), day0)
+        for name in forcing_names(model)
     }
     return EnsembleState(day0, states, params, ar1, np.zeros(b, dtype=np.int64))
 

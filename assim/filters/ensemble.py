@@ -90,7 +90,12 @@ from dataclasses import dataclass
 import numpy as np
 
 from assim.errors import InputError
-from assim.filters.inflation import Inflation, relax_to_prior_perturbations, rtps_factor
+from assim.filters.inflation import (
+    Inflation,
+    relax_to_prior_perturbations,
+    rtps_factor,
+    update_inflation,
+)
 from assim.filters.obs import Transform
 
 __all__ = ["METHODS", "Analysis", "ensemble_update"]
@@ -135,6 +140,9 @@ class Analysis:
         where members were raised to a lower bound, negative where lowered to an upper bound.
     updated : (...) bool
         Basins whose states were changed (at least one observation used).
+    inflation_mean, inflation_sd : (...) float64 or None
+        Adaptive inflation (a factor on the prior variance) after this analysis's update,
+        the factor applied; None without adaptive inflation.
     """
 
     states: np.ndarray
@@ -149,6 +157,8 @@ class Analysis:
     invalid: np.ndarray
     clipped: np.ndarray
     updated: np.ndarray
+    inflation_mean: np.ndarray | None = None
+    inflation_sd: np.ndarray | None = None
 
     @property
     def clipped_total(self) -> np.ndarray:
@@ -350,6 +360,30 @@ def _variance_of(a: np.ndarray, rows: np.ndarray) -> np.ndarray:
 
 
 # --- stage 2: observation space, screening (gate) and whitening ---------------------------
+#
+# The inflation factor g on the perturbations is a number, or with adaptive inflation one
+# factor per basin, a (B, 1) array, which broadcasts against (B, m) and (B, n) quantities;
+# ``_g3`` gives it the shape (B, 1, 1) for (B, m, N) and (B, m, n) ones.
+
+
+def _g3(gamma):
+    """The inflation factor for (B, k, l) arrays: the number, or (B, 1, 1)."""
+    return gamma if np.ndim(gamma) == 0 else gamma[:, :, None]
+
+
+def _is_one(gamma) -> bool:
+    return np.ndim(gamma) == 0 and gamma == 1.0
+
+
+def _adapt(infl, state, innovation, var_y, r2, used_prior, gamma0):
+    """Adaptive inflation (:func:`assim.filters.inflation.update_inflation`) of each basin by
+    its observations in turn; returns the updated (mean, sd) (B,) and the factor on the
+    perturbations g (B, 1), ``multiplicative * sqrt(mean)``."""
+    mean, sd = state
+    for j in range(innovation.shape[1]):  # (over the observations of a basin, usually one)
+        mean, sd = update_inflation(mean, sd, innovation[:, j], gamma0**2 * var_y[:, j], r2[:, j],
+                                    infl.adaptive, use=used_prior[:, j])
+    return mean, sd, (gamma0 * np.sqrt(mean))[:, None]
 
 
 def _predicted(Y2, y2, r2, gamma, Yp, ones):
@@ -399,7 +433,7 @@ def _whiten(Yp, var_y, innovation, r2, used, all_used, gamma):
         dw = np.where(used, innovation, 0.0) * s
         a = np.where(used, var_y, 0.0) * (s * s)
     Yp *= s[:, :, None]
-    if gamma != 1.0:
+    if not _is_one(gamma):
         a = gamma**2 * a
     return s, dw, a
 
@@ -437,10 +471,10 @@ def _scalar_weights(method, Yp, dw, a, z, gamma, U, ones):
     if method == "enkf":
         # Burgers et al. (1998): w_i = g^2 (a + 1)^-1 (d + z_i - g y'_i) = f u_i
         f = gamma**2 / (1.0 + a)
-        if gamma == 1.0:
+        if _is_one(gamma):
             u = np.subtract(z, Yp, out=U)
         else:
-            u = np.multiply(Yp, -gamma, out=U)
+            u = np.multiply(Yp, -_g3(gamma), out=U)
             u += z
         u += dw[:, :, None]
         usum = np.vecdot(u, ones)
@@ -488,7 +522,8 @@ def _matrix_weights(method, Yp, dw, z, gamma, U, s, ybar, y2, used):
     buffer for the centred weights W' contracted with the states (enkf, eakf), else None.
     Returns W, wbar (B, m) and what :func:`_matrix_terms` needs."""
     B, m, N = Yp.shape
-    A = gamma**2 * np.einsum("bmi,bki->bmk", Yp, Yp) / (N - 1)
+    g3 = _g3(gamma)
+    A = g3**2 * np.einsum("bmi,bki->bmk", Yp, Yp) / (N - 1)
     if method == "eakf":
         ybar_w = np.where(used, ybar, 0.0) * s
         y_w = np.where(used, y2, 0.0) * s
@@ -498,8 +533,8 @@ def _matrix_weights(method, Yp, dw, z, gamma, U, s, ybar, y2, used):
         np.subtract(W, wbar[:, :, None], out=U)
         return W, wbar, (A, None, inv_var, W)
     if method == "enkf":
-        rhs = dw[:, :, None] + z - gamma * Yp
-        W = gamma**2 * np.linalg.solve(A + np.eye(m), rhs)  # Burgers et al. (1998)
+        rhs = dw[:, :, None] + z - g3 * Yp
+        W = g3**2 * np.linalg.solve(A + np.eye(m), rhs)  # Burgers et al. (1998)
         wbar = np.add.reduce(W, axis=2) / N
         np.subtract(W, wbar[:, :, None], out=U)
         return W, wbar, (A, None, None, None)
@@ -507,7 +542,7 @@ def _matrix_weights(method, Yp, dw, z, gamma, U, s, ybar, y2, used):
     Vt = np.swapaxes(V, 1, 2)
     inv = (V / (1.0 + lam)[:, None, :]) @ Vt
     wbar = gamma**2 * np.einsum("bjl,bl->bj", inv, dw)  # Hunt et al. (2007), eq. 20
-    P = gamma**3 * ((V * _sqrt_weight(lam)[:, None, :]) @ Vt)
+    P = g3**3 * ((V * _sqrt_weight(lam)[:, None, :]) @ Vt)
     return wbar[:, :, None] + P @ Yp, wbar, (A, P, None, None)  # Hunt et al. (2007), eq. 24
 
 
@@ -518,11 +553,11 @@ def _matrix_terms(method, N, sums, Ct, xbar, U, Yp, terms, gamma):
     m = Ct.shape[1]
     if P is not None:
         # W' = P Y', so W' X' = (N - 1) P C^T and W' W'^T = (N - 1) P A P / g^2.
-        return Ct, (N - 1) * (P @ Ct), ((N - 1) / gamma**2) * (P @ A @ P), None
+        return Ct, (N - 1) * (P @ Ct), ((N - 1) / _g3(gamma) ** 2) * (P @ A @ P), None
     if inv_var is not None:
         # The serial adjustment's "cross-covariance" is its regression coefficients; the
         # prior states enter inflated, X_1 = xbar + g X'.
-        Ct = _eakf_regression(gamma * Ct, DY, Yp, inv_var)
+        Ct = _eakf_regression(_g3(gamma) * Ct, DY, Yp, inv_var)
     WX = sums[:, 1 + m :] - U.sum(axis=2)[:, :, None] * xbar[:, None, :]
     return Ct, WX, np.einsum("bmi,bki->bmk", U, U), None
 
@@ -537,7 +572,7 @@ def _eakf_observation_space(Ypw, ybar_w, y_w, used, gamma):
     states follow by regression on YP (see :func:`_eakf_regression`), so they are read once
     for all observations instead of once per observation."""
     B, m, N = Ypw.shape
-    Y = ybar_w[:, :, None] + gamma * Ypw
+    Y = ybar_w[:, :, None] + _g3(gamma) * Ypw
     DY = np.zeros((B, m, N))
     YP = np.empty((B, m, N))
     inv_var = np.zeros((B, m))
@@ -604,7 +639,7 @@ def _moments(Ct, WX, WtW, wbar, xbar_u, var_u, gamma, N):
     """Analysis mean and variance (B, n_u) from small quantities, X'a = g X' + W'^T C^T:
     sum X'a^2 = g^2 sum X'^2 + 2 g C (W'X') + C (W'W'^T) C^T."""
     WtWC = WtW * Ct if Ct.shape[1] == 1 else WtW @ Ct
-    var_a = ((gamma**2 * (N - 1)) * var_u + _per_obs_sum(Ct * ((2.0 * gamma) * WX + WtWC))) / (
+    var_a = ((gamma**2 * (N - 1)) * var_u + _per_obs_sum(Ct * ((2.0 * _g3(gamma)) * WX + WtWC))) / (
         N - 1
     )
     mean_a = xbar_u + _per_obs_sum(wbar[:, :, None] * Ct)
@@ -714,11 +749,15 @@ def _update(Xw, u, f, Ct, var_u, var_a, mean_a, xbar_u, gamma, rtps, planes):
             work = _write(Xw, u, K / G[:, None, :], planes, G, c)
         else:
             work = _write(_per_column(G, planes) * Xw, u, K, planes, None, c)
-    elif gamma == 1.0:
+    elif _is_one(gamma):
         work = _write(Xw, u, K, planes)
-    else:
+    elif np.ndim(gamma) == 0:
         # G = gamma everywhere: (X + u K^T / g) g + (1 - g) xbar
         work = _write(Xw, u, K / gamma, planes, gamma, (1.0 - gamma) * xbar_u)
+    else:
+        # one factor per basin, G (B, n_u) (adaptive inflation)
+        G = np.broadcast_to(gamma, xbar_u.shape)
+        work = _write(Xw, u, K / gamma[:, :, None], planes, G, (1.0 - G) * xbar_u)
     return (work.transpose(1, 2, 0) if planes else work), var_a, scale
 
 
@@ -840,7 +879,7 @@ def _spread_after(out, var_b, var_a, cols, active, all_active, redo):
 
 
 def _result(out, innovation, innovation_variance, var_y, var_b, var_after, used, gated, missing,
-            invalid, clipped, active, all_used, shape, yshape):
+            invalid, clipped, active, all_used, shape, yshape, adapted=None):
     """The :class:`Analysis`, reshaped to the caller's batch."""
     if not all_used:
         bad = missing | ~np.isfinite(innovation)
@@ -860,6 +899,8 @@ def _result(out, innovation, innovation_variance, var_y, var_b, var_after, used,
         invalid=invalid.reshape(yshape),
         clipped=clipped.reshape(state_shape),
         updated=active.reshape(shape[:-2]),
+        inflation_mean=None if adapted is None else adapted[0].reshape(shape[:-2]),
+        inflation_sd=None if adapted is None else adapted[1].reshape(shape[:-2]),
     )
 
 
@@ -882,6 +923,7 @@ def ensemble_update(
     transform: Transform | None = None,
     obs_noise=None,
     centre_noise: bool = True,
+    inflation_state=None,
 ) -> Analysis:
     """One ensemble Kalman analysis for every basin of a batch.
 
@@ -919,6 +961,12 @@ def ensemble_update(
         so that a caller can make them depend only on (seed, basin, member, day).
     centre_noise : bool
         Remove the member mean of the ``enkf`` perturbations per basin and observation.
+    inflation_state : ((...) float64, (...) float64), optional
+        Prior mean and sd of each basin's adaptive inflation (already damped), needed when
+        ``inflation.adaptive`` is set: the inflation is first updated by the basin's
+        observations (those present, usable and within the gate at the prior inflation),
+        then the prior perturbations are multiplied by ``multiplicative * sqrt(mean)``; the
+        update is returned in :attr:`Analysis.inflation_mean` and ``inflation_sd``.
 
     Returns
     -------
@@ -930,7 +978,8 @@ def ensemble_update(
     ------
     InputError
         Shapes that do not fit, an unknown method, ``enkf`` without ``rng`` or
-        ``obs_noise``, or a non-positive ``obs_variance`` at a present reading.
+        ``obs_noise``, a non-positive ``obs_variance`` at a present reading, or adaptive
+        inflation without ``inflation_state``.
     """
     X2, Y2, y2, r2, missing, cols, noise, shape, yshape = _prepare(
         states, predicted, observed, obs_variance, method, rng, update_mask, transform, obs_noise
@@ -961,6 +1010,19 @@ def ensemble_update(
     # Observation space, screening, whitening.
     ybar, var_y, innovation, innovation_variance = _predicted(Y2, y2, r2, gamma, Yp, ones)
     xsq, states_ok = _squares(X2, XT, cols)
+    adapted = None
+    if infl.adaptive is not None:
+        if inflation_state is None:
+            _fail("adaptive inflation needs the prior inflation mean and sd of each basin",
+                  "inflation_state")
+        prior = tuple(np.broadcast_to(np.asarray(v, dtype=np.float64), shape[:-2]).reshape(B)
+                      for v in inflation_state)
+        # the readings that inform the inflation: usable and within the gate at its prior
+        prior_variance = gamma**2 * prior[0][:, None] * var_y + r2
+        used_prior, _, _ = _screen(missing, innovation, var_y, prior_variance, states_ok, gate_sigma)
+        mean_u, sd_u, gamma = _adapt(infl, prior, innovation, var_y, r2, used_prior, gamma)
+        adapted = (mean_u, sd_u)
+        innovation_variance = gamma**2 * var_y + r2
     used, gated, invalid = _screen(missing, innovation, var_y, innovation_variance, states_ok,
                                    gate_sigma)
     active = used[:, 0] if m == 1 else np.logical_or.reduce(used, axis=1)
@@ -1011,7 +1073,8 @@ def ensemble_update(
         Xw = X2 if full else X2[:, :, cols]
     Xa, var_a, scale = _update(Xw, u, f, Ct, var_u, var_a, mean_a, xbar, gamma, infl.rtps, planes)
     if infl.rtps > 0.0 and lost.any():
-        _redo_rtps(Xa, lost, scale, gamma * np.sqrt(var_u[lost]), infl.rtps)
+        g_lost = gamma if np.ndim(gamma) == 0 else gamma[lost]
+        _redo_rtps(Xa, lost, scale, g_lost * np.sqrt(var_u[lost]), infl.rtps)
 
     # Bounds, restore, spread after, result.
     clipped, outside = _clip_to_bounds(Xa, lower, upper, cols, shape, active)
@@ -1019,4 +1082,4 @@ def ensemble_update(
     redo = lost if outside is None else outside | lost
     var_after = _spread_after(out, var_b, var_a, cols, active, all_active, redo)
     return _result(out, innovation, innovation_variance, var_y, var_b, var_after, used, gated,
-                   missing, invalid, clipped, active, all_used, shape, yshape)
+                   missing, invalid, clipped, active, all_used, shape, yshape, adapted)

@@ -41,6 +41,9 @@ from assim.units import CANONICAL, canonical_unit
 FORCING_FILE = "forcing.nc"
 OBSERVATIONS_FILE = "observations.nc"
 BASINS_FILE = "basins.nc"
+#: What the layer was made from (the raw files' lengths and digests, the last day prepared,
+#: what quality control of later readings needs), for `assim prep` to append new days.
+RECORD_FILE = "prep-record.json"
 
 
 # Bit flags of gauge readings and of daily values (observations.nc ``qc_flag``). A day's flag

@@ -166,7 +166,8 @@ class _StreamedFile:
 
 
 class RunWriter(_StreamedFile):
-    """Sink of an open-loop or assimilation run: ``openloop.nc`` or ``analysis.nc``.
+    """Sink of an open-loop, assimilation or reanalysis run: ``openloop.nc``,
+    ``analysis.nc`` or ``reanalysis.nc``.
 
     Parameters
     ----------
@@ -174,13 +175,17 @@ class RunWriter(_StreamedFile):
     basins : basin ids
     days : (time,) int, the output days (after spin-up), days since 1970-01-01
     members : number of members
-    mode : "openloop" or "assimilate"
+    mode : "openloop", "assimilate" or "reanalysis" (``reanalysis.nc``: the fixed-lag
+        smoothed ``discharge`` and states, members only; a day is written when it leaves the
+        smoother's window, so ``start`` may come back to earlier days)
     state_names : states written per member
     parameter_names : estimated parameters whose trajectories are written (joint estimation)
     quantiles : write ``discharge_quantile`` at these probabilities instead of members
     float32 : float32 and zlib compression for ensemble values
     time_chunk : days per NetCDF chunk along time
     state_noise : write ``state_noise_water`` (basin, time), mm (runs with additive state noise)
+    adaptive_inflation : write ``inflation_mean`` and ``inflation_sd`` (basin, time), the
+        adaptive inflation after each day's analysis
     earlier : a product of the same run ending the day before ``days[0]`` (a run being
         continued from its restart); its days are copied in front, block by block, and
         ``write_block`` indices count from the first of ``days``
@@ -209,12 +214,14 @@ class RunWriter(_StreamedFile):
         float32: bool = True,
         time_chunk: int = 365,
         state_noise: bool = False,
+        adaptive_inflation: bool = False,
         earlier: str | os.PathLike | None = None,
         attrs: Mapping[str, str] | None = None,
         commit=None,
     ):
         super().__init__(path, float32=float32, commit=commit)
         self.state_noise = bool(state_noise)
+        self.adaptive_inflation = bool(adaptive_inflation)
         self.earlier = None if earlier is None else Path(earlier)
         self.offset = 0
         if self.earlier is not None:
@@ -239,10 +246,15 @@ class RunWriter(_StreamedFile):
     def assimilate(self) -> bool:
         return self.mode == "assimilate"
 
+    @property
+    def reanalysis(self) -> bool:
+        return self.mode == "reanalysis"
+
     def _define(self):
         nc = self.nc
         nb, nt = len(self.basins), len(self.days)
-        title = "ensemble assimilation run" if self.assimilate else "ensemble open-loop run"
+        title = ("ensemble reanalysis (fixed-lag smoother)" if self.reanalysis else
+                 "ensemble assimilation run" if self.assimilate else "ensemble open-loop run")
         nc.setncatts(global_attributes(title, **self.attrs))
         nc.createDimension("basin", nb)
         nc.createDimension("time", nt)
@@ -272,10 +284,12 @@ class RunWriter(_StreamedFile):
                 ens_dims,
                 chunks,
                 {**DISCHARGE_ATTRS, **DAILY_MEAN,
-                 "long_name": "discharge after the day's update" if self.assimilate else "simulated discharge"},
+                 "long_name": "discharge after the day's update" if self.assimilate else
+                 "smoothed discharge (fixed-lag smoother)" if self.reanalysis else "simulated discharge"},
             )
             for s in self.state_names:
-                when = "after the update" if self.assimilate else "at the end of the day"
+                when = ("after the update" if self.assimilate else "smoothed (fixed-lag smoother)" if self.reanalysis
+                        else "at the end of the day")
                 self._float_var(s, ens_dims, chunks,
                                 {"units": self.state_units.get(s, "mm"), "long_name": f"model state {s} {when}"})
             for p in self.parameter_names:
@@ -313,6 +327,26 @@ class RunWriter(_StreamedFile):
             self._float_var("clipped_water", d2, diag_chunks,
                             {"units": "mm", "long_name": "water added (positive) or removed by clipping states "
                              "to their bounds after the update, ensemble mean"}, ensemble=False)
+            self._float_var("innovation_analysis", d2, diag_chunks,
+                            {"long_name": "observed minus mean analysed discharge, in assimilation space "
+                             "(NaN when no reading was used)"}, ensemble=False)
+            self._float_var("obs_error_variance", d2, diag_chunks,
+                            {"long_name": "observation error variance R used by the analysis, in assimilation "
+                             "space (NaN when no reading was used)"}, ensemble=False)
+            if self.adaptive_inflation:
+                for name, what in (("inflation_mean", "mean"), ("inflation_sd", "standard deviation")):
+                    self._float_var(name, d2, diag_chunks,
+                                    {"units": "1", "long_name": f"{what} of the adaptive prior inflation (factor on "
+                                     "the prior variance, Anderson 2009) after the day's analysis"}, ensemble=False)
+            from assim.filters.consistency import STATISTICS
+
+            for name, ln in STATISTICS.items():
+                if name == "innovation_count":
+                    v = self.nc.createVariable(name, "i4", ("basin",))
+                    v.setncatts({"long_name": ln, "units": "1"})
+                else:
+                    v = self.nc.createVariable(name, "f8", ("basin",), fill_value=np.nan)
+                    v.setncatts({"long_name": ln + " (over the run, in assimilation space)"})
         if self.state_noise:
             self._float_var("state_noise_water", ("basin", "time"), diag_chunks,
                             {"units": "mm", "long_name": "water added by the additive state noise, ensemble mean"},
@@ -342,6 +376,9 @@ class RunWriter(_StreamedFile):
 
     def _write_block(self, start: int, arrays: Mapping[str, np.ndarray]) -> None:
         start += self.offset
+        if start < 0:  # days before the file (a reanalysis continued without its earlier days)
+            arrays = {k: np.asarray(v)[:, -start:] for k, v in arrays.items()}
+            start = 0
         n = None
         names = _ANALYSIS_NAMES if self.assimilate else {}
         for name, values in arrays.items():
@@ -362,6 +399,20 @@ class RunWriter(_StreamedFile):
         """Global attributes known only at the end (diagnostics, warnings)."""
         with _NC_LOCK:
             self.nc.setncatts(attribute_values(attrs))
+
+    def write_innovation_statistics(self) -> None:
+        """Per-basin innovation statistics over every day of the file
+        (:func:`assim.filters.consistency.innovation_statistics`), from the daily diagnostics
+        written (a continued run's earlier days included). Assimilation runs only."""
+        if not self.assimilate:
+            return
+        from assim.filters.consistency import innovation_statistics
+
+        with _NC_LOCK:
+            series = [np.ma.filled(self.nc.variables[n][:, :self.written].astype(np.float64), np.nan)
+                      for n in ("innovation", "innovation_variance", "innovation_analysis", "obs_error_variance")]
+            for name, values in innovation_statistics(*series).items():
+                self.nc.variables[name][:] = values
 
 
 def _require_finite(values: np.ndarray, path, name: str, basins, days) -> None:
@@ -441,6 +492,8 @@ def write_forecast(
     attrs: Mapping[str, str] | None = None,
     commit=None,
     assimilated: tuple[np.ndarray, np.ndarray] | None = None,
+    states: Mapping[str, np.ndarray] | None = None,
+    state_units: Mapping[str, str] | None = None,
 ) -> xr.Dataset:
     """Write ``forecast-YYYY-MM-DD.nc`` and return it.
 
@@ -455,6 +508,9 @@ def write_forecast(
         and (basin, n, member) m3 s-1, the ensemble after each day's update; written as
         ``discharge_analysis`` on (basin, time, member) (absent when None or n = 0), so that
         the assimilated history of daily forecasts can be pieced together
+    states : name -> (basin, lead, member) model states at the end of every lead (mm, or as
+        ``state_units`` says), the states the run writes (``outputs.states``), e.g. the
+        snowpack of a snow basin
     """
     nb, nl, nm = discharge.shape
     _require_finite(discharge, path, "discharge", basins, issue_day + np.arange(1, nl + 1))
@@ -491,6 +547,10 @@ def write_forecast(
             **dict(attrs or {}),
         ),
     )
+    for name, values in (states or {}).items():
+        ds[name] = (("basin", "lead", "member"), np.asarray(values, dtype=np.float64),
+                    {"units": (state_units or {}).get(name, "mm"),
+                     "long_name": f"model state {name} at the end of the lead day"})
     if assimilated is not None and len(assimilated[0]):
         a_days, a_values = assimilated
         ds["discharge_analysis"] = (("basin", "time", "member"), np.asarray(a_values, dtype=np.float64),
@@ -507,7 +567,7 @@ def write_forecast(
     if "time_bnds" in ds:
         encoding["time_bnds"] = {**enc_t, "_FillValue": None}
     fdtype = "f4" if float32 else "f8"
-    for v in ("discharge", "discharge_quantile", "discharge_analysis"):
+    for v in ("discharge", "discharge_quantile", "discharge_analysis", *(states or {})):
         if v in ds:
             encoding[v] = {"dtype": fdtype, "zlib": float32, "_FillValue": np.nan}
     if "time" in ds.coords:
@@ -574,23 +634,25 @@ def _whole_days(lead) -> np.ndarray:
     return lead.astype(np.float64) if lead.dtype.kind in "iuf" else np.full(lead.shape, np.nan)
 
 
-def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: int) -> dict[str, np.ndarray]:
+def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: int,
+                          names: Sequence[str] = ("precipitation", "pet")) -> dict[str, np.ndarray]:
     """Forcing forecast of one issue from a NetCDF file with a member dimension.
 
-    Layout: ``precipitation`` and ``pet`` (``units`` mm d-1, or a spelling of it) on
+    Layout: ``precipitation`` and ``pet`` (``units`` mm d-1, or a spelling of it), and
+    ``temperature`` (degC) when ``names`` asks for it (a model with a snow routine), on
     ``(basin, issue_time, lead, member)`` in any order (``issue_time`` optional when the file
     holds one issue), ``basin`` string ids, ``lead`` days 1..L (integers, or CF time spans in
     days), ``issue_time`` CF-encoded days.
 
     Returns
     -------
-    dict "precipitation", "pet" -> (basin, lead, file_member) float64, mm d-1
+    dict name -> (basin, lead, file_member) float64, mm d-1 (temperature degC)
 
     Raises
     ------
     InputError
         if the file, a variable, a basin, the issue time or a lead is missing, a variable has
-        other dimensions or units, or values are negative or not finite.
+        other dimensions or units, or values are not finite or (but temperature) negative.
     """
     from assim.io.prepared import check_units
 
@@ -613,14 +675,14 @@ def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: in
             raise InputError(f"leads 1..{leads} (days) needed", file=path, variable="lead",
                              place=f"lead {int(lacking[0])}")
         lead_index = [int(np.flatnonzero(have == k)[0]) for k in range(1, leads + 1)]
-        for name in ("precipitation", "pet"):
+        for name in names:
             if name not in ds:
                 raise InputError("variable missing from the forcing forecast", file=path, variable=name)
             dims = set(ds[name].dims)
             if not {"basin", "lead", "member"} <= dims <= {"basin", "issue_time", "lead", "member"}:
                 raise InputError(f"dimensions {tuple(ds[name].dims)}, expected (basin, [issue_time,] lead, member)",
                                  file=path, variable=name)
-            check_units(ds[name], path, "depth_rate")
+            check_units(ds[name], path, "temperature" if name == "temperature" else "depth_rate")
             da = ds[name].isel(sel)
             if "issue_time" in da.dims:
                 days = day_numbers(da["issue_time"].values)
@@ -631,10 +693,11 @@ def read_forcing_forecast(path, basins: Sequence[str], issue_day: int, leads: in
                 da = da.isel(issue_time=int(hit[0]))
             da = da.isel(lead=lead_index).transpose("basin", "lead", "member")
             values = np.asarray(da.values, dtype=np.float64)
-            bad = ~np.isfinite(values) | (values < 0)
+            bad = ~np.isfinite(values) | ((values < 0) & (name != "temperature"))
             if bad.any():
                 b, lead_i, m = (int(i[0]) for i in np.nonzero(bad))
-                raise InputError("negative or missing value", file=path, variable=name,
+                raise InputError("missing value" if name == "temperature" else "negative or missing value",
+                                 file=path, variable=name,
                                  place=f"basin {basins[b]}, lead {lead_i + 1}, member {m}")
             out[name] = values
     return out

@@ -358,10 +358,12 @@ def read_basins_yaml(path: str | Path, select: Sequence[str] = ()) -> list[Basin
 _BLANKS = re.compile(r"^[ \t]+|[ \t]+$|[ \t]*,[ \t]*", re.MULTILINE)
 
 
-def _read_csv(path: Path, required: Sequence[str]) -> tuple[pd.DataFrame, np.ndarray]:
+def _read_csv(path: Path, required: Sequence[str], text: str | None = None) -> tuple[pd.DataFrame, np.ndarray]:
     """The table (every cell a string) and the physical line of each row in the file
-    (blank lines are skipped but still counted)."""
-    text = read_text(path)
+    (blank lines are skipped but still counted). ``text``: the file's text when already read
+    (a header line and the rows appended since an earlier read)."""
+    if text is None:
+        text = read_text(path)
     if "\r" in text:
         text = text.replace("\r\n", "\n").replace("\r", "\n")
     if " " in text or "\t" in text:  # blanks around fields are allowed; drop them once
@@ -468,7 +470,7 @@ def last_weather_day(path: str | Path) -> np.datetime64 | None:
 
 
 def read_weather(path: str | Path, basin_ids: Sequence[str], *, need_pet: bool = False,
-                 all_ids: Sequence[str] = ()) -> Weather:
+                 all_ids: Sequence[str] = (), text: str | None = None) -> Weather:
     """Read and validate weather.csv: ``date, basin, precipitation_mm, tmin_c, tmax_c``
     (and ``pet_mm``), one row per basin and day.
 
@@ -478,6 +480,8 @@ def read_weather(path: str | Path, basin_ids: Sequence[str], *, need_pet: bool =
     basin_ids : the basins wanted, in the order of the output
     need_pet : require the ``pet_mm`` column (data.pet_method = given)
     all_ids : every basin of basins.yaml (rows of known but unselected basins are dropped)
+    text : the table's text instead of the file's (the header and the rows appended since
+        the prepared layer was written); line numbers then count in it
 
     Returns
     -------
@@ -493,7 +497,7 @@ def read_weather(path: str | Path, basin_ids: Sequence[str], *, need_pet: bool =
     """
     path = Path(path)
     required = WEATHER_COLUMNS + (("pet_mm",) if need_pet else ())
-    df, lines = _read_csv(path, required)
+    df, lines = _read_csv(path, required, text)
     codes = _basin_codes(df, path, basin_ids, lines, allow_other=frozenset(all_ids))
     dates = pd.to_datetime(df["date"], format="%Y-%m-%d", errors="coerce").to_numpy("datetime64[D]")
     bad = np.isnat(dates)
@@ -554,7 +558,8 @@ def read_weather(path: str | Path, basin_ids: Sequence[str], *, need_pet: bool =
                    None if pet is None else grid(pet))
 
 
-def read_gauge(path: str | Path, basin_ids: Sequence[str], *, all_ids: Sequence[str] = ()) -> Readings:
+def read_gauge(path: str | Path, basin_ids: Sequence[str], *, all_ids: Sequence[str] = (),
+               text: str | None = None) -> Readings:
     """Read and validate gauge.csv: ``timestamp, basin, value`` (ISO 8601, UTC).
 
     Timestamps without an offset are taken as UTC; other offsets are converted to UTC;
@@ -569,6 +574,7 @@ def read_gauge(path: str | Path, basin_ids: Sequence[str], *, all_ids: Sequence[
     path : the file
     basin_ids : the basins wanted (basin index of the output)
     all_ids : every basin of basins.yaml (rows of known but unselected basins are dropped)
+    text : the table's text instead of the file's (see :func:`read_weather`)
 
     Returns
     -------
@@ -581,7 +587,7 @@ def read_gauge(path: str | Path, basin_ids: Sequence[str], *, all_ids: Sequence[
         non-numeric value, or conflicting readings at the same time.
     """
     path = Path(path)
-    df, lines = _read_csv(path, GAUGE_COLUMNS)
+    df, lines = _read_csv(path, GAUGE_COLUMNS, text)
     codes = _basin_codes(df, path, basin_ids, lines, allow_other=frozenset(all_ids))
     stamps = pd.to_datetime(df["timestamp"], utc=True, format="ISO8601", errors="coerce")
     times = stamps.dt.tz_convert(None).to_numpy("datetime64[ms]")

@@ -7,6 +7,12 @@ Contents (all float64):
 - ``ar1_<forcing>`` (basin, member), the AR(1) log errors of the forcing perturbations on
   ``valid_time``, so the next day's multipliers continue the same series;
 - ``collapse_days`` (basin,), consecutive days of collapsed spread so far;
+- ``inflation_mean``, ``inflation_sd`` (basin,), the adaptive inflation after the last
+  analysis (only when adaptive inflation is on);
+- with the fixed-lag smoother (``filter.smoother.window_days`` W > 0), its window:
+  ``window`` (basin, member, window_slot, window_column), the discharge (m3 s-1) and
+  recorded states (mm) of the last W days, and ``window_day`` (window_slot,), the day each
+  slot holds (days since 1970-01-01, -1 empty), so that a continued run equals a one-shot run;
 - identity attributes: ``model``, ``members``, ``seed``, ``mode``, the basins (coordinate),
   and digests of the config sections that shape the numbers (``digest_perturbation``,
   ``digest_filter``, ``digest_ensemble``) and of the inputs (``digest_inputs``).
@@ -46,6 +52,11 @@ class Restart:
     collapse_days: np.ndarray
     identity: dict[str, str | int] = field(default_factory=dict)
     path: str | None = None
+    inflation_mean: np.ndarray | None = None
+    inflation_sd: np.ndarray | None = None
+    window: np.ndarray | None = None  # (basin, member, slot, column), the smoother's window
+    window_days: np.ndarray | None = None  # (slot,) int64
+    window_columns: tuple[str, ...] = ()
 
     @property
     def members(self) -> int:
@@ -65,15 +76,30 @@ def write_restart(path, restart: Restart, commit=None) -> Path:
         "collapse_days": (("basin",), np.asarray(restart.collapse_days, dtype=np.int32),
                           {"long_name": "consecutive days with collapsed spread"}),
     }
+    if restart.inflation_mean is not None:
+        for name, what in (("inflation_mean", "mean"), ("inflation_sd", "standard deviation")):
+            data[name] = (("basin",), np.asarray(getattr(restart, name), dtype=np.float64),
+                          {"units": "1", "long_name": f"{what} of the adaptive prior inflation "
+                           "(factor on the prior variance) after the last analysis"})
     for name, v in restart.parameters.items():
         data[f"parameter_{name}"] = (("basin", "member"), np.asarray(v, dtype=np.float64),
                                      {"long_name": f"member value of parameter {name}"})
     for name, v in restart.ar1.items():
         data[f"ar1_{name}"] = (("basin", "member"), np.asarray(v, dtype=np.float64),
                                {"long_name": f"AR(1) log error of the {name} perturbation on valid_time"})
+    coords = {}
+    if restart.window is not None:
+        data["window"] = (("basin", "member", "window_slot", "window_column"),
+                          np.asarray(restart.window, dtype=np.float64),
+                          {"long_name": "the smoother's window: discharge (m3 s-1) and recorded states (mm) "
+                                        "of the last days, after the last analysis"})
+        data["window_day"] = (("window_slot",), np.asarray(restart.window_days, dtype=np.int32),
+                              {"long_name": "day held by each window slot, days since 1970-01-01 (-1: empty)"})
+        coords["window_column"] = ("window_column", np.array(restart.window_columns, dtype=object))
     ds = xr.Dataset(
         data,
         coords={
+            **coords,
             "basin": ("basin", b, {"cf_role": "timeseries_id"}),
             "member": ("member", np.arange(restart.states.shape[1], dtype=np.int32),
                        {"long_name": "ensemble member"}),
@@ -122,7 +148,21 @@ def read_restart(path) -> Restart:
             collapse_days=np.asarray(ds["collapse_days"].values, dtype=np.int64),
             identity={k: str(v) for k, v in ds.attrs.items()},
             path=str(path),
+            inflation_mean=(np.asarray(ds["inflation_mean"].values, dtype=np.float64)
+                            if "inflation_mean" in ds.variables else None),
+            inflation_sd=(np.asarray(ds["inflation_sd"].values, dtype=np.float64)
+                          if "inflation_sd" in ds.variables else None),
+            **_window(ds),
         )
+
+
+def _window(ds: xr.Dataset) -> dict:
+    """The smoother's window of a restart, if it carries one."""
+    if "window" not in ds.variables:
+        return {}
+    return {"window": np.asarray(ds["window"].values, dtype=np.float64),
+            "window_days": np.asarray(ds["window_day"].values, dtype=np.int64),
+            "window_columns": tuple(str(x) for x in ds["window_column"].values)}
 
 
 def read_restart_header(path) -> tuple[int, dict[str, str], tuple[str, ...]]:

@@ -5,7 +5,9 @@ rule prep:
         # parameters from `assim calibrate`, when the config points at them
         [CFG["model"]["calibrated_parameters"]] if CFG["model"]["calibrated_parameters"] else [],
     output:
-        PREPARED,
+        # updated in place, not removed before the job: `assim prep` appends the new days to
+        # the layer it finds (and replaces the files together itself)
+        [update(p) for p in PREPARED],
     params:
         settings=settings("data", "model"),
     log:
