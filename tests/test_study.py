@@ -81,3 +81,20 @@ def test_shipped_defaults_spread_matches_error(small_twin):
     (N+1)/N factor) is in 0.9-1.1 at every lead 1-10 (the band of the study)."""
     r = small_twin["shipped"]["spread_rmse"]
     assert np.all((r >= 0.9) & (r <= 1.1)), r
+
+
+def test_candidate_labels_name_their_filter_sections():
+    """Every candidate of both grids, adaptive inflation included, is named back by label_of
+    from its filter section (the table's rows are the configurations run), and each filter
+    section is a valid config (the schema accepts it; adaptive inflation reaches the settings).
+    Common practice, no published source."""
+    for grid in ("full", "focused"):
+        cands = sd.candidates(grid=grid)
+        assert len({label for label, _ in cands}) == len(cands)
+        for label, fil in cands:
+            assert sd.label_of(fil) == label
+    fil = dict(sd.candidates(grid="focused"))["etkf S+R+UH log adaptive+rtps0.3"]
+    st = settings_from_config(sd.base_config(8, 10, **fil), sd.GR4J, "assimilate")
+    assert st.adaptive_inflation and st.rtps == 0.3 and st.method == "etkf"
+    assert st.update_states == sd.GR4J.state_names
+    assert sd.label_of(sd.CURRENT) == "enkf S+R none none"
