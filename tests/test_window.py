@@ -189,8 +189,7 @@ def test_compiled_kernel_declines_the_smoother():
     st = engine.Settings(update_states=("production_store", "routing_store"), smoother_window=3)
     assert "smoother" in kernel_choice(GR4J, st)
     assert kernel_choice(GR4J, dataclasses.replace(st, smoother_window=0)) is None
-    cfg = load_config(None, filter={"smoother": {"window_days": 3}, "inflation": {"adaptive": {"enabled": False}}},
-                      ensemble={"kernel": "compiled"})
+    cfg = load_config(None, filter={"smoother": {"window_days": 3}}, ensemble={"kernel": "compiled"})
     with pytest.raises(ConfigError, match="smoother"):
         settings_from_config(cfg, GR4J, "assimilate")
     assert settings_from_config(load_config(None), GR4J, "assimilate").smoother_window == 0
