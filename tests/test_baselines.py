@@ -136,13 +136,13 @@ def _synthetic_basins(n_basin=2, n_days=150, seed=2):
 
 def test_loop_run_matches_engine():
     """The whole assimilation run of the loop baseline equals assim.engine.run (mode
-    assimilate, default updated states, gate at 5 sigma, same seed): prior and analysed
+    assimilate, the two stores updated as the baseline does, gate at 5 sigma, same seed): prior and analysed
     discharge on every day and the end states, to 1e-9. Common practice, no published
     source: a baseline must compute the same result to make its time comparable."""
     p, e, obs, area, params, ids, days = _synthetic_basins()
     m = models.get("gr4j")
     inputs = engine.Inputs(ids, pt.basin_keys(ids), area, days, p, e, obs, np.zeros(obs.shape, bool), params)
-    settings = engine.Settings(mode="assimilate", members=12, seed=9, update_states=m.default_updated_states(),
+    settings = engine.Settings(mode="assimilate", members=12, seed=9, update_states=("production_store", "routing_store"),
                                float32=False, scheduler="synchronous", time_block_days=40, gate_sigma=5.0)
     sink = _Collect()
     summary = engine.run(m, inputs, settings, sink)

@@ -355,7 +355,7 @@ def test_kernel_run_equals_the_loop_baseline():
     p, e, obs, area, params, ids, days = _synthetic_basins()
     m = models.get("gr4j")
     inputs = engine.Inputs(ids, pt.basin_keys(ids), area, days, p, e, obs, np.zeros(obs.shape, bool), params)
-    settings = engine.Settings(mode="assimilate", members=12, seed=9, update_states=m.default_updated_states(),
+    settings = engine.Settings(mode="assimilate", members=12, seed=9, update_states=("production_store", "routing_store"),
                                float32=False, scheduler="synchronous", time_block_days=40, gate_sigma=5.0,
                                kernel="compiled")
     sink = _Collect()

@@ -56,12 +56,13 @@ def test_a_user_model_registers_and_runs_through_the_protocol(monkeypatch):
 
 def test_gr4j_declarations():
     """GR4J (Perrin et al. 2003): four parameters with the paper's median values as defaults
-    (X1 350 mm, X2 0 mm/d, X3 90 mm, X4 1.7 d, recalled from memory); the filter updates the
-    two stores by default; unit-hydrograph slots follow the stores."""
+    (X1 350 mm, X2 0 mm/d, X3 90 mm, X4 1.7 d, recalled from memory); the filter updates
+    every state by default (the two stores and the unit-hydrograph slots, the choice of
+    benchmarks/study_defaults.py); unit-hydrograph slots follow the stores."""
     m = models.get("gr4j")
     assert m.parameter_names == ("x1", "x2", "x3", "x4")
     assert m.default_parameters() == {"x1": 350.0, "x2": 0.0, "x3": 90.0, "x4": 1.7}
-    assert m.default_updated_states() == ("production_store", "routing_store")
+    assert m.default_updated_states() == m.state_names
     assert m.state_index("routing_store") == 1
     assert m.state_names[2] == "uh1_1" and m.state_names[-1] == f"uh2_{m.n_state - 11}"
     with pytest.raises(KeyError, match="no state"):
