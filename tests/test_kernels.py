@@ -22,7 +22,7 @@ from assim import engine, kernels, models
 from assim import perturb as pt
 from assim.errors import ConfigError, RunError
 from assim.filters import Inflation, Transform, ensemble_update
-from assim.kernels.block import METHOD_CODES, analyse_basin, pack_parameters
+from assim.kernels.block import METHOD_CODES, analyse_basin, pack_parameters, pinned_rows
 from assim.kernels.normals import normals_of_days
 from assim.settings import settings_from_config
 
@@ -107,10 +107,12 @@ def _kernel_analysis(X, q, y, r, z, method, infl, gate, lower, upper, transform)
     y = tr.forward(y)  # the reading in the assimilation space, as the engine passes it
     for b in range(B):
         Xk, qk = np.ascontiguousarray(X[b].T), q[b].copy()
+        lo, hi = np.ascontiguousarray(lower[b].T), np.ascontiguousarray(upper[b].T)
+        pinned = np.zeros(n, dtype=bool)
+        pinned_rows(Xk, 0, N, np.arange(n), lo, hi, pinned)
         res = analyse_basin(Xk, 0, N, np.arange(n), qk, y[b], r[b], z[b], METHOD_CODES[method],
                             infl.multiplicative, infl.rtps, infl.rtpp, gate or 0.0, True, code,
-                            tr.offset, tr.lam, np.ascontiguousarray(lower[b].T),
-                            np.ascontiguousarray(upper[b].T), np.empty(N), np.empty(N), np.empty(N))
+                            tr.offset, tr.lam, lo, hi, np.empty(N), np.empty(N), np.empty(N), pinned)
         Xa[b], qa[b] = Xk.T, qk
         out.append(res)
     used, gated, innov, iv, clipped = (np.array(v) for v in zip(*out, strict=True))
@@ -141,6 +143,8 @@ def _random_case(rng):
     sd = np.nanstd(X, axis=1, keepdims=True)
     lower = np.broadcast_to(mean - rng.uniform(0.3, 3) * sd, X.shape).copy()
     upper = np.broadcast_to(mean + rng.uniform(0.3, 3) * sd, X.shape).copy()
+    if n > 1 and rng.random() < 0.3:  # a row held at 0 (a unit-hydrograph slot beyond X4) in one basin
+        X[-1, :, -1] = lower[-1, :, -1] = upper[-1, :, -1] = 0.0
     return X, q, y, r, rng.standard_normal((B, N)), str(rng.choice(list(METHOD_CODES))), infl, gate, lower, upper, transform
 
 
@@ -156,8 +160,8 @@ def _close(got, want, scale, msg, tol=1e-12):
 
 def test_kernel_analysis_is_ensemble_update_on_thousands_of_cases():
     """On 3,000 random one-observation cases (1-5 basins, 2-39 members, 1-3 states of any
-    scale, gaps, a bad state, gate, bounds, multiplicative inflation, RTPS, RTPP, log and
-    Box-Cox transforms, enkf/etkf/eakf), the kernel's analysis equals
+    scale, gaps, a bad state, gate, bounds, a row held at 0 by its bounds, multiplicative
+    inflation, RTPS, RTPP, log and Box-Cox transforms, enkf/etkf/eakf), the kernel's analysis equals
     assim.filters.ensemble_update with the discharge as the last analysis column: states and
     discharge to 1e-12 of their scale, the innovation and its variance, which readings were
     used and gated, and the clipped water."""
