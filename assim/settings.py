@@ -92,7 +92,7 @@ def settings_from_config(cfg: Mapping, model: Model, mode: str) -> Settings:
     names = model.state_names
     chosen = tuple(fil["update_states"]) or model.default_updated_states()
     update = tuple(n for n in names if n in chosen)  # model order
-    write = names if out["all_states"] else update if out["states"] else ()
+    write = names if out["all_states"] else model.reported_states(update) if out["states"] else ()
     oe = fil["obs_error"]
     settings = Settings(
         mode=mode,

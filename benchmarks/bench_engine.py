@@ -100,7 +100,7 @@ def _case(n_basin, members, years, *, scheduler, workers, basin_chunk, block_day
     settings = engine.Settings(
         mode="assimilate", members=members, seed=1, spinup_days=0,
         update_states=model.default_updated_states(),
-        write_states=model.default_updated_states() if states else (),
+        write_states=model.reported_states(model.default_updated_states()) if states else (),
         quantiles=quantiles, basin_chunk=basin_chunk, time_block_days=block_days,
         scheduler=scheduler, workers=workers,
     )

@@ -53,7 +53,7 @@ def member_values(n_basin: int, members: int, days: int) -> dict[str, np.ndarray
     model, inputs = _inputs(n_basin, days)
     settings = engine.Settings(mode="assimilate", members=members, seed=1, spinup_days=0,
                                update_states=model.default_updated_states(),
-                               write_states=model.default_updated_states(), basin_chunk=n_basin,
+                               write_states=model.reported_states(model.default_updated_states()), basin_chunk=n_basin,
                                time_block_days=days, scheduler="synchronous", workers=1)
     out = {}
 

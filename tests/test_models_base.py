@@ -63,6 +63,10 @@ def test_gr4j_declarations():
     assert m.parameter_names == ("x1", "x2", "x3", "x4")
     assert m.default_parameters() == {"x1": 350.0, "x2": 0.0, "x3": 90.0, "x4": 1.7}
     assert m.default_updated_states() == m.state_names
+    # products write the stores; the slots are internal buffers (outputs.all_states writes them)
+    assert m.reported_states(m.state_names) == ("production_store", "routing_store")
+    assert models.get("gr4j+snow").reported_states(models.get("gr4j+snow").state_names) == (
+        "production_store", "routing_store", "snowpack", "snow_liquid")
     assert m.state_index("routing_store") == 1
     assert m.state_names[2] == "uh1_1" and m.state_names[-1] == f"uh2_{m.n_state - 11}"
     with pytest.raises(KeyError, match="no state"):

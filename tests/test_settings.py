@@ -55,10 +55,14 @@ def test_every_field_comes_from_the_config():
 
 
 def test_default_update_and_written_states():
-    """No update_states: the model's default; outputs.states writes the updated ones only."""
+    """No update_states: the model's default (every GR4J state); outputs.states writes the
+    updated ones but the internal unit-hydrograph slots; all_states writes every state."""
     st = settings_from_config(load_config(), GR4J, "openloop")
     assert st.mode == "openloop" and not st.assimilate
-    assert st.update_states == GR4J.default_updated_states() == st.write_states
+    assert st.update_states == GR4J.default_updated_states() == GR4J.state_names
+    assert st.write_states == ("production_store", "routing_store")
+    everything = settings_from_config(load_config(outputs={"all_states": True}), GR4J, "openloop")
+    assert everything.write_states == GR4J.state_names
     assert st.quantiles is None
 
 

@@ -43,7 +43,10 @@ class StateVariable:
 
     ``lower`` and ``upper`` are numbers or functions of the parameter dict returning
     (batch,) arrays (e.g. the production store of GR4J is bounded by X1).
-    ``updatable`` says whether a filter may change it by default.
+    ``updatable`` says whether a filter may change it by default. ``reported`` says whether
+    products write it when they write the updated states (``outputs.states``): False for
+    a model's internal buffers (GR4J's unit-hydrograph slots), written only with
+    ``outputs.all_states``.
     """
 
     name: str
@@ -52,6 +55,7 @@ class StateVariable:
     lower: Bound = 0.0
     upper: Bound = np.inf
     updatable: bool = False
+    reported: bool = True
 
 
 @dataclass(frozen=True)
@@ -139,6 +143,12 @@ class Model:
     def default_updated_states(self) -> tuple[str, ...]:
         """Names of the states a filter updates unless told otherwise."""
         return tuple(s.name for s in self.states if s.updatable)
+
+    def reported_states(self, names) -> tuple[str, ...]:
+        """Of the states ``names``, those products write as the updated states
+        (``outputs.states``): all but the model's internal buffers (``reported=False``)."""
+        hidden = {s.name for s in self.states if not s.reported}
+        return tuple(n for n in names if n not in hidden)
 
     def default_parameters(self) -> dict[str, float]:
         return {p.name: p.default for p in self.parameters}

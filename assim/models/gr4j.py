@@ -106,12 +106,12 @@ STATES = (
     StateVariable("routing_store", "mm", "routing store level R", 0.0, routing_upper_bound, True),
     *(
         StateVariable(f"uh1_{i}", "mm", f"UH1 water leaving {i} d after the step", 0.0,
-                      _slot_upper(1, i), True)
+                      _slot_upper(1, i), True, reported=False)
         for i in range(1, N_SLOT1 + 1)
     ),
     *(
         StateVariable(f"uh2_{i}", "mm", f"UH2 water leaving {i} d after the step", 0.0,
-                      _slot_upper(2, i), True)
+                      _slot_upper(2, i), True, reported=False)
         for i in range(1, N_SLOT2 + 1)
     ),
 )
